@@ -1,0 +1,3 @@
+from monitor.cli import entry_point
+
+entry_point()

@@ -1,0 +1,49 @@
+"""Plumbline's exceptions.
+
+    PlumblineError                 base of everything Plumbline raises on purpose
+    ├── UsageError                 bad command-line use (exit 2)
+    ├── InputFileError             a file named on the command line cannot be used (exit 2)
+    ├── ConfigError                the YAML config is invalid (exit 2)
+    ├── ClockRefusedError          a pass's business clock is earlier than the latest pass's (exit 2)
+    └── DatabaseLockedError        another process holds the database's writer lock (exit 2)
+
+Every class carries ``exit_code``; the CLI prints the message on one line and exits with it.
+"""
+
+from __future__ import annotations
+
+
+class PlumblineError(Exception):
+    """Base class; ``exit_code`` is what the CLI exits with."""
+
+    exit_code: int = 2
+
+
+class UsageError(PlumblineError):
+    """The command line asks for something that cannot be done."""
+
+
+class InputFileError(PlumblineError):
+    """A file named on the command line (``fit``, ``breaks``) cannot be used as asked."""
+
+
+class ConfigError(PlumblineError):
+    """The configuration file is invalid; the message names the YAML path and line."""
+
+
+class ClockRefusedError(PlumblineError):
+    """A pass was asked to run at a business clock earlier than the latest pass's."""
+
+
+class DatabaseLockedError(PlumblineError):
+    """Another process holds the advisory writer lock of the database."""
+
+
+__all__ = [
+    "ClockRefusedError",
+    "ConfigError",
+    "DatabaseLockedError",
+    "InputFileError",
+    "PlumblineError",
+    "UsageError",
+]
