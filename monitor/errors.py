@@ -4,7 +4,7 @@
     ├── UsageError                 bad command-line use (exit 2)
     ├── InputFileError             a file named on the command line cannot be used (exit 2)
     ├── ConfigError                the YAML config is invalid (exit 2)
-    ├── ClockRefusedError          a pass's business clock is earlier than the latest pass's (exit 2)
+    ├── ClockRefusedError          a pass's business clock is before the latest pass's (exit 2)
     └── DatabaseLockedError        another process holds the database's writer lock (exit 2)
 
 Every class carries ``exit_code``; the CLI prints the message on one line and exits with it.
