@@ -15,6 +15,7 @@ LAYERS: dict[str, int] = {
     "stats": 1,
     "config": 2,
     "store": 2,
+    "lock": 2,
     "ingest": 3,
     "findings": 4,
     "notify": 5,
