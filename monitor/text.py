@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import difflib
+import re
 from collections.abc import Iterable
+from datetime import timedelta
 
 
 def nearest_name(word: str, candidates: Iterable[str]) -> str | None:
@@ -29,4 +31,24 @@ def format_p_value(p: float | None) -> str:
     return f"{p:.4f}"
 
 
-__all__ = ["did_you_mean", "format_p_value", "nearest_name"]
+_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([smhd])\s*$")
+_UNIT_SECONDS = {"s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
+
+
+def parse_duration(text: str) -> timedelta:
+    """``<number><unit>`` with unit s, m, h or d (``30s``, ``5m``, ``7d``), as in the config file.
+
+    Raises ValueError with a message saying the accepted form.
+    """
+    match = _DURATION.match(text)
+    if match is None:
+        raise ValueError(f"{text!r} is not a duration; write <number><unit> with unit s, m, h or d")
+    return timedelta(seconds=float(match.group(1)) * _UNIT_SECONDS[match.group(2)])
+
+
+def is_duration(text: str) -> bool:
+    """True when ``text`` reads as a duration (and so not as a cron expression)."""
+    return _DURATION.match(text) is not None
+
+
+__all__ = ["did_you_mean", "format_p_value", "is_duration", "nearest_name", "parse_duration"]
