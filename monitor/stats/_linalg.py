@@ -5,6 +5,9 @@ These are private helpers; ``monitor.stats.ols`` is the public face. Shapes are 
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+
 import numpy as np
 from numpy.typing import NDArray
 from scipy import special
@@ -41,24 +44,32 @@ def _two_product(a: FloatArray, b: FloatArray) -> tuple[FloatArray, FloatArray]:
 
 
 def compensated_residual(
-    y: FloatArray, x: FloatArray, slopes: FloatArray, intercept: FloatArray | float
+    y: FloatArray,
+    x: FloatArray,
+    slopes: FloatArray,
+    intercept: FloatArray | float,
+    offset: FloatArray | None = None,
 ) -> FloatArray:
-    """Residuals ``y - intercept - x @ slopes`` as if computed in twice the working precision.
+    """Residuals ``y - offset - intercept - x @ slopes`` as if computed in doubled precision.
 
     The sum over terms uses error-free transformations (TwoSum, TwoProduct) in the manner of
     Ogita, Rump & Oishi (2005), "Accurate sum and dot product", so the cancellation between the
-    response and the fitted value costs no digits. This is what makes one step of iterative
-    refinement worth taking (Golub & Van Loan 2013, section 5.3.8; Björck 1996, section 2.9).
+    response and the fitted value costs no digits; this is what makes iterative refinement
+    worth taking (Björck 1967; Golub & Van Loan 2013, section 5.3.8).
 
-    Shapes: ``y`` (..., n), ``x`` (..., n, k), ``slopes`` (..., k), ``intercept`` scalar or
-    (...,). Where a split overflows (magnitudes beyond ~1e300) the plain float64 residual is used.
+    Shapes: ``y`` and ``offset`` (..., n), ``x`` (..., n, k), ``slopes`` (..., k),
+    ``intercept`` scalar or (...,). Where a split overflows (magnitudes beyond ~1e300) the
+    plain float64 value is used for that element.
     """
     total = np.array(y, dtype=np.float64, copy=True)
     error = np.zeros_like(total)
     negated = -np.asarray(intercept, dtype=np.float64)[..., None]
-    intercept_term = np.broadcast_to(negated, total.shape)
-    total, e = _two_sum(total, intercept_term)
-    error += e
+    terms: list[FloatArray] = [np.broadcast_to(negated, total.shape)]
+    if offset is not None:
+        terms.append(-offset)
+    for term in terms:
+        total, e = _two_sum(total, term)
+        error += e
     for j in range(x.shape[-1]):
         product, product_error = _two_product(x[..., j], -slopes[..., j, None])
         total, e = _two_sum(total, product)
@@ -66,8 +77,88 @@ def compensated_residual(
     result = total + error
     if not np.all(np.isfinite(result)):
         plain = y - np.asarray(intercept)[..., None] - np.einsum("...nk,...k->...n", x, slopes)
+        if offset is not None:
+            plain = plain - offset
         result = np.where(np.isfinite(result), result, plain)
     return result
+
+
+def exact_column_dots(x: FloatArray, v: FloatArray) -> FloatArray:
+    """``x.T @ v`` with every entry correctly rounded: TwoProduct, then ``math.fsum``.
+
+    Shapes: ``x`` (n, k), ``v`` (n,); returns (k,). Dekker (1971) for the exact products,
+    Shewchuk (1997) for the exact sum behind ``math.fsum``.
+    """
+    out = np.empty(x.shape[1])
+    for j in range(x.shape[1]):
+        product, product_error = _two_product(x[:, j], v)
+        if np.all(np.isfinite(product_error)):
+            out[j] = math.fsum(np.concatenate((product, product_error)))
+        else:
+            out[j] = math.fsum(x[:, j] * v)
+    return out
+
+
+@dataclass(frozen=True)
+class StandardisedQR:
+    """The thin QR factorisation of the centred (with an intercept) and scaled predictors.
+
+    ``z = (x - centre) / scale = q @ r``; shapes ``q`` (n, k), ``r`` and ``r_inverse`` (k, k),
+    ``centre`` and ``scale`` (k,). Without an intercept ``centre`` is zero.
+    """
+
+    q: FloatArray
+    r: FloatArray
+    r_inverse: FloatArray
+    centre: FloatArray
+    scale: FloatArray
+    intercept: bool
+
+
+def refine_augmented(
+    x: FloatArray,
+    y: FloatArray,
+    factor: StandardisedQR,
+    intercept_value: float,
+    slopes: FloatArray,
+    steps: int = 1,
+) -> tuple[float, FloatArray]:
+    """Iterative refinement of a least-squares solution on the augmented system.
+
+    The least-squares solution and its residual solve ``[I X; X' 0] [r; b] = [y; 0]``. Each
+    step computes both residuals of that system, ``f = y - r - Xb`` and ``g = -X'r``, in
+    compensated precision and solves for the corrections with the existing QR factorisation
+    (Björck 1967, "Iterative refinement of linear least squares solutions I"; Björck 1996,
+    section 2.9.3). Unlike refining ``b`` alone, this also removes the error term that grows
+    with the size of the residual, the one that limits plain refinement on noisy,
+    ill-conditioned designs.
+
+    ``x`` (n, k) original predictors, ``y`` (n,); returns the refined ``(intercept, slopes)``
+    (the intercept is 0.0 without one).
+    """
+    n = x.shape[0]
+    q, r_factor, r_inverse = factor.q, factor.r, factor.r_inverse
+    centre, scale = factor.centre, factor.scale
+    root_n = math.sqrt(n)
+    residual = compensated_residual(y, x, slopes, intercept_value)
+    for _ in range(steps):
+        f = compensated_residual(y, x, slopes, intercept_value, offset=residual)
+        g = -exact_column_dots(x, residual)
+        # In the standardised basis W = [1, z]: X b = W T b, so X'r = T'W'r, W'r = T^-T X'r.
+        g0 = -math.fsum(residual) if factor.intercept else 0.0
+        g_standard = (g - centre * g0) / scale
+        h = np.linalg.solve(r_factor.T, g_standard) if len(g) else g_standard
+        d = q.T @ f
+        gamma_step = r_inverse @ (d - h)
+        slope_step = gamma_step / scale
+        residual_step = f - q @ (d - h)
+        if factor.intercept:
+            level_step = (float(f.sum()) / root_n - g0 / root_n) / root_n
+            intercept_value += level_step - float(centre @ slope_step)
+            residual_step = residual_step - level_step
+        slopes = slopes + slope_step
+        residual = residual + residual_step
+    return intercept_value, slopes
 
 
 def t_quantile(probability: float, df: NDArray[np.int64] | int) -> FloatArray:
