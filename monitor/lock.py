@@ -1,0 +1,128 @@
+"""The database's writer lock: one Plumbline writer per database (DESIGN.md section 12).
+
+``DatabaseLock(database)`` takes an advisory ``flock(LOCK_EX | LOCK_NB)`` on a lock file beside
+the database (``plumbline.sqlite`` → ``plumbline.sqlite.lock``). The kernel owns the lock: it is
+released when the holder closes the file or dies in any way, ``kill -9`` included, so a crashed
+process never leaves a stale lock behind and there is nothing to clean up by hand.
+
+The holder writes its process id into the lock file. That is for people and for the error
+message only; the ``flock`` is the truth, and a pid left in the file by a dead process means
+nothing.
+
+Who takes it: the ``run`` command (through :func:`monitor.daemon.run_daemon`, for the daemon's
+whole life) and the ``pass`` command (around one pass). A pass run *inside* the daemon must not
+take it again: ``flock`` locks belong to an open file, so a second ``DatabaseLock`` on the same
+database in the same process is refused like any other holder.
+
+Limits: ``flock`` is reliable on local file systems; on network file systems (NFS, SMB) its
+behaviour depends on the server, so keep the database on a local disk. A child made with
+``fork()`` (without ``exec``) shares the open lock file and so keeps the lock alive while it runs;
+the descriptor is not inherited across ``exec`` (Python's default since PEP 446).
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+from pathlib import Path
+from types import TracebackType
+
+from monitor.errors import DatabaseLockedError, PlumblineError
+
+LOCK_SUFFIX = ".lock"
+
+
+def lock_path_for(database: str | os.PathLike[str]) -> Path:
+    """The lock file of a database: the database's own name with ``.lock`` appended."""
+    path = Path(database)
+    return path.with_name(path.name + LOCK_SUFFIX)
+
+
+class DatabaseLock:
+    """The advisory writer lock of one database; a context manager.
+
+    ``acquire()`` returns at once: either the lock is ours, or it raises
+    :class:`~monitor.errors.DatabaseLockedError` (exit code 2) naming the database and, when the
+    holder wrote it, the holder's process id. It never waits for the other process.
+    """
+
+    def __init__(self, database: str | os.PathLike[str]) -> None:
+        self.database = Path(database)
+        self.path = lock_path_for(self.database)
+        self._fd: int | None = None
+
+    @property
+    def held(self) -> bool:
+        """True while this object holds the lock."""
+        return self._fd is not None
+
+    def acquire(self) -> None:
+        """Take the lock now or raise :class:`DatabaseLockedError`; never blocks."""
+        if self._fd is not None:
+            raise PlumblineError(f"the lock on {self.database} is already held by this process")
+        try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise PlumblineError(
+                f"cannot open the lock file {self.path}: {exc.strerror or exc}"
+            ) from exc
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = _read_holder(fd)
+            os.close(fd)
+            by_whom = f"process {holder}" if holder is not None else "another process"
+            raise DatabaseLockedError(
+                f"database {self.database} is in use by {by_whom} (lock file {self.path}); "
+                "only one 'plumbline run' or 'plumbline pass' may write to it at a time"
+            ) from None
+        except OSError as exc:
+            os.close(fd)
+            raise PlumblineError(f"cannot lock {self.path}: {exc.strerror or exc}") from exc
+        # Informational: who holds it. Written only once the flock is ours.
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
+        self._fd = fd
+
+    def release(self) -> None:
+        """Give the lock back (idempotent). The lock file stays; only its pid is cleared."""
+        fd, self._fd = self._fd, None
+        if fd is None:
+            return
+        try:
+            # Clear the pid before unlocking, so it never names a process that no longer holds it.
+            # The file itself is never deleted: unlinking a lock file lets two processes lock two
+            # different files under the same name.
+            os.ftruncate(fd, 0)
+            fcntl.flock(fd, fcntl.LOCK_UN)
+        finally:
+            os.close(fd)
+
+    def __enter__(self) -> DatabaseLock:
+        self.acquire()
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.release()
+
+    def __repr__(self) -> str:
+        state = "held" if self.held else "not held"
+        return f"DatabaseLock({str(self.database)!r}, {state})"
+
+
+def _read_holder(fd: int) -> int | None:
+    """The pid written by the current holder, or None when absent or unreadable."""
+    try:
+        text = os.pread(fd, 32, 0).decode("ascii", errors="replace").strip()
+    except OSError:
+        return None
+    return int(text) if text.isdigit() else None
+
+
+__all__ = ["LOCK_SUFFIX", "DatabaseLock", "lock_path_for"]
