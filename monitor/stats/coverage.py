@@ -417,10 +417,11 @@ def audit_coverage(
     See the module docstring for the statistics, their sources and the degenerate cases.
     """
     values = np.asarray(actual, dtype=np.float64)
+    if values.size == 0 and np.size(lower) == 0 and np.size(upper) == 0:
+        # One unscored row gives the series its entry, with nothing scored.
+        values, lower, upper = np.full(1, np.nan), np.full(1, np.nan), np.full(1, np.nan)
     batch = audit_batch(np.zeros(values.shape, dtype=np.int64), values, lower, upper, level,
                         confidence=confidence, last=last)
-    if len(batch) == 0:
-        return _empty_batch(level, confidence, last).audit(0)
     return batch.audit(0)
 
 
@@ -607,23 +608,6 @@ def _zone_of(misses: int, cumulative: float) -> CoverageZone:
     if cumulative < YELLOW_BELOW:
         return CoverageZone.YELLOW
     return CoverageZone.RED
-
-
-def _empty_batch(level: float, confidence: float, last: int | None) -> CoverageBatch:
-    """A one-entry batch with nothing scored (for an audit of zero rows)."""
-    zeros = np.zeros(1, dtype=np.int64)
-    nan = np.full(1, np.nan)
-    return CoverageBatch(
-        group=np.zeros(1, dtype=np.int64), lead=None, nominal=float(level),
-        confidence=float(confidence), window=last,
-        scored=zeros, hits=zeros, misses_high=zeros, misses_low=zeros,
-        n00=zeros, n01=zeros, n10=zeros, n11=zeros,
-        hit_rate=nan, hit_rate_lower=nan, hit_rate_upper=nan,
-        kupiec_statistic=nan, kupiec_p_value=nan,
-        independence_statistic=nan, independence_p_value=nan,
-        christoffersen_statistic=nan, christoffersen_p_value=nan,
-        miss_probability=nan, zone=(None,), mean_width=nan, interval_score=nan,
-    )
 
 
 def _optional(value: float | np.floating[Any]) -> float | None:
