@@ -434,7 +434,8 @@ def fit_ols(
             correlation_t = math.nan
             correlation_p = math.nan
         else:
-            correlation_t = correlation * math.sqrt(n - 2) / math.sqrt(1.0 - correlation**2)
+            # 1 - r² as SSE / (SSR + SSE): no cancellation when r² is close to 1.
+            correlation_t = correlation * math.sqrt(n - 2) / math.sqrt(sse / total)
             correlation_p = float(t_two_sided_p(np.asarray(correlation_t), n - 2))
 
     return OlsFit(
