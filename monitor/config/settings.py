@@ -1,0 +1,199 @@
+"""The one table of the config file's keys: each key's default and meaning.
+
+The pydantic models (``monitor.config.models``) take their defaults and descriptions from
+``SETTINGS`` through ``setting_field``; ``reference_markdown`` renders the same table for the README
+and ``plumbline schema --format markdown``; ``tests/test_config.py`` checks the README's copy
+against the models. To add a key: add its row here, then the field that reads it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+from pydantic import Field
+
+
+@dataclass(frozen=True)
+class Setting:
+    """One key of the file. ``default`` is ``...`` for a required key; ``computed`` says how the
+    default is worked out when it depends on other keys (then ``default`` is None)."""
+
+    path: str
+    default: Any
+    meaning: str
+    computed: str | None = None
+
+    @property
+    def required(self) -> bool:
+        return self.default is ...
+
+    def default_markdown(self) -> str:
+        if self.required:
+            return "required"
+        if self.computed is not None:
+            return self.computed
+        return f"`{_yaml_text(self.default)}`"
+
+
+def _yaml_text(value: Any) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    return str(value)
+
+
+_SEE_BELOW = "the keys below"
+
+SETTINGS: tuple[Setting, ...] = (
+    Setting("database", "state/plumbline.sqlite",
+            "The SQLite file holding rows, fits, forecasts, outcomes and findings. Relative "
+            "paths in this file resolve against the config file's folder."),
+    Setting("timezone", "UTC",
+            "IANA time-zone name such as `Europe/Berlin`. Cron schedules run in it, an `--as-of` "
+            "time without an offset is read in it, and dates shown to people use it."),
+    Setting("feeds", ...,
+            "The drop folders, by name (letters, digits, `_`, `-`, `.`). At least one."),
+    Setting("models", ...,
+            "The regressions to monitor, by name (same characters as feed names). At least one."),
+    Setting("schedule", None, "When the daemon scans the inboxes and builds the digest.",
+            computed=_SEE_BELOW),
+    Setting("notify", None, "Where findings and digests go.", computed=_SEE_BELOW),
+    # feeds.NAME
+    Setting("feeds.NAME.inbox", ..., "Folder where new data files land."),
+    Setting("feeds.NAME.archive", None, "Folder that ingested files move to, byte for byte.",
+            computed="`archive` beside the inbox"),
+    Setting("feeds.NAME.rejected", None,
+            "Folder for files that cannot be used, each with a `NAME.errors.txt` saying why.",
+            computed="`rejected` beside the inbox"),
+    Setting("feeds.NAME.format", "csv", "`csv` (UTF-8 with a header line) or `parquet`."),
+    Setting("feeds.NAME.period", ..., "Column holding each row's period."),
+    Setting("feeds.NAME.period_type", "date",
+            "`date` (ISO 8601, e.g. 2024-01-07) or `integer` (years, sequence numbers)."),
+    Setting("feeds.NAME.settle", "30s",
+            "A file is complete once unchanged this long on the real clock, or at once when "
+            "`NAME.ready` stands beside it."),
+    Setting("feeds.NAME.cadence", None,
+            "Expected spacing of periods: a duration for dates (`7d` weekly; `30d` monthly, leads "
+            "then round to whole steps), a whole number of periods for integers. A feed is stale "
+            "after 1.5 cadences without a new period; leads count cadence steps.",
+            computed="required for date periods; `1` for integer periods"),
+    Setting("feeds.NAME.columns", None,
+            "Every column a file must have. When given, the models' columns are checked against "
+            "it as the config loads, and a file lacking one is rejected whole."),
+    # models.NAME
+    Setting("models.NAME.feed", ..., "Name of the feed the model reads."),
+    Setting("models.NAME.response", ..., "Column of the quantity forecast (y)."),
+    Setting("models.NAME.predictors", None,
+            "List of predictor columns (x), one or more. Give `predictors` or `interval`, not "
+            "both."),
+    Setting("models.NAME.interval", None,
+            "Instead of predictors: the columns of a forecast made elsewhere, which Plumbline "
+            "scores and audits without fitting anything."),
+    Setting("models.NAME.per", None,
+            "Column that splits the model into one series per value (one line per depot)."),
+    Setting("models.NAME.intercept", True,
+            "Fit an intercept. Without one, R², adjusted R² and F are uncentred."),
+    Setting("models.NAME.level", 0.95,
+            "Nominal coverage of the prediction intervals issued (0.95 = a 95 % interval); "
+            "strictly between 0 and 1."),
+    Setting("models.NAME.window", 104,
+            "Rows in the rolling fit window (the latest rows with a response), at least 3 and "
+            "at least `min_rows`; or `all`."),
+    Setting("models.NAME.recent", 26,
+            "Rows in the recent window that is compared with the baseline for slope shifts; "
+            "more than p + 1."),
+    Setting("models.NAME.min_rows", 10,
+            "Below this many rows a series is warming up: no fit, no finding. Must be more than "
+            "p + 1, where p counts the coefficients including the intercept."),
+    Setting("models.NAME.horizon", None,
+            "Periods of sequential monitoring after the baseline; when they pass without an "
+            "alarm the baseline rolls forward.", computed="2 × the baseline's length"),
+    Setting("models.NAME.baseline", None,
+            "A fixed baseline `{start, end}`; without it the baseline is the first full window "
+            "of each series."),
+    Setting("models.NAME.owners", None, "E-mail addresses that receive this model's findings.",
+            computed="`notify.email.to`"),
+    Setting("models.NAME.thresholds", None, "Decision thresholds of the findings.",
+            computed=_SEE_BELOW),
+    Setting("models.NAME.interval.point", ..., "Column of the point forecast."),
+    Setting("models.NAME.interval.lower", ..., "Column of the interval's lower bound."),
+    Setting("models.NAME.interval.upper", ..., "Column of the interval's upper bound."),
+    Setting("models.NAME.interval.level", ...,
+            "Nominal coverage the interval was made for, strictly between 0 and 1."),
+    Setting("models.NAME.baseline.start", ...,
+            "First period of the baseline (inclusive): a date for a date feed, an integer for "
+            "an integer feed."),
+    Setting("models.NAME.baseline.end", ..., "Last period of the baseline (inclusive)."),
+    Setting("models.NAME.thresholds.significance", 0.05,
+            "Level of every test behind a finding (not the interval's level)."),
+    Setting("models.NAME.thresholds.fdr", 0.10,
+            "Benjamini–Hochberg false-discovery rate across the series of the model, per "
+            "finding kind."),
+    Setting("models.NAME.thresholds.min_scored", 12,
+            "Scored forecasts needed before a `coverage` finding can be raised."),
+    Setting("models.NAME.thresholds.min_r2", None,
+            "`weak_fit` when R² falls below this; `null` turns the rule off."),
+    Setting("models.NAME.thresholds.max_r2_drop", 0.2,
+            "`weak_fit` when R² falls by more than this from the baseline's."),
+    Setting("models.NAME.thresholds.clear_after", 2,
+            "Consecutive passes a condition must be false before its finding clears."),
+    # schedule
+    Setting("schedule.scan", "30s",
+            "How often the daemon looks for complete files: a duration or a five-field cron "
+            "expression."),
+    Setting("schedule.digest", "0 8 * * mon",
+            "When the digest is built and sent: cron (minute hour day month day-of-week, in "
+            "`timezone`, days of the week by name) or a duration."),
+    # notify
+    Setting("notify.html_dir", "reports", "Folder for the HTML pages and digests."),
+    Setting("notify.email", None, "SMTP settings; without them Plumbline writes HTML only."),
+    Setting("notify.email.to", ...,
+            "Recipients of the digest, and the owners of every model that names none."),
+    Setting("notify.email.sender", ..., "The From address."),
+    Setting("notify.email.smtp_host", "localhost", "The SMTP server."),
+    Setting("notify.email.security", "none",
+            "`none`, `starttls` (upgrade a plain connection) or `tls` (TLS from the start)."),
+    Setting("notify.email.smtp_port", None, "The SMTP server's port.",
+            computed="`25`; `587` with starttls; `465` with tls"),
+    Setting("notify.email.username_env", None,
+            "Name of the environment variable holding the SMTP user name (secrets never go in "
+            "this file)."),
+    Setting("notify.email.password_env", None,
+            "Name of the environment variable holding the SMTP password."),
+    Setting("notify.email.timeout", "30s", "How long to wait for the SMTP server."),
+)  # fmt: skip
+
+SETTINGS_BY_PATH: dict[str, Setting] = {setting.path: setting for setting in SETTINGS}
+
+
+def setting_field(
+    path: str, *, factory: Callable[[], Any] | None = None, **constraints: Any
+) -> Any:
+    """A pydantic Field whose default and description come from ``SETTINGS``."""
+    setting = SETTINGS_BY_PATH[path]
+    extra: dict[str, Any] = {"description": setting.meaning, **constraints}
+    if setting.required:
+        return Field(..., **extra)
+    if factory is not None:
+        return Field(default_factory=factory, **extra)
+    if setting.computed is not None:
+        # None stands for "work it out"; the schema should not advertise null as the default.
+        extra["json_schema_extra"] = _drop_default
+    return Field(default=setting.default, validate_default=True, **extra)
+
+
+def _drop_default(schema: dict[str, Any]) -> None:
+    schema.pop("default", None)
+
+
+def reference_markdown() -> str:
+    """The config reference as a Markdown table (the README carries it; a test compares)."""
+    rows = ["| key | default | meaning |", "|---|---|---|"]
+    rows += [f"| `{s.path}` | {s.default_markdown()} | {s.meaning} |" for s in SETTINGS]
+    return "\n".join(rows) + "\n"
+
+
+__all__ = ["SETTINGS", "SETTINGS_BY_PATH", "Setting", "reference_markdown", "setting_field"]
