@@ -1,0 +1,609 @@
+"""The decision policy: rules that turn statistics into findings, and the findings' lifecycle.
+
+Two halves, both pure (no database access; the pass reads and writes through ``monitor.store``):
+
+1. **Rules** (DESIGN.md section 7). Each ``*_conditions`` function takes one model's results as
+   arrays over its series and returns a ``Condition`` per series that was evaluated this pass:
+   ``holds`` says whether the finding's rule is met. Series that could not be evaluated (a test
+   with too few rows, a series warming up) get no condition at all, so an open finding on them is
+   neither renewed nor counted towards clearing. Tests of one kind across the series of one model
+   are controlled together with Benjamini–Hochberg at ``thresholds.fdr`` before they hold.
+
+2. **Lifecycle.** ``plan_transitions`` compares this pass's conditions with the open findings:
+   a condition that holds with no open finding raises a ``new`` one; one that holds on an open
+   finding keeps it ``ongoing`` (not sent again, unless its severity rose); a finding whose
+   condition is false for ``thresholds.clear_after`` consecutive evaluations is ``cleared`` and that
+   is reported once. A lapse shorter than that leaves the finding open, so findings do not flap.
+   An acknowledged finding is never sent again, and a finding that returns within
+   ``REACK_PASSES`` passes of an acknowledged one clearing inherits the acknowledgement.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, replace
+from datetime import datetime, timedelta
+from typing import Literal, Protocol
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from monitor.stats.coverage import CoverageBatch, CoverageZone
+from monitor.stats.multitest import benjamini_hochberg
+from monitor.text import format_p_value
+from monitor.vocabulary import FindingKind, FindingState, Severity
+
+# Durbin–Watson outside 1.5–2.5 is a rule of thumb (common practice), not a test.
+DURBIN_WATSON_LOW = 1.5
+DURBIN_WATSON_HIGH = 2.5
+# A feed is stale when nothing new arrived for this many cadences past its latest period.
+STALE_CADENCES = 1.5
+# A finding that returns within this many passes after an acknowledged one cleared stays quiet.
+REACK_PASSES = 4
+
+
+class DecisionThresholds(Protocol):
+    """What the rules read from a model's ``thresholds`` (DESIGN.md section 7)."""
+
+    significance: float
+    fdr: float
+    min_scored: int
+    min_r2: float | None
+    max_r2_drop: float
+    clear_after: int
+
+
+@dataclass(frozen=True)
+class FindingKey:
+    """What makes two findings the same finding: at most one is open per key."""
+
+    kind: FindingKind
+    model: str | None
+    series: str | None
+    feed: str | None
+    subject: str | None = None  # e.g. the file name of a rejected file
+
+
+@dataclass(frozen=True)
+class Condition:
+    """One rule evaluated on one series (or feed) in this pass."""
+
+    key: FindingKey
+    holds: bool
+    severity: Severity
+    statistic: float | None
+    p_value: float | None
+    since_period: str | None
+    message: str
+    action: str
+
+
+@dataclass(frozen=True)
+class OpenFinding:
+    """An open (``new`` or ``ongoing``) finding as the store holds it."""
+
+    id: int
+    key: FindingKey
+    severity: Severity
+    state: FindingState
+    false_streak: int
+    acknowledged: bool
+
+
+@dataclass(frozen=True)
+class Transition:
+    """What the pass does to one finding.
+
+    ``raise``: record a new finding from ``condition``. ``continue``: the open finding stays
+    (``ongoing``) with ``condition``'s figures. ``lapse``: the condition was false but not yet for
+    ``clear_after`` passes; store ``false_streak``. ``clear``: the finding is cleared.
+    ``notify`` says whether this transition goes into the pass's message.
+    """
+
+    change: Literal["raise", "continue", "lapse", "clear"]
+    key: FindingKey
+    condition: Condition | None
+    finding_id: int | None
+    false_streak: int
+    notify: bool
+    acknowledged: bool = False
+
+
+def plan_transitions(
+    open_findings: Iterable[OpenFinding],
+    conditions: Iterable[Condition],
+    *,
+    clear_after: int | dict[FindingKey, int],
+    recently_acknowledged: Iterable[FindingKey] = (),
+) -> list[Transition]:
+    """The lifecycle step of DESIGN.md section 7 for one pass.
+
+    ``clear_after`` is one number, or one per key (models have their own thresholds).
+    ``recently_acknowledged`` lists keys whose acknowledged finding cleared within the last
+    ``REACK_PASSES`` passes: a new finding on such a key is raised already acknowledged and quiet.
+    """
+    by_key: dict[FindingKey, OpenFinding] = {}
+    for open_finding in open_findings:
+        by_key[open_finding.key] = open_finding
+    quiet = set(recently_acknowledged)
+    transitions: list[Transition] = []
+    for condition in conditions:
+        finding = by_key.get(condition.key)
+        limit = clear_after if isinstance(clear_after, int) else clear_after.get(condition.key, 2)
+        if condition.holds:
+            if finding is None:
+                acknowledged = condition.key in quiet
+                transitions.append(
+                    Transition("raise", condition.key, condition, None, 0, not acknowledged,
+                               acknowledged)
+                )
+            else:
+                escalated = condition.severity.rank > finding.severity.rank
+                transitions.append(
+                    Transition("continue", condition.key, condition, finding.id, 0,
+                               escalated and not finding.acknowledged, finding.acknowledged)
+                )
+        elif finding is not None:
+            streak = finding.false_streak + 1
+            if streak >= max(1, limit):
+                transitions.append(
+                    Transition("clear", condition.key, condition, finding.id, streak,
+                               not finding.acknowledged, finding.acknowledged)
+                )
+            else:
+                transitions.append(
+                    Transition("lapse", condition.key, condition, finding.id, streak, False,
+                               finding.acknowledged)
+                )
+    return transitions
+
+
+# ---------------------------------------------------------------------------------------------
+# Rules. Arrays have one entry per series (shape (s,)), or (s, k) per slope; NaN = not evaluated.
+
+
+def _finite(value: float) -> bool:
+    return not math.isnan(value)
+
+
+def _bh_reject(p_values: NDArray[np.float64], rate: float) -> NDArray[np.bool_]:
+    return benjamini_hochberg(p_values, rate).reject
+
+
+def _series_label(series: str | None) -> str:
+    return "" if series is None else f" for {series}"
+
+
+def coverage_conditions(
+    model: str,
+    series: Sequence[str | None],
+    audit: CoverageBatch,
+    thresholds: DecisionThresholds,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``coverage``: enough scored forecasts, hit rate below nominal, Kupiec rejects after BH.
+
+    Kupiec's test is two-sided, so the hit rate must also be below nominal: intervals that are
+    too wide are not a coverage problem the owner needs waking for. Severity ``critical`` in the
+    red zone (Basel Committee 1996), ``warning`` otherwise. ``audit`` entries align with ``series``.
+    """
+    scored = np.asarray(audit.scored)
+    p = np.where(scored >= thresholds.min_scored, audit.kupiec_p_value, np.nan)
+    reject = _bh_reject(p, thresholds.fdr)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if not _finite(float(p[i])):
+            continue
+        hit_rate = float(audit.hit_rate[i])
+        holds = bool(reject[i]) and hit_rate < audit.nominal
+        zone = audit.zone[i]
+        severity = Severity.CRITICAL if zone is CoverageZone.RED else Severity.WARNING
+        out.append(Condition(
+            FindingKey(FindingKind.COVERAGE, model, name, None), holds, severity,
+            hit_rate, float(p[i]), since[i],
+            f"{int(audit.hits[i])} of {int(scored[i])} actuals{_series_label(name)} fell inside "
+            f"their {audit.nominal:.0%} prediction intervals (hit rate {hit_rate:.0%}, "
+            f"zone {zone.value if zone else 'n/a'}); Kupiec p {format_p_value(float(p[i]))}. "
+            "The intervals issued are narrower than the errors they meet.",
+            "Check for a change in the error variance or a missing predictor; widen or refit "
+            "before relying on these intervals.",
+        ))
+    return out
+
+
+def clustered_miss_conditions(
+    model: str,
+    series: Sequence[str | None],
+    audit: CoverageBatch,
+    thresholds: DecisionThresholds,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``clustered_misses``: Christoffersen's (1998) independence test rejects after BH."""
+    scored = np.asarray(audit.scored)
+    p = np.where(scored >= thresholds.min_scored, audit.independence_p_value, np.nan)
+    reject = _bh_reject(p, thresholds.fdr)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if not _finite(float(p[i])):
+            continue
+        out.append(Condition(
+            FindingKey(FindingKind.CLUSTERED_MISSES, model, name, None), bool(reject[i]),
+            Severity.NOTICE, float(audit.independence_statistic[i]), float(p[i]), since[i],
+            f"Misses{_series_label(name)} come in runs rather than one at a time "
+            f"(independence p {format_p_value(float(p[i]))}): a miss makes the next one likelier.",
+            "Look for autocorrelated errors or a lagging predictor; consider adding last "
+            "period's error or a trend term.",
+        ))
+    return out
+
+
+def slope_shift_conditions(
+    model: str,
+    series: Sequence[str | None],
+    slopes: Sequence[str],
+    statistic: ArrayLike,
+    p_value: ArrayLike,
+    thresholds: DecisionThresholds,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``slope_shift``: a per-slope baseline-vs-recent test rejects after BH.
+
+    The family is every (series, slope) test of the model; a series holds when any of its slopes
+    rejects, and the condition reports its smallest p-value. ``statistic`` and ``p_value`` are
+    (s, k) arrays, NaN where not tested.
+    """
+    stat = np.asarray(statistic, dtype=float).reshape(len(series), len(slopes))
+    p = np.asarray(p_value, dtype=float).reshape(len(series), len(slopes))
+    reject = _bh_reject(p.ravel(), thresholds.fdr).reshape(p.shape)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        tested = ~np.isnan(p[i])
+        if not tested.any():
+            continue
+        j = int(np.nanargmin(p[i]))
+        holds = bool(reject[i].any())
+        out.append(Condition(
+            FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds, Severity.WARNING,
+            float(stat[i, j]), float(p[i, j]), since[i],
+            f"The slope on {slopes[j]}{_series_label(name)} in the recent window differs from "
+            f"the baseline's by {abs(float(stat[i, j])):.1f} combined standard errors "
+            f"(p {format_p_value(float(p[i, j]))}).",
+            "Confirm whether the process changed; if it did, rebaseline the model "
+            "(plumbline rebaseline) so forecasts use the new relationship.",
+        ))
+    return out
+
+
+def structural_break_conditions(
+    model: str,
+    series: Sequence[str | None],
+    crossed: ArrayLike,
+    ratio: ArrayLike,
+    break_period: Sequence[str | None],
+    evaluated: ArrayLike,
+) -> list[Condition]:
+    """``structural_break``: the sequential monitoring statistic crossed its boundary.
+
+    ``ratio`` is the statistic over its boundary (above 1 = crossed); ``break_period`` the
+    estimated first period of the new regime; ``evaluated`` False for series not monitored.
+    """
+    crossed_a = np.asarray(crossed, dtype=bool)
+    ratio_a = np.asarray(ratio, dtype=float)
+    evaluated_a = np.asarray(evaluated, dtype=bool)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if not evaluated_a[i]:
+            continue
+        out.append(Condition(
+            FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(crossed_a[i]),
+            Severity.CRITICAL, float(ratio_a[i]), None, break_period[i],
+            f"Since the baseline the forecast errors{_series_label(name)} have drifted past the "
+            f"monitoring boundary ({float(ratio_a[i]):.2f} times the boundary); the new regime "
+            f"is estimated to start at {break_period[i]}.",
+            "The relationship the forecasts rest on has probably changed: review recent "
+            "periods, then rebaseline from the estimated break or refit with the cause.",
+        ))
+    return out
+
+
+def significance_conditions(
+    model: str,
+    series: Sequence[str | None],
+    slopes: Sequence[str],
+    baseline_estimate: ArrayLike,
+    baseline_p_value: ArrayLike,
+    current_estimate: ArrayLike,
+    current_p_value: ArrayLike,
+    thresholds: DecisionThresholds,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``significance_lost`` and ``sign_flip`` from the baseline's and the current slopes.
+
+    Lost: the baseline's slope was significant and the current fit's slope interval (at the
+    ``significance`` level) contains 0, i.e. its p-value is at least ``significance``. Flip: the
+    current slope is significant with the opposite sign to the baseline's. (s, k) arrays.
+    """
+    shape = (len(series), len(slopes))
+    b0 = np.asarray(baseline_estimate, dtype=float).reshape(shape)
+    p0 = np.asarray(baseline_p_value, dtype=float).reshape(shape)
+    b1 = np.asarray(current_estimate, dtype=float).reshape(shape)
+    p1 = np.asarray(current_p_value, dtype=float).reshape(shape)
+    alpha = thresholds.significance
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        valid = ~(np.isnan(p0[i]) | np.isnan(p1[i]))
+        if not valid.any():
+            continue
+        lost = valid & (p0[i] < alpha) & (p1[i] >= alpha)
+        flip = valid & (p1[i] < alpha) & (np.sign(b1[i]) == -np.sign(b0[i])) & (b0[i] != 0)
+        j_lost = int(np.argmax(lost)) if lost.any() else int(np.argmax(valid))
+        out.append(Condition(
+            FindingKey(FindingKind.SIGNIFICANCE_LOST, model, name, None), bool(lost.any()),
+            Severity.WARNING, float(b1[i, j_lost]), float(p1[i, j_lost]), since[i],
+            f"The slope on {slopes[j_lost]}{_series_label(name)} was clearly non-zero at the "
+            f"baseline but its current interval includes zero (p "
+            f"{format_p_value(float(p1[i, j_lost]))}).",
+            f"Ask whether {slopes[j_lost]} still drives the response; forecasts from this model "
+            "may be no better than the average.",
+        ))
+        j_flip = int(np.argmax(flip)) if flip.any() else j_lost
+        out.append(Condition(
+            FindingKey(FindingKind.SIGN_FLIP, model, name, None), bool(flip.any()),
+            Severity.CRITICAL, float(b1[i, j_flip]), float(p1[i, j_flip]), since[i],
+            f"The slope on {slopes[j_flip]}{_series_label(name)} is now significant with the "
+            f"opposite sign to the baseline's ({float(b0[i, j_flip]):.4g} then, "
+            f"{float(b1[i, j_flip]):.4g} now).",
+            "Stop using this model's forecasts until the reversal is understood: check the data "
+            "feed for a changed unit or definition, then rebaseline or redesign.",
+        ))
+    return out
+
+
+def weak_fit_conditions(
+    model: str,
+    series: Sequence[str | None],
+    r_squared: ArrayLike,
+    baseline_r_squared: ArrayLike,
+    thresholds: DecisionThresholds,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``weak_fit``: R² below ``min_r2`` (when set) or fallen by more than ``max_r2_drop``."""
+    r2 = np.asarray(r_squared, dtype=float)
+    r2_base = np.asarray(baseline_r_squared, dtype=float)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if math.isnan(r2[i]):
+            continue
+        low = thresholds.min_r2 is not None and r2[i] < thresholds.min_r2
+        dropped = not math.isnan(r2_base[i]) and (r2_base[i] - r2[i]) > thresholds.max_r2_drop
+        base_text = "" if math.isnan(r2_base[i]) else f" (baseline {r2_base[i]:.2f})"
+        out.append(Condition(
+            FindingKey(FindingKind.WEAK_FIT, model, name, None), bool(low or dropped),
+            Severity.NOTICE, float(r2[i]), None, since[i],
+            f"The current fit{_series_label(name)} explains less of the response: R² "
+            f"{r2[i]:.2f}{base_text}.",
+            "Intervals are wider and forecasts less informative; look for a missing predictor "
+            "or a change in how the data are recorded.",
+        ))
+    return out
+
+
+def extrapolation_conditions(
+    model: str,
+    series: Sequence[str | None],
+    flagged: ArrayLike,
+    evaluated: ArrayLike,
+    first_period: Sequence[str | None],
+    worst_leverage: ArrayLike,
+) -> list[Condition]:
+    """``extrapolation``: a plan row outside the fitted range or above the largest leverage."""
+    flagged_a = np.asarray(flagged, dtype=bool)
+    evaluated_a = np.asarray(evaluated, dtype=bool)
+    lev = np.asarray(worst_leverage, dtype=float)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if not evaluated_a[i]:
+            continue
+        out.append(Condition(
+            FindingKey(FindingKind.EXTRAPOLATION, model, name, None), bool(flagged_a[i]),
+            Severity.NOTICE, None if math.isnan(lev[i]) else float(lev[i]), None,
+            first_period[i],
+            f"A plan row{_series_label(name)} asks for a forecast outside the range of "
+            "predictor values the model was fitted on; the straight line is an assumption "
+            "there, and the interval understates the risk.",
+            "Treat this forecast with extra caution, or gather observations at such values "
+            "before relying on it.",
+        ))
+    return out
+
+
+def autocorrelation_conditions(
+    model: str,
+    series: Sequence[str | None],
+    durbin_watson: ArrayLike,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``autocorrelation``: Durbin–Watson below 1.5 or above 2.5 (common practice)."""
+    dw = np.asarray(durbin_watson, dtype=float)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if math.isnan(dw[i]):
+            continue
+        holds = dw[i] < DURBIN_WATSON_LOW or dw[i] > DURBIN_WATSON_HIGH
+        direction = "positively" if dw[i] < 2 else "negatively"
+        out.append(Condition(
+            FindingKey(FindingKind.AUTOCORRELATION, model, name, None), bool(holds),
+            Severity.NOTICE, float(dw[i]), None, since[i],
+            f"Consecutive errors{_series_label(name)} look {direction} correlated "
+            f"(Durbin–Watson {dw[i]:.2f}); the intervals assume independent errors and may be "
+            "too narrow.",
+            "Consider a lagged or seasonal term; read hit rates with that in mind.",
+        ))
+    return out
+
+
+def heteroscedasticity_conditions(
+    model: str,
+    series: Sequence[str | None],
+    statistic: ArrayLike,
+    p_value: ArrayLike,
+    thresholds: DecisionThresholds,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``heteroscedasticity``: Breusch–Pagan (Koenker) rejects after BH."""
+    stat = np.asarray(statistic, dtype=float)
+    p = np.asarray(p_value, dtype=float)
+    reject = _bh_reject(p, thresholds.fdr)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if math.isnan(p[i]):
+            continue
+        out.append(Condition(
+            FindingKey(FindingKind.HETEROSCEDASTICITY, model, name, None), bool(reject[i]),
+            Severity.NOTICE, float(stat[i]), float(p[i]), since[i],
+            f"The spread of the errors{_series_label(name)} changes with the predictors "
+            f"(Breusch–Pagan p {format_p_value(float(p[i]))}); one interval width does not fit "
+            "all plan rows.",
+            "Expect misses at the high end of the predictors; consider modelling a transformed "
+            "response.",
+        ))
+    return out
+
+
+def not_estimable_conditions(
+    model: str,
+    series: Sequence[str | None],
+    estimable: ArrayLike,
+    fitted_before: ArrayLike,
+    reasons: Sequence[str | None],
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``not_estimable``: a series fitted before can no longer be fitted."""
+    ok = np.asarray(estimable, dtype=bool)
+    before = np.asarray(fitted_before, dtype=bool)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if not before[i]:
+            continue
+        out.append(Condition(
+            FindingKey(FindingKind.NOT_ESTIMABLE, model, name, None), not bool(ok[i]),
+            Severity.WARNING, None, None, since[i],
+            f"The model{_series_label(name)} can no longer be fitted: {reasons[i] or 'unknown'}. "
+            "No new forecasts are issued for it.",
+            "Check the feed for a predictor that stopped varying or columns that now move "
+            "together.",
+        ))
+    return out
+
+
+def stale_feed_condition(
+    feed: str,
+    latest_period: datetime | None,
+    latest_period_text: str | None,
+    as_of: datetime,
+    cadence: timedelta,
+) -> Condition | None:
+    """``stale_feed``: no new rows for 1.5 × cadence past the latest period (business clock).
+
+    None when the feed has never delivered a row (nothing to be late against).
+    """
+    if latest_period is None:
+        return None
+    overdue = as_of - latest_period
+    limit = cadence * STALE_CADENCES
+    days = overdue.total_seconds() / 86400
+    return Condition(
+        FindingKey(FindingKind.STALE_FEED, None, None, feed), overdue > limit, Severity.WARNING,
+        days, None, latest_period_text,
+        f"Feed {feed} has delivered nothing newer than {latest_period_text} "
+        f"({days:.0f} days before now, more than 1.5 cadences); forecasts for its models are "
+        "not being scored or refreshed.",
+        "Check the upstream export that drops files into the inbox.",
+    )
+
+
+@dataclass(frozen=True)
+class RejectedInput:
+    """One rejection from ingest, as the rule needs it."""
+
+    feed: str
+    file_name: str
+    whole_file: bool
+    duplicate: bool
+    rows_rejected: int
+    reason: str
+
+
+def rejected_input_conditions(rejections: Iterable[RejectedInput]) -> list[Condition]:
+    """``rejected_input``: a file or rows were rejected in this pass (one finding per file).
+
+    ``warning`` for a whole file, ``notice`` for rows or a duplicate. Each file is its own
+    finding (key subject = file name); it clears after ``clear_after`` passes without a new
+    rejection of that name.
+    """
+    out: list[Condition] = []
+    for item in rejections:
+        severity = Severity.WARNING if item.whole_file and not item.duplicate else Severity.NOTICE
+        if item.duplicate:
+            what = f"File {item.file_name} in feed {item.feed} was already ingested: {item.reason}"
+        elif item.whole_file:
+            what = f"File {item.file_name} in feed {item.feed} was rejected: {item.reason}"
+        else:
+            what = (f"{item.rows_rejected} row(s) of {item.file_name} in feed {item.feed} were "
+                    f"rejected: {item.reason}")
+        out.append(Condition(
+            FindingKey(FindingKind.REJECTED_INPUT, None, None, item.feed, item.file_name), True,
+            severity, float(item.rows_rejected), None, None, what,
+            "See the report beside the file in the rejected folder; fix and drop a corrected "
+            "file (the original is kept).",
+        ))
+    return out
+
+
+def lapsed_rejections(
+    open_findings: Iterable[OpenFinding], raised: Iterable[Condition], feeds: Iterable[str]
+) -> list[Condition]:
+    """False conditions for open ``rejected_input`` findings of ``feeds`` not raised again."""
+    again = {c.key for c in raised}
+    feed_set = set(feeds)
+    out: list[Condition] = []
+    for finding in open_findings:
+        key = finding.key
+        if key.kind is FindingKind.REJECTED_INPUT and key.feed in feed_set and key not in again:
+            out.append(Condition(key, False, finding.severity, None, None, None, "", ""))
+    return out
+
+
+def with_message(condition: Condition, message: str) -> Condition:
+    """A copy of ``condition`` with another message (for callers that add context)."""
+    return replace(condition, message=message)
+
+
+__all__ = [
+    "DURBIN_WATSON_HIGH",
+    "DURBIN_WATSON_LOW",
+    "REACK_PASSES",
+    "STALE_CADENCES",
+    "Condition",
+    "DecisionThresholds",
+    "FindingKey",
+    "OpenFinding",
+    "RejectedInput",
+    "Transition",
+    "autocorrelation_conditions",
+    "clustered_miss_conditions",
+    "coverage_conditions",
+    "extrapolation_conditions",
+    "heteroscedasticity_conditions",
+    "lapsed_rejections",
+    "not_estimable_conditions",
+    "plan_transitions",
+    "rejected_input_conditions",
+    "significance_conditions",
+    "slope_shift_conditions",
+    "stale_feed_condition",
+    "structural_break_conditions",
+    "weak_fit_conditions",
+    "with_message",
+]
