@@ -331,7 +331,7 @@ def durbin_watson_test(residuals: ArrayLike, x: ArrayLike, intercept: bool = Tru
     left, singular, _ = np.linalg.svd(scaled, full_matrices=True)
     rank = int((singular > singular.max(initial=0.0) * n * np.finfo(np.float64).eps).sum())
     if n - rank < 2:
-        why = f"too few residual degrees of freedom ({n - rank}) for the exact p-value"
+        why = f"too few residual degrees of freedom ({n - rank})"
         return TestResult(plain.statistic, None, None, why)
     residual_basis = left[:, rank:]  # orthonormal basis of the residual space, (n, n − rank)
     # The non-zero eigenvalues of M·A·M are those of Bᵀ A B = (D B)ᵀ (D B), D the difference
