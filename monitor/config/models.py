@@ -198,7 +198,7 @@ class Model(_Section):
     horizon: Annotated[int, Field(ge=1)] | None = _field("models.NAME.horizon")
     baseline: Baseline | None = _field("models.NAME.baseline")
     owners: list[Address] | None = _field("models.NAME.owners")
-    thresholds: Thresholds = _field("models.NAME.thresholds", factory=Thresholds)
+    thresholds: Thresholds = _field("models.NAME.thresholds", section=True)
 
     @property
     def fitted(self) -> bool:
@@ -336,8 +336,8 @@ class PlumblineConfig(_Section):
     timezone: str = _field("timezone")
     feeds: dict[Name, Feed] = _field("feeds")
     models: dict[Name, Model] = _field("models")
-    schedule: Schedule = _field("schedule", factory=Schedule)
-    notify: Notify = _field("notify", factory=Notify)
+    schedule: Schedule = _field("schedule", section=True)
+    notify: Notify = _field("notify", section=True)
 
     _source: Path | None = PrivateAttr(default=None)
 

@@ -8,7 +8,6 @@ against the models. To add a key: add its row here, then the field that reads it
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -169,16 +168,19 @@ SETTINGS: tuple[Setting, ...] = (
 SETTINGS_BY_PATH: dict[str, Setting] = {setting.path: setting for setting in SETTINGS}
 
 
-def setting_field(
-    path: str, *, factory: Callable[[], Any] | None = None, **constraints: Any
-) -> Any:
-    """A pydantic Field whose default and description come from ``SETTINGS``."""
+def setting_field(path: str, *, section: bool = False, **constraints: Any) -> Any:
+    """A pydantic Field whose default and description come from ``SETTINGS``.
+
+    ``section=True`` marks a nested section (``thresholds``, ``schedule``, ``notify``): when the
+    file leaves it out it is validated from an empty mapping, with the same context as the rest
+    (so its relative paths resolve against the config file's folder too).
+    """
     setting = SETTINGS_BY_PATH[path]
     extra: dict[str, Any] = {"description": setting.meaning, **constraints}
     if setting.required:
         return Field(..., **extra)
-    if factory is not None:
-        return Field(default_factory=factory, **extra)
+    if section:
+        return Field(default_factory=dict, validate_default=True, **extra)
     if setting.computed is not None:
         # None stands for "work it out"; the schema should not advertise null as the default.
         extra["json_schema_extra"] = _drop_default

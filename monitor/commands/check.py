@@ -1,0 +1,280 @@
+"""``plumbline check``: validate the config and look at each feed's inbox, writing nothing.
+
+    plumbline check [-c/--config PATH]
+
+The config is loaded as a pass would load it (``monitor.config.load_config``). Then, for each
+feed, the inbox is looked at: does it exist, how many data files wait in it, and does the header
+of the newest complete file hold every column the feed's models need (with the nearest name for a
+missing one). "Complete" follows DESIGN.md section 6: a file with ``NAME.ready`` beside it, or one
+unchanged for the feed's ``settle`` time; names starting with ``.`` or ending in ``.part``,
+``.tmp`` or ``.ready`` are never data. Only the header is read: the first line of a CSV, the
+schema in a Parquet file's footer.
+
+Nothing is written: no database, folder, report or marker is made, and no file is moved.
+
+Exit status: 0 when the config is valid, even with warnings (a missing inbox, a header lacking a
+column, an unset SMTP environment variable, a cron schedule inside the daylight-saving hours):
+they describe the data and the machine, not the file. 2 when the config is invalid; each problem
+is printed on its own line to stderr.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from datetime import datetime
+from pathlib import Path
+
+from monitor.config import (
+    CronSchedule,
+    Feed,
+    PlumblineConfig,
+    feed_columns,
+    load_config,
+    models_of_feed,
+    parse_schedule,
+)
+from monitor.errors import ConfigError
+from monitor.text import did_you_mean
+
+IGNORED_SUFFIXES = (".part", ".tmp", ".ready")
+HEADER_LIMIT = 1 << 20  # a header line longer than 1 MiB is not a header
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "check",
+        help="validate the config and look at each feed's inbox; writes nothing",
+        description="Validate the config file, then look at each feed's inbox: whether it "
+        "exists, how many files wait, and whether the newest complete file's header has every "
+        "column the models need. Writes nothing. Exit 0 when the config is valid (warnings "
+        "included), 2 when it is not.",
+    )
+    parser.add_argument(
+        "-c",
+        "--config",
+        default="plumbline.yaml",
+        metavar="PATH",
+        help="the config file (default: ./plumbline.yaml)",
+    )
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    try:
+        config = load_config(args.config)
+    except ConfigError as exc:
+        problems = str(exc).splitlines()
+        for line in problems:
+            print(line, file=sys.stderr)
+        count = f"{len(problems)} problem" + ("" if len(problems) == 1 else "s")
+        print(f"plumbline: the config is invalid ({count}); nothing else was checked",
+              file=sys.stderr)  # fmt: skip
+        return exc.exit_code
+    report = check_config(config, now=time.time())
+    for line in report.lines:
+        print(line)
+    warnings = len(report.warnings)
+    verdict = "no warnings" if not warnings else f"{warnings} warning" + "s" * (warnings > 1)
+    print(f"config valid; {verdict}")
+    return 0
+
+
+@dataclass
+class InboxReport:
+    """What ``check`` saw in one feed's inbox."""
+
+    exists: bool
+    waiting: list[Path] = field(default_factory=list)  # data files, complete or not
+    complete: list[Path] = field(default_factory=list)
+    newest: Path | None = None
+    header: tuple[str, ...] | None = None
+    header_error: str | None = None
+    missing: list[str] = field(default_factory=list)  # needed columns the header lacks
+
+
+@dataclass
+class CheckReport:
+    """The lines ``check`` prints, the warnings among them, and each feed's inbox."""
+
+    lines: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    inboxes: dict[str, InboxReport] = field(default_factory=dict)
+
+    def say(self, line: str) -> None:
+        self.lines.append(line)
+
+    def warn(self, line: str) -> None:
+        self.warnings.append(line)
+        self.lines.append(f"  warning: {line}")
+
+
+def check_config(config: PlumblineConfig, *, now: float) -> CheckReport:
+    """Look at what a valid config points to; ``now`` (seconds since the epoch) judges settling."""
+    report = CheckReport()
+    source = config.source or Path("plumbline.yaml")
+    report.say(
+        f"{source}: valid; {_count(len(config.feeds), 'feed')}, "
+        f"{_count(len(config.models), 'model')}, timezone {config.timezone}"
+    )
+    state = "exists" if config.database.is_file() else "not created yet; the first pass makes it"
+    report.say(f"database: {config.database} ({state})")
+    _check_schedules(config, report)
+    _check_email(config, report)
+    for name, feed in config.feeds.items():
+        _check_feed(config, name, feed, now, report)
+    return report
+
+
+def _check_schedules(config: PlumblineConfig, report: CheckReport) -> None:
+    parts: list[str] = []
+    risky: list[str] = []
+    for key in ("scan", "digest"):
+        text = getattr(config.schedule, key)
+        schedule = parse_schedule(text)
+        if not isinstance(schedule, CronSchedule):
+            parts.append(f"{key} every {text}")
+            continue
+        parts.append(f'{key} by cron "{text}" in {config.timezone}')
+        night = sorted(schedule.hours & {1, 2})
+        if night and schedule.hour != "*" and _has_daylight_saving(config):
+            risky.append(
+                f"schedule.{key} fires in the {night[0]:02d}:00 hour, inside "
+                f"01:00–03:00 where daylight-saving changes in {config.timezone} skip or repeat "
+                "an hour; a time outside that window is safer"
+            )
+    report.say(f"schedule: {'; '.join(parts)}")
+    for line in risky:
+        report.warn(line)
+
+
+def _has_daylight_saving(config: PlumblineConfig) -> bool:
+    year = datetime.now().year
+    offsets = {datetime(year, month, 15, tzinfo=config.zone).utcoffset() for month in (1, 7)}
+    return len(offsets) > 1
+
+
+def _check_email(config: PlumblineConfig, report: CheckReport) -> None:
+    email = config.notify.email
+    if email is None:
+        report.say(f"notify: HTML pages in {config.notify.html_dir}; no e-mail configured")
+        return
+    report.say(
+        f"notify: HTML pages in {config.notify.html_dir}; e-mail from {email.sender} via "
+        f"{email.smtp_host}:{email.smtp_port} ({email.security}) to {', '.join(email.to)}"
+    )
+    for key in ("username_env", "password_env"):
+        variable = getattr(email, key)
+        if variable is not None and variable not in os.environ:
+            report.warn(f"notify.email.{key}: the environment variable {variable} is not set here")
+
+
+def _check_feed(
+    config: PlumblineConfig, name: str, feed: Feed, now: float, report: CheckReport
+) -> None:
+    models = models_of_feed(config, name)
+    listed = ", ".join(models) if models else "none"
+    report.say(
+        f"feed {name}: {feed.format}, period {feed.period} ({feed.period_type}); models: {listed}"
+    )
+    if not models:
+        report.warn(f"feed {name}: no model reads this feed")
+    needed = set(feed_columns(config, name)) | set(feed.columns or ())
+    inbox = inspect_inbox(feed, needed, now=now)
+    report.inboxes[name] = inbox
+    if not inbox.exists:
+        report.say(f"  inbox {feed.inbox}: does not exist")
+        report.warn(f"feed {name}: the inbox does not exist, so no file can arrive yet")
+        return
+    settling = len(inbox.waiting) - len(inbox.complete)
+    waiting = _count(len(inbox.waiting), "data file") + " waiting"
+    if settling:
+        waiting += f" ({settling} not complete yet)"
+    report.say(f"  inbox {feed.inbox}: {waiting}")
+    if inbox.newest is None:
+        return
+    shown = inbox.newest.name
+    if inbox.header_error is not None:
+        report.warn(f"feed {name}: cannot read the header of {shown}: {inbox.header_error}")
+    elif inbox.missing:
+        header = inbox.header or ()
+        lacking = ", ".join(f"'{column}'{did_you_mean(column, header)}" for column in inbox.missing)
+        report.warn(f"feed {name}: {shown} lacks column(s) the config needs: {lacking}")
+    else:
+        report.say(f"  newest complete file {shown}: its header has every column needed")
+
+
+def inspect_inbox(feed: Feed, needed: set[str], *, now: float) -> InboxReport:
+    """The inbox's data files, which are complete, and the newest complete file's header."""
+    if not feed.inbox.is_dir():
+        return InboxReport(exists=False)
+    report = InboxReport(exists=True)
+    entries = {entry.name: entry for entry in os.scandir(feed.inbox)}
+    stamped: list[tuple[float, str, Path]] = []
+    for entry_name, entry in sorted(entries.items()):
+        if not is_data_name(entry_name) or not entry.is_file():
+            continue
+        path = Path(entry.path)
+        report.waiting.append(path)
+        mtime = entry.stat().st_mtime
+        marked = f"{entry_name}.ready" in entries
+        if marked or now - mtime >= feed.settle.total_seconds():
+            report.complete.append(path)
+            stamped.append((mtime, entry_name, path))
+    if not stamped:
+        return report
+    report.newest = max(stamped)[2]
+    try:
+        report.header = read_header(report.newest, feed.format)
+    except ValueError as exc:
+        report.header_error = str(exc)
+        return report
+    report.missing = sorted(needed - set(report.header))
+    return report
+
+
+def is_data_name(name: str) -> bool:
+    """False for the names DESIGN.md section 6 says are never read as data."""
+    return not name.startswith(".") and not name.endswith(IGNORED_SUFFIXES)
+
+
+def read_header(path: Path, file_format: str) -> tuple[str, ...]:
+    """The column names of a data file, reading only its header. Raises ValueError."""
+    if file_format == "parquet":
+        # Imported here: pyarrow is slow to import and only Parquet feeds need it.
+        import pyarrow.parquet  # type: ignore[import-untyped]
+
+        try:
+            return tuple(pyarrow.parquet.read_schema(path).names)
+        except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+            raise ValueError(f"not a readable Parquet file ({exc})") from None
+    with path.open("rb") as stream:
+        raw = b""
+        while not raw.strip():
+            line = stream.readline(HEADER_LIMIT)
+            if not line:
+                raise ValueError("the file is empty (no header line)")
+            if not line.endswith(b"\n") and len(line) >= HEADER_LIMIT:
+                raise ValueError("the first line is longer than 1 MiB; not a CSV header")
+            raw = line
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise ValueError(f"not UTF-8 text (byte {exc.start} of the header)") from None
+    try:
+        cells = next(csv.reader([text]))
+    except csv.Error as exc:
+        raise ValueError(f"the header is not CSV ({exc})") from None
+    return tuple(cell.strip() for cell in cells)
+
+
+def _count(number: int, noun: str) -> str:
+    return f"{number} {noun}" + ("" if number == 1 else "s")
+
+
+__all__ = ["CheckReport", "InboxReport", "check_config", "inspect_inbox", "is_data_name",
+           "read_header", "register", "run"]  # fmt: skip
