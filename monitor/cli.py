@@ -18,8 +18,10 @@ from monitor.errors import PlumblineError
 
 # Module names under monitor.commands, in the order ``plumbline --help`` lists them.
 COMMAND_MODULES: tuple[str, ...] = (
+    "check",
     "fit",
     "breaks",
+    "schema",
 )
 
 
