@@ -291,6 +291,8 @@ def test_table_opens_with_the_result_and_avoids_borrowed_looks(
         "pallets", "--at", "order_lines=5200,pallets=140", "--at", "order_lines=9000,pallets=100",
     )  # fmt: skip
     assert status == 0 and err == ""
+    # The figures are statsmodels' for this file (the JSON tests above check them to 1e-9),
+    # rounded to 3 and 4 significant digits as the sentence prints them.
     first_sentence = out.split("\n\n")[0].replace("\n", " ")
     assert first_sentence.startswith("R² 0.943 on 40 rows: pick_hours rises by 0.07629 for each ")
     assert "(95 % interval 0.05535 to 0.09723)" in first_sentence
