@@ -161,12 +161,12 @@ def refine_augmented(
     return intercept_value, slopes
 
 
-def t_quantile(probability: float, df: NDArray[np.int64] | int) -> FloatArray:
+def t_quantile(probability: float, df: FloatArray | NDArray[np.int64] | float) -> FloatArray:
     """Student-t quantile at ``probability`` for each degrees of freedom (scipy's ``stdtrit``)."""
     return np.asarray(special.stdtrit(np.asarray(df, dtype=np.float64), probability))
 
 
-def t_two_sided_p(t: FloatArray, df: NDArray[np.int64] | int) -> FloatArray:
+def t_two_sided_p(t: FloatArray, df: FloatArray | NDArray[np.int64] | float) -> FloatArray:
     """Two-sided p-value ``2 P(T_df > |t|)``, elementwise (scipy's ``stdtr``)."""
     return np.asarray(2.0 * special.stdtr(np.asarray(df, dtype=np.float64), -np.abs(t)))
 

@@ -51,6 +51,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from monitor.stats._batch import FastFit, fast_fit
 from monitor.stats._linalg import (
     EPS,
     FloatArray,
@@ -86,6 +87,11 @@ CONSTANT_RTOL = 1e-12
 # Steps of augmented-system refinement. One step reaches the limit the float64 data allow on
 # every NIST StRD linear file (a second changes nothing there); see tests/stats/test_ols_nist.py.
 REFINEMENT_STEPS = 1
+
+
+def _freeze_owned(array: FloatArray) -> FloatArray:
+    array.setflags(write=False)
+    return array
 
 
 def _frozen(array: ArrayLike) -> FloatArray:
@@ -342,6 +348,11 @@ def fit_ols(
 
     if k:
         q, r = np.linalg.qr(z)
+        # Make R's diagonal positive (R is then the Cholesky factor of Z'Z, the form the
+        # batched path computes), so r_inverse is the same in both.
+        signs = np.where(np.diag(r) < 0.0, -1.0, 1.0)
+        q = q * signs
+        r = r * signs[:, None]
         singular = np.linalg.svd(r, compute_uv=False)
         if singular[-1] <= singular[0] * max(n, k) * EPS:
             names_hit = [terms[int(intercept) + j] for j in collinear_columns(r)]
@@ -624,55 +635,141 @@ def fit_batch(
     )
     if mask_arr.shape != (s_count, n_max):
         raise ValueError(f"mask must be ({s_count}, {n_max}); got {mask_arr.shape}")
-    fits = [
-        fit_ols(x_arr[i, mask_arr[i]], y_arr[i, mask_arr[i]], intercept=intercept, level=level,
-                names=terms[int(intercept):])
-        for i in range(s_count)
-    ]
-    return _assemble(fits, terms, intercept, level, mask_arr, np.zeros(s_count, dtype=bool))
-
-
-def _assemble(
-    fits: list[OlsFit], terms: tuple[str, ...], intercept: bool, level: float,
-    mask: NDArray[np.bool_], fast_path: NDArray[np.bool_],
-) -> BatchFit:
-    s_count, n_max = mask.shape
-    p = len(terms)
-    k = p - int(intercept)
-
-    def stack(name: str) -> FloatArray:
-        return _frozen(np.stack([np.asarray(getattr(f, name), dtype=np.float64) for f in fits])
-                       if fits else np.zeros((0,)))
-
-    def rows(name: str) -> FloatArray:
-        out = np.full((s_count, n_max), math.nan)
-        for i, f in enumerate(fits):
-            out[i, mask[i]] = getattr(f, name)
-        return _frozen(out)
-
-    def optional(name: str) -> FloatArray:
-        return _frozen([math.nan if getattr(f, name) is None else getattr(f, name) for f in fits])
-
+    fast = fast_fit(x_arr, y_arr, mask_arr, intercept)
+    out = _fast_arrays(fast, y_arr, mask_arr, intercept, level)
+    reasons: list[str | None] = [None] * s_count
+    for i in np.flatnonzero(fast.needs_fallback):
+        single = fit_ols(x_arr[i, mask_arr[i]], y_arr[i, mask_arr[i]], intercept=intercept,
+                         level=level, names=terms[int(intercept) :])
+        _copy_into(out, int(i), single, mask_arr[i])
+        reasons[i] = single.reason
     with_correlation = intercept and k == 1
+    frozen = {name: _freeze_owned(values) for name, values in out.items()}
     return BatchFit(
-        terms=terms, intercept=intercept, level=level,
-        n=np.array([f.n for f in fits], dtype=np.int64), p=p,
-        residual_df=np.array([f.residual_df for f in fits], dtype=np.int64),
-        estimable=np.array([f.estimable for f in fits], dtype=bool),
-        reason=[f.reason for f in fits],
-        exact_fit=np.array([f.exact_fit for f in fits], dtype=bool),
-        coef=stack("coef"), standard_error=stack("standard_error"), t=stack("t"),
-        p_value=stack("p_value"), lower=stack("lower"), upper=stack("upper"),
-        cov_unscaled=stack("cov_unscaled"), residual_std_error=stack("residual_std_error"),
-        sse=stack("sse"), ssr=stack("ssr"), sst=stack("sst"), r_squared=stack("r_squared"),
-        adj_r_squared=stack("adj_r_squared"), f_statistic=optional("f_statistic"),
-        f_p_value=optional("f_p_value"),
-        f_df=np.array([f.f_df for f in fits], dtype=np.int64).reshape(s_count, 2),
-        residuals=rows("residuals"), fitted=rows("fitted"), leverage=rows("leverage"),
-        mask=mask, x_min=stack("x_min"), x_max=stack("x_max"),
-        correlation=optional("correlation") if with_correlation else None,
-        correlation_t=optional("correlation_t") if with_correlation else None,
-        correlation_p_value=optional("correlation_p_value") if with_correlation else None,
-        t_critical=stack("t_critical"), x_centre=stack("x_centre"), x_scale=stack("x_scale"),
-        r_inverse=stack("r_inverse"), fast_path=fast_path,
+        terms=terms, intercept=intercept, level=level, n=fast.n, p=len(terms),
+        residual_df=out["residual_df"].astype(np.int64), estimable=out["estimable"] > 0,
+        reason=reasons, exact_fit=out["exact_fit"] > 0,
+        coef=frozen["coef"], standard_error=frozen["standard_error"], t=frozen["t"],
+        p_value=frozen["p_value"], lower=frozen["lower"], upper=frozen["upper"],
+        cov_unscaled=frozen["cov_unscaled"], residual_std_error=frozen["residual_std_error"],
+        sse=frozen["sse"], ssr=frozen["ssr"], sst=frozen["sst"], r_squared=frozen["r_squared"],
+        adj_r_squared=frozen["adj_r_squared"], f_statistic=frozen["f_statistic"],
+        f_p_value=frozen["f_p_value"], f_df=out["f_df"].astype(np.int64),
+        residuals=frozen["residuals"], fitted=frozen["fitted"], leverage=frozen["leverage"],
+        mask=mask_arr, x_min=frozen["x_min"], x_max=frozen["x_max"],
+        correlation=frozen["correlation"] if with_correlation else None,
+        correlation_t=frozen["correlation_t"] if with_correlation else None,
+        correlation_p_value=frozen["correlation_p_value"] if with_correlation else None,
+        t_critical=frozen["t_critical"], x_centre=frozen["x_centre"],
+        x_scale=frozen["x_scale"], r_inverse=frozen["r_inverse"],
+        fast_path=~fast.needs_fallback,
     )
+
+
+def _fast_arrays(
+    fast: FastFit, y: FloatArray, mask: NDArray[np.bool_], intercept: bool, level: float
+) -> dict[str, FloatArray]:
+    """Inference for every series from the fast path, by the formulas ``fit_ols`` uses."""
+    s_count, k = fast.slopes.shape
+    p = k + int(intercept)
+    n = fast.n.astype(np.float64)
+    df = fast.n - p
+    safe_df = np.maximum(df, 1).astype(np.float64)
+    scale = fast.scale
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inverse_n = 1.0 / np.maximum(n, 1.0)
+        slope_cov = np.matmul(fast.r_inverse, np.swapaxes(fast.r_inverse, 1, 2))
+        slope_cov = slope_cov / (scale[:, :, None] * scale[:, None, :])
+        cov = np.empty((s_count, p, p))
+        if intercept:
+            along = np.einsum("sk,skl->sl", fast.centre / scale, fast.r_inverse)
+            cov[:, 0, 0] = inverse_n + np.einsum("sk,sk->s", along, along)
+            cross = -np.einsum("skl,sl->sk", slope_cov, fast.centre)
+            cov[:, 0, 1:] = cross
+            cov[:, 1:, 0] = cross
+            cov[:, 1:, 1:] = slope_cov
+            coef = np.concatenate((fast.intercept_value[:, None], fast.slopes), axis=1)
+        else:
+            cov[:] = slope_cov
+            coef = fast.slopes.copy()
+        s_hat = np.sqrt(fast.sse / safe_df)
+        standard_error = s_hat[:, None] * np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
+        t_values = coef / standard_error
+        p_values = t_two_sided_p(t_values, safe_df[:, None])
+        unique_df, where = np.unique(safe_df, return_inverse=True)
+        t_star = t_quantile(1.0 - (1.0 - level) / 2.0, unique_df)[where]
+        half = t_star[:, None] * standard_error
+        total = fast.ssr + fast.sse
+        r_squared = fast.ssr / total
+        adj_factor = (n - 1.0) / safe_df if intercept else n / safe_df
+        adj_r_squared = 1.0 - adj_factor * (1.0 - r_squared)
+        df_model = p - 1 if intercept else p
+        if df_model > 0:
+            f_statistic = (fast.ssr / df_model) / (fast.sse / safe_df)
+            f_p_value = f_upper_p(f_statistic, df_model, safe_df)
+        else:
+            f_statistic = np.full(s_count, np.nan)
+            f_p_value = np.full(s_count, np.nan)
+        if intercept and k == 1:
+            correlation = np.copysign(np.sqrt(np.clip(r_squared, 0.0, 1.0)), fast.slopes[:, 0])
+            correlation_t = correlation * np.sqrt(n - 2.0) / np.sqrt(fast.sse / total)
+            correlation_p = t_two_sided_p(correlation_t, n - 2.0)
+        else:
+            correlation = correlation_t = correlation_p = np.full(s_count, np.nan)
+    return {
+        "residual_df": df.astype(np.float64),
+        "estimable": np.ones(s_count),
+        "exact_fit": np.zeros(s_count),
+        "coef": coef,
+        "standard_error": standard_error,
+        "t": t_values,
+        "p_value": p_values,
+        "lower": coef - half,
+        "upper": coef + half,
+        "cov_unscaled": cov,
+        "residual_std_error": s_hat,
+        "sse": fast.sse,
+        "ssr": fast.ssr,
+        "sst": fast.sst,
+        "r_squared": r_squared,
+        "adj_r_squared": adj_r_squared,
+        "f_statistic": f_statistic,
+        "f_p_value": f_p_value,
+        "f_df": np.column_stack((np.full(s_count, df_model), df)).astype(np.float64),
+        "residuals": fast.residuals,
+        "fitted": y - fast.residuals,
+        "leverage": fast.leverage,
+        "x_min": fast.x_min,
+        "x_max": fast.x_max,
+        "correlation": correlation,
+        "correlation_t": correlation_t,
+        "correlation_p_value": correlation_p,
+        "t_critical": t_star,
+        "x_centre": fast.centre,
+        "x_scale": scale,
+        "r_inverse": fast.r_inverse,
+    }
+
+
+_ROW_FIELDS = ("residuals", "fitted", "leverage")
+_SCALAR_FIELDS = (
+    "residual_df", "estimable", "exact_fit", "residual_std_error", "sse", "ssr", "sst",
+    "r_squared", "adj_r_squared", "f_statistic", "f_p_value", "correlation", "correlation_t",
+    "correlation_p_value", "t_critical",
+)
+_ARRAY_FIELDS = (
+    "coef", "standard_error", "t", "p_value", "lower", "upper", "cov_unscaled", "x_centre",
+    "x_scale", "r_inverse", "f_df", "x_min", "x_max",
+)
+
+
+def _copy_into(out: dict[str, FloatArray], i: int, fit: OlsFit, rows: NDArray[np.bool_]) -> None:
+    """Write one ``fit_ols`` result into row ``i`` of the batch arrays (None becomes NaN)."""
+    for name in _SCALAR_FIELDS:
+        value = getattr(fit, name)
+        out[name][i] = math.nan if value is None else float(value)
+    for name in _ARRAY_FIELDS:
+        out[name][i] = np.asarray(getattr(fit, name), dtype=np.float64)
+    for name in _ROW_FIELDS:
+        out[name][i] = math.nan
+        out[name][i, rows] = getattr(fit, name)
