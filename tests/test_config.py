@@ -6,8 +6,9 @@ from __future__ import annotations
 import re
 import types
 import typing
-from datetime import date, timedelta
+from datetime import date, datetime, timedelta
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import pytest
 from pydantic import BaseModel
@@ -592,6 +593,37 @@ def test_cron_expressions(text: str, hours: set[int]) -> None:
     assert isinstance(schedule, CronSchedule)
     assert schedule.expression == text
     assert schedule.hours == hours
+
+
+def test_accepted_cron_expressions_mean_the_same_to_the_scheduler() -> None:
+    # APScheduler 3.x is the scheduler the daemon uses (DESIGN.md section 13); the config must
+    # accept only what it reads, and the hours we compute must be the hours it fires at.
+    from apscheduler.triggers.cron import CronTrigger
+
+    utc = ZoneInfo("UTC")
+    for text in (
+        "0 8 * * mon",
+        "*/20 9-17/4 * jan,jul mon-fri",
+        "5 0,12 1-7 * *",
+        "0 6 * * sat,sun",
+    ):
+        schedule = parse_schedule(text)
+        assert isinstance(schedule, CronSchedule)
+        trigger = CronTrigger.from_crontab(text, timezone=utc)
+        fired: set[int] = set()
+        moment = datetime(2025, 1, 1, tzinfo=utc)
+        for _ in range(200):
+            moment = trigger.get_next_fire_time(None, moment + timedelta(seconds=1))
+            fired.add(moment.hour)
+        assert fired == schedule.hours, text
+    assert (
+        trigger.get_next_fire_time(None, datetime(2025, 1, 1, tzinfo=utc)).strftime("%a") == "Sat"
+    )
+
+
+def test_a_step_after_a_name_is_refused() -> None:
+    with pytest.raises(ValueError, match="step"):
+        parse_schedule("0 8 * jan-jun/2 *")
 
 
 def test_durations_as_schedules() -> None:

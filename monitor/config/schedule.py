@@ -72,7 +72,9 @@ def _cron_values(text: str, label: str, low: int, high: int, names: tuple[str, .
         if match is None:
             raise ValueError(f"cron {label} field {text!r}: cannot read {item!r}")
         step = int(match["step"]) if match["step"] else 1
-        if step < 1 or (match["step"] and names_only):
+        named = match["first"] is not None and not match["first"].isdigit()
+        if step < 1 or (match["step"] and (names_only or named)):
+            # APScheduler 3 reads steps only after numbers or '*'.
             raise ValueError(f"cron {label} field {text!r}: step in {item!r} is not allowed")
         if match["first"] is None:
             first, last = low, high
