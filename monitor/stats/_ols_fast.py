@@ -163,7 +163,8 @@ def _fast_fit_chunk(
             ill = ~(eigenvalues[:, 0] > 0.0) | ~(condition <= FAST_CONDITION_LIMIT)
             needs_fallback |= ill
             cross[ill] = np.eye(k)
-            lower_inverse = np.linalg.inv(np.linalg.cholesky(cross))
+            # inv of a triangular matrix by LU leaves ~1e-17 above the diagonal: clear it.
+            lower_inverse = np.tril(np.linalg.inv(np.linalg.cholesky(cross)))
             r_inverse = np.swapaxes(lower_inverse, 1, 2)
             # (X'X)^-1 of the slopes in original units: R^-1 R^-T / (d d').
             inverse = np.matmul(r_inverse, lower_inverse)
