@@ -452,6 +452,26 @@ def test_file_level_problems(tmp_path: Path) -> None:
         load_config(tmp_path / "latin1.yaml")
 
 
+def test_empty_and_misshapen_sections() -> None:
+    text = edit("      fdr: 0.10\n", "")  # leaves "thresholds:" with nothing under it
+    found = problems(text)
+    assert found == [
+        f"plumbline.yaml line {line_of(text, 'thresholds:')}: models.pick_hours.thresholds: is "
+        "empty: write its keys below it, indented, or leave it out for the defaults"
+    ]
+    text = edit("    per: depot\n", "    per: depot\n    intercept: maybe\n")
+    assert problems(text) == [
+        f"plumbline.yaml line {line_of(text, 'maybe')}: models.pick_hours.intercept: should be "
+        "true or false, not 'maybe'"
+    ]
+
+
+def test_an_alias_cycle_is_refused() -> None:
+    assert problems("feeds: &loop [*loop]\n") == [
+        "plumbline.yaml line 1: an alias refers to the value that contains it"
+    ]
+
+
 def test_yaml_is_loaded_safely() -> None:
     text = BASE + "database: !!python/object/apply:os.system [echo unsafe]\n"
     (message,) = problems(text)

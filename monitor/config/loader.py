@@ -16,12 +16,21 @@ from pydantic import ValidationError
 from pydantic_core import ErrorDetails
 
 from monitor.config.models import SECTIONS, PlumblineConfig
+from monitor.config.settings import SETTINGS_BY_PATH
 from monitor.config.values import Loc, Problem, path_text, unknown_feed
 from monitor.errors import ConfigError
 from monitor.text import did_you_mean
 
 # --------------------------------------------------------------------------------------------
 # Loading, with line numbers.
+
+
+class _UnfitYaml(Exception):
+    """YAML that parses but cannot be a config file (alias cycles, alias bombs)."""
+
+    def __init__(self, reason: str, mark: yaml.Mark | None) -> None:
+        super().__init__(reason)
+        self.reason, self.mark = reason, mark
 
 
 class LineLoader(yaml.SafeLoader):
@@ -35,6 +44,7 @@ class LineLoader(yaml.SafeLoader):
         self.lines: dict[Loc, int] = {}
         self.duplicates: list[Problem] = []
         self._visited = 0
+        self._open: set[int] = set()  # the nodes being walked, to stop at an alias cycle
 
     def load_with_lines(self) -> Any:
         node = self.get_single_node()
@@ -46,7 +56,16 @@ class LineLoader(yaml.SafeLoader):
     def _record(self, node: yaml.Node, loc: Loc) -> None:
         self._visited += 1
         if self._visited > self._MAX_NODES:
-            raise ConfigError("the file has too many keys or aliases to be a config file")
+            raise _UnfitYaml("too many keys or aliases for a config file", None)
+        if id(node) in self._open:
+            raise _UnfitYaml("an alias refers to the value that contains it", node.start_mark)
+        self._open.add(id(node))
+        try:
+            self._record_children(node, loc)
+        finally:
+            self._open.discard(id(node))
+
+    def _record_children(self, node: yaml.Node, loc: Loc) -> None:
         if isinstance(node, yaml.MappingNode):
             seen: dict[str, int] = {}
             merged: list[yaml.Node] = []
@@ -126,6 +145,9 @@ def parse_config(
         raise ConfigError(f"{where}: not valid YAML: {exc.problem or exc}{hint}") from None
     except yaml.YAMLError as exc:
         raise ConfigError(f"{source}: not valid YAML: {exc}") from None
+    except _UnfitYaml as exc:
+        where = f"{source} line {exc.mark.line + 1}" if exc.mark is not None else source
+        raise ConfigError(f"{where}: {exc.reason}") from None
     finally:
         loader.dispose()
     if data is None:
@@ -184,11 +206,20 @@ def _translate(error: ErrorDetails) -> list[Problem]:
         return [Problem(loc, f"{given!r} is not one of {', '.join(options)}{hint}")]
     if kind == "list_type":
         return [Problem(loc, f"should be a list in brackets, e.g. [{given}], not {given!r}")]
+    if kind in ("dict_type", "model_type", "model_attributes_type"):
+        if given is None:
+            setting = SETTINGS_BY_PATH.get(_shape(loc))
+            optional = setting is not None and not setting.required
+            tail = ", or leave it out for the defaults" if optional else ""
+            return [Problem(loc, f"is empty: write its keys below it, indented{tail}")]
+        return [Problem(loc, f"should be a mapping of keys to values, not {given!r}")]
+    if kind in ("bool_type", "bool_parsing"):
+        return [Problem(loc, f"should be true or false, not {given!r}")]
+    if kind == "too_short":
+        return [Problem(loc, f"is empty; give at least {ctx.get('min_length', 1)}")]
     message = error["msg"].removeprefix("Value error, ")
     if message.startswith("Input should be"):
         message = "should be" + message.removeprefix("Input should be") + f", not {given!r}"
-    elif kind.startswith(("too_short", "too_long")):
-        message = message.replace("List should", "the list should").replace("String", "the text")
     return [Problem(loc, message)]
 
 
