@@ -390,7 +390,7 @@ def render_table(report: dict[str, Any]) -> str:
         "approximation). The OLS-CUSUM statistic is the largest cumulative residual sum over "
         "σ̂√n, referred to the Kolmogorov distribution. sup-F is the largest Chow F over every "
         f"split leaving at least {trim} of the rows on each side; its p-value comes "
-        " from a simulated table of the limit distribution (reported as < 0.001 beyond it). "
+        "from a simulated table of the limit distribution (reported as below 0.001 beyond it). "
         "The break period named is the first row of the new regime."
     )
     lines.append(_wrap(notes))

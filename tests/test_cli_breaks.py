@@ -1,0 +1,168 @@
+"""``plumbline breaks``: JSON keys and values, table wording, one-line exit-2 errors.
+
+The numbers are checked against statsmodels (``breaks_cusumolsresid``, the interaction-dummy
+``f_test`` for the Chow F at the dated break); the Nile series is in
+``tests/stats/test_change_nile.py``.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from statsmodels.stats.diagnostic import breaks_cusumolsresid
+
+from monitor.cli import main
+
+
+def _write(path: Path, header: list[str], rows: list[list[object]]) -> Path:
+    text = "\n".join([",".join(header), *(",".join(str(v) for v in row) for row in rows)])
+    path.write_text(text + "\n", encoding="utf-8")
+    return path
+
+
+@pytest.fixture
+def demand(tmp_path: Path) -> Path:
+    """Invented weekly demand with two drivers; the slope on price changes at week 70."""
+    rng = np.random.default_rng(77)
+    weeks = 120
+    promo = rng.integers(0, 30, size=weeks).astype(float)
+    price = rng.normal(10, 1.5, size=weeks).round(2)
+    units = 400 + 6 * promo - 12 * price + rng.normal(0, 8, size=weeks)
+    units[70:] -= 9 * (price[70:] - 10) + 25
+    rows = [
+        [f"2024-W{w + 1:03d}", f"{units[w]:.3f}", f"{promo[w]:g}", f"{price[w]:g}"]
+        for w in range(weeks)
+    ]
+    return _write(tmp_path / "demand.csv", ["week", "units", "promo", "price"], rows)
+
+
+def _run(capsys: Any, *argv: str) -> tuple[int, str, str]:
+    status = main(["breaks", *argv])
+    captured = capsys.readouterr()
+    return status, captured.out, captured.err
+
+
+def _json(capsys: Any, *argv: str) -> dict[str, Any]:
+    status, out, err = _run(capsys, *argv, "--format", "json")
+    assert status == 0, err
+
+    def refuse(constant: str) -> float:
+        raise AssertionError(f"{constant} in JSON output")
+
+    report: dict[str, Any] = json.loads(out, parse_constant=refuse)
+    return report
+
+
+def test_json_keys_and_values_with_predictors(demand: Path, capsys: Any) -> None:
+    report = _json(capsys, str(demand), "--response", "units", "--predictors", "promo", "price",
+                   "--period", "week")  # fmt: skip
+    assert set(report["cusum"]) >= {"statistic", "crossed", "first_crossing"}
+    assert set(report["ols_cusum"]) >= {"statistic", "p_value"}
+    assert set(report["sup_f"]) >= {"statistic", "p_value", "break_index", "break_period"}
+    assert report["n"] == 120 and report["predictors"] == ["promo", "price"]
+    data = np.genfromtxt(demand, delimiter=",", skip_header=1, usecols=(1, 2, 3))
+    y, x = data[:, 0], data[:, 1:]
+    design = np.column_stack([np.ones(120), x])
+    fit = sm.OLS(y, design).fit()
+    statistic, p_value, _ = breaks_cusumolsresid(fit.resid, ddof=3)  # statsmodels reference
+    assert report["ols_cusum"]["statistic"] == pytest.approx(statistic, rel=1e-9)
+    assert report["ols_cusum"]["p_value"] == pytest.approx(p_value, rel=1e-9, abs=1e-15)
+    sup_f = report["sup_f"]
+    j = sup_f["break_index"]
+    assert sup_f["break_period"] == f"2024-W{j + 1:03d}" and sup_f["restrictions"] == 3
+    assert abs(j - 70) <= 3  # the invented change is at row 70
+    dummy = (np.arange(120) >= j).astype(float)
+    chow = sm.OLS(y, np.column_stack([design, design * dummy[:, None]])).fit().f_test(
+        np.hstack([np.zeros((3, 3)), np.eye(3)])
+    )
+    assert sup_f["statistic"] == pytest.approx(float(chow.fvalue), rel=1e-9)
+    assert sup_f["p_value"] < 0.01
+    assert report["cusum"]["first_crossing"] in (None, *[f"2024-W{w:03d}" for w in range(1, 121)])
+
+
+def test_without_period_column_periods_are_null_and_lines_given(demand: Path, capsys: Any) -> None:
+    report = _json(capsys, str(demand), "--response", "units")
+    assert report["predictors"] == [] and report["coefficients"] == 1
+    assert report["period_column"] is None and report["sup_f"]["break_period"] is None
+    index = report["sup_f"]["break_index"]
+    assert report["sup_f"]["break_line"] == index + 2  # header is line 1
+
+
+def test_table_opens_with_the_result_and_ends_with_a_caution(demand: Path, capsys: Any) -> None:
+    status, out, _ = _run(capsys, str(demand), "--response", "units", "--predictors", "promo",
+                          "price", "--period", "week")  # fmt: skip
+    assert status == 0
+    first = out.splitlines()[0]
+    assert first.startswith("Change tests of units on promo, price over 120 rows")
+    assert "sup-F finds a break" in " ".join(out.split())
+    for test_name in ("CUSUM of recursive residuals", "OLS-residual CUSUM", "sup-F, 15 % trimming"):
+        assert sum(line.strip().startswith(test_name) for line in out.splitlines()) == 1
+    assert "signal, not proof" in " ".join(out.split())
+    for borrowed in ("P>|t|", "Prob > F", "Pr > |t|", "SUMMARY", "====", "***", "Sig."):
+        assert borrowed not in out
+
+
+def test_stable_series_reads_as_no_change(tmp_path: Path, capsys: Any) -> None:
+    rng = np.random.default_rng(5)
+    path = _write(tmp_path / "flat.csv", ["v"], [[f"{v:.4f}"] for v in rng.normal(50, 2, 80)])
+    report = _json(capsys, str(path), "--response", "v")
+    assert report["cusum"]["crossed"] is False and report["cusum"]["first_crossing"] is None
+    assert report["sup_f"]["p_value"] > 0.05 and report["ols_cusum"]["p_value"] > 0.05
+    _status, out, _ = _run(capsys, str(path), "--response", "v")
+    assert "no test finds a change at the 5 % level" in " ".join(out.split("\n\n")[0].split())
+
+
+def test_constant_response_is_reported_not_crashed(tmp_path: Path, capsys: Any) -> None:
+    path = _write(tmp_path / "const.csv", ["v"], [["3.5"]] * 30)
+    report = _json(capsys, str(path), "--response", "v")
+    for key in ("cusum", "ols_cusum", "sup_f"):
+        assert report[key]["applicable"] is False and "exact" in report[key]["reason"]
+        assert report[key]["statistic"] is None
+    _status, out, _ = _run(capsys, str(path), "--response", "v")
+    assert "none of the tests applies" in " ".join(out.split())
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--response", "unit"], "column 'unit' not found (did you mean 'units'?)"),
+        (["--response", "units", "--predictors", "prize"], "column 'prize' not found"),
+        (["--response", "units", "--period", "wk"], "column 'wk' not found"),
+        (["--response", "week"], "line 2: column 'week' holds '2024-W001' where a number"),
+        (["--response", "units", "--predictors", "units"], "both the response and a predictor"),
+        (["--response", "units", "--no-intercept"], "leaves no model to test"),
+    ],
+)
+def test_errors_exit_2_with_one_line(
+    demand: Path, capsys: Any, argv: list[str], message: str
+) -> None:
+    status, out, err = _run(capsys, str(demand), *argv)
+    assert status == 2 and out == ""
+    assert err.count("\n") == 1 and message in err
+
+
+def test_too_few_rows_and_collinear_predictors(tmp_path: Path, capsys: Any) -> None:
+    few = _write(tmp_path / "few.csv", ["y", "x"], [[1, 2], [2, 3], [4, 4], [3, 6], [5, 7]])
+    status, _out, err = _run(capsys, str(few), "--response", "y", "--predictors", "x")
+    assert status == 2 and "5 data rows" in err and "at least 6" in err
+    rows = [[i * 1.5 + (i % 3), i, 2 * i + 1] for i in range(30)]
+    both = _write(tmp_path / "both.csv", ["y", "a", "b"], rows)
+    status, _out, err = _run(capsys, str(both), "--response", "y", "--predictors", "a", "b")
+    assert status == 2 and "'b'" in err and err.count("\n") == 1
+
+
+def test_console_command_runs(demand: Path) -> None:
+    done = subprocess.run(
+        [sys.executable, "-m", "monitor", "breaks", str(demand), "--response", "units",
+         "--format", "json"],
+        capture_output=True, text=True, check=False, timeout=60,
+    )  # fmt: skip
+    assert done.returncode == 0, done.stderr
+    assert json.loads(done.stdout)["n"] == 120
