@@ -55,7 +55,7 @@ def compensated_residual(
     The sum over terms uses error-free transformations (TwoSum, TwoProduct) in the manner of
     Ogita, Rump & Oishi (2005), "Accurate sum and dot product", so the cancellation between the
     response and the fitted value costs no digits; this is what makes iterative refinement
-    worth taking (Björck 1967; Golub & Van Loan 2013, section 5.3.8).
+    worth taking (Björck 1967; Golub & Van Loan 2013, chapter 5).
 
     Shapes: ``y`` and ``offset`` (..., n), ``x`` (..., n, k), ``slopes`` (..., k),
     ``intercept`` scalar or (...,). Where a split overflows (magnitudes beyond ~1e300) the
@@ -128,10 +128,9 @@ def refine_augmented(
     The least-squares solution and its residual solve ``[I X; X' 0] [r; b] = [y; 0]``. Each
     step computes both residuals of that system, ``f = y - r - Xb`` and ``g = -X'r``, in
     compensated precision and solves for the corrections with the existing QR factorisation
-    (Björck 1967, "Iterative refinement of linear least squares solutions I"; Björck 1996,
-    section 2.9.3). Unlike refining ``b`` alone, this also removes the error term that grows
-    with the size of the residual, the one that limits plain refinement on noisy,
-    ill-conditioned designs.
+    (Björck 1967, "Iterative refinement of linear least squares solutions I", BIT 7). Unlike
+    refining ``b`` alone, this also removes the error term that grows with the size of the
+    residual, the one that limits plain refinement on noisy, ill-conditioned designs.
 
     ``x`` (n, k) original predictors, ``y`` (n,); returns the refined ``(intercept, slopes)``
     (the intercept is 0.0 without one).
@@ -180,7 +179,7 @@ def collinear_columns(r_factor: FloatArray, threshold: float = 0.01) -> list[int
     """Indices of the columns that take part in the near-dependency of a triangular factor.
 
     The right singular vector of the smallest singular value of ``r_factor`` (k, k) is the
-    combination of standardised columns closest to zero (Golub & Van Loan 2013, section 5.5);
+    combination of standardised columns closest to zero (Golub & Van Loan 2013, chapter 5);
     columns whose weight in it is at least ``threshold`` times the largest weight are named.
     """
     _, _, vt = np.linalg.svd(r_factor)

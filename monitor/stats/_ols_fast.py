@@ -8,11 +8,11 @@ also returns, per series, whether the series must instead go to ``fit_ols``: non
 rows, too few rows, a constant or zero column, a condition number of the cross-product matrix
 above ``FAST_CONDITION_LIMIT``, or a residual so small the fit may be exact.
 
-Method: the normal equations in correlation form (Draper & Smith 1998, section 5.4, "correlation
-transformation"), Cholesky factor ``C = L L'`` so that ``R = L'`` is the triangular factor QR
-would give up to signs (Golub & Van Loan 2013, section 5.3.2 and theorem 5.2.3), and one step of
-refinement ``c <- c + C^-1 Z'(y - Zc)`` (Björck 1996, section 2.9). Every function here is
-private; ``monitor.stats.ols.fit_batch`` is the public entry.
+Method: the normal equations in correlation form (Draper & Smith 1998, the correlation
+transformation), the Cholesky factor ``C = L L'`` so that ``R = L'`` is the triangular factor
+that QR would give with a positive diagonal (Golub & Van Loan 2013, chapter 5), and one step of
+refinement ``c <- c + C^-1 Z'(y - Zc)`` with the residual formed from the data (Björck 1967).
+Every function here is private; ``monitor.stats.ols.fit_batch`` is the public entry.
 """
 
 from __future__ import annotations

@@ -127,7 +127,7 @@ class OlsFit:
 
         ``x0`` is (m, k), predictors only (no intercept column); a 1-D array of length k is one
         point, and with one predictor a 1-D array of length m is m points. Formulas: Weisberg
-        (2014) sections 2.8 and 3.5. Raises ``ValueError`` on a fit that is not estimable.
+        (2014), Draper & Smith (1998). Raises ``ValueError`` on a fit that is not estimable.
         """
         if not self.estimable:
             raise ValueError(f"cannot predict from a fit that is not estimable: {self.reason}")

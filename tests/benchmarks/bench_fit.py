@@ -116,11 +116,12 @@ def main(argv: list[str] | None = None) -> int:
     looped = time.perf_counter() - start
 
     # Vectors of coefficients (and their SEs, t statistics, interval bounds) are compared
-    # normwise per series, max|a - b| / max|b| over the series' three terms (Higham 2002,
-    # section 1.3): an estimate near zero (a slope whose interval straddles 0) makes the
-    # elementwise ratio a measure of rounding in a quantity that is itself ~0, and both
-    # libraries differ there by ~1e-14 in absolute terms. p-values and the prediction figures
-    # are compared elementwise. Both measures are printed.
+    # normwise per series, max|a - b| / max|b| over the series' three terms (the normwise
+    # relative error of Higham 2002, Accuracy and Stability of Numerical Algorithms). An
+    # estimate near zero (a slope whose interval straddles 0) makes the elementwise ratio a
+    # measure of rounding in a quantity that is itself ~0: both libraries differ there by
+    # ~1e-14 in absolute terms. p-values and the prediction figures are compared elementwise.
+    # Both measures are printed.
     normwise = {"coef", "bse", "t", "ci_lower", "ci_upper"}
     worst = 0.0
     for name, expected in reference.items():

@@ -1,7 +1,7 @@
 """Properties of least squares that any correct fit must have (hypothesis).
 
 Equivariance of the estimates under a change of units and invariance under row order follow
-from the normal equations (Seber & Lee 2003, section 3.1; Draper & Smith 1998, section 5.4):
+from the normal equations (Seber & Lee 2003; Draper & Smith 1998):
 
 - response times c: every coefficient (intercept included) times c, t statistics times the
   sign of c, R² unchanged;
