@@ -68,6 +68,11 @@ class FastFit:
     x_max: FloatArray
 
 
+def _side_by_side(values: list[FloatArray], s_count: int) -> FloatArray:
+    """Per-series values of each column, side by side: (s, k), also for k = 0."""
+    return np.column_stack(values) if values else np.zeros((s_count, 0))
+
+
 def _dot(a: FloatArray, b: FloatArray) -> FloatArray:
     """Row-wise dot products of two (s, n) arrays: (s,)."""
     return np.einsum("sn,sn->s", a, b)
@@ -117,17 +122,19 @@ def _fast_fit_chunk(
 
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         if partial:
-            x_min = np.column_stack([np.where(mask, c, np.inf).min(axis=1) for c in columns])
-            x_max = np.column_stack([np.where(mask, c, -np.inf).max(axis=1) for c in columns])
+            x_min = _side_by_side(
+                [np.where(mask, c, np.inf).min(axis=1) for c in columns], s_count)
+            x_max = _side_by_side(
+                [np.where(mask, c, -np.inf).max(axis=1) for c in columns], s_count)
         else:
-            x_min = np.column_stack([c.min(axis=1) for c in columns])
-            x_max = np.column_stack([c.max(axis=1) for c in columns])
+            x_min = _side_by_side([c.min(axis=1) for c in columns], s_count)
+            x_max = _side_by_side([c.max(axis=1) for c in columns], s_count)
         x_min = x_min.reshape(s_count, k)
         x_max = x_max.reshape(s_count, k)
         x_min[n == 0] = np.nan
         x_max[n == 0] = np.nan
         if intercept:
-            centre = np.column_stack([c.sum(axis=1) for c in columns]).reshape(s_count, k)
+            centre = _side_by_side([c.sum(axis=1) for c in columns], s_count)
             centre /= safe_n[:, None]
             y_mean = y_used.sum(axis=1) / safe_n
             for j, c in enumerate(columns):
@@ -141,7 +148,7 @@ def _fast_fit_chunk(
             y_mean = np.zeros(s_count)
             y_centred = y_used
         centred = columns
-        scale = np.sqrt(np.column_stack([_dot(c, c) for c in centred])) if k else centre
+        scale = np.sqrt(_side_by_side([_dot(c, c) for c in centred], s_count))
         # Non-finite data show up as non-finite means or norms: no separate pass over the data.
         needs_fallback |= ~np.isfinite(y_mean) | ~np.isfinite(scale).all(axis=1)
         raw_norm = np.sqrt(scale * scale + safe_n[:, None] * centre * centre)
@@ -183,7 +190,7 @@ def _fast_fit_chunk(
             np.subtract(y_centred, fitted_centred, out=residual)
 
         def normal_solve(vector: FloatArray) -> FloatArray:
-            right = np.column_stack([_dot(c, vector) for c in centred])
+            right = _side_by_side([_dot(c, vector) for c in centred], s_count)
             return np.einsum("skl,sl->sk", inverse, right)
 
         slopes = normal_solve(y_centred) if k else np.zeros((s_count, 0))

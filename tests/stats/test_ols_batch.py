@@ -214,3 +214,13 @@ def test_default_mask_and_shape_errors() -> None:
 def test_empty_batch() -> None:
     fit = fit_batch(np.zeros((0, 5, 2)), np.zeros((0, 5)))
     assert fit.s == 0 and fit.coef.shape == (0, 3)
+
+
+def test_intercept_only_batch() -> None:
+    rng = np.random.default_rng(14)
+    y = 10.0 + rng.normal(size=(4, 9))
+    mask = np.ones((4, 9), dtype=bool)
+    mask[2, 6:] = False
+    fit = fit_batch(np.zeros((4, 9, 0)), y, mask, level=0.9)
+    assert fit.fast_path.all()
+    each_series_matches(fit, np.zeros((4, 9, 0)), y, mask)
