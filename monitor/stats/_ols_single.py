@@ -338,7 +338,8 @@ def fit_ols(
     fitted_about_mean = compensated_residual(
         y_arr, np.zeros((n, 0)), np.zeros(0), y_mean, offset=residual
     )
-    ssr = float(fitted_about_mean @ fitted_about_mean)
+    # Without predictors the regression sum of squares is 0 by definition, not rounding.
+    ssr = float(fitted_about_mean @ fitted_about_mean) if k else 0.0
     sst = float(np.sum((y_arr - y_mean) ** 2))
     if exact:
         sse = 0.0
