@@ -13,8 +13,8 @@ schema in a Parquet file's footer.
 Nothing is written: no database, folder, report or marker is made, and no file is moved.
 
 Exit status: 0 when the config is valid, even with warnings (a missing inbox, a header lacking a
-column, an unset SMTP environment variable, a cron schedule inside the daylight-saving hours):
-they describe the data and the machine, not the file. 2 when the config is invalid; each problem
+column, an unreadable header, an unset SMTP environment variable, a feed no model reads): they
+describe the data and the machine, not the file. 2 when the config is invalid; each problem
 is printed on its own line to stderr.
 """
 
@@ -132,7 +132,7 @@ def check_config(config: PlumblineConfig, *, now: float) -> CheckReport:
 
 def _check_schedules(config: PlumblineConfig, report: CheckReport) -> None:
     parts: list[str] = []
-    risky: list[str] = []
+    notes: list[str] = []
     for key in ("scan", "digest"):
         text = getattr(config.schedule, key)
         schedule = parse_schedule(text)
@@ -141,15 +141,15 @@ def _check_schedules(config: PlumblineConfig, report: CheckReport) -> None:
             continue
         parts.append(f'{key} by cron "{text}" in {config.timezone}')
         night = sorted(schedule.hours & {1, 2})
-        if night and schedule.hour != "*" and _has_daylight_saving(config):
-            risky.append(
-                f"schedule.{key} fires in the {night[0]:02d}:00 hour, inside "
-                f"01:00–03:00 where daylight-saving changes in {config.timezone} skip or repeat "
-                "an hour; a time outside that window is safer"
+        if night and schedule.fixed_time and _has_daylight_saving(config):
+            notes.append(
+                f"  note: schedule.{key} falls in the {night[0]:02d}:00 hour, where the clocks "
+                f"of {config.timezone} change twice a year: on those days it runs once, when "
+                "the clocks jump forward or at the first of the two repeated hours"
             )
     report.say(f"schedule: {'; '.join(parts)}")
-    for line in risky:
-        report.warn(line)
+    for line in notes:
+        report.say(line)
 
 
 def _has_daylight_saving(config: PlumblineConfig) -> bool:

@@ -1,5 +1,11 @@
 """Schedules of the config file: a duration or a five-field cron expression, checked here without
-the scheduler library (only ``monitor.daemon`` imports APScheduler)."""
+the scheduler library (only ``monitor.daemon`` imports APScheduler).
+
+The cron reading is classic cron's, as the daemon fires it: day-of-week numbers 0–7 with 0 and 7
+Sunday (not APScheduler 3's Monday-first numbering), names ``sun`` … ``sat``, and with both day
+fields restricted a day matching either one counts. This module accepts what the daemon's trigger
+accepts for the five fields, so an expression that loads here also runs there.
+"""
 
 from __future__ import annotations
 
@@ -10,7 +16,7 @@ from datetime import timedelta
 from monitor.text import did_you_mean, is_duration, parse_duration
 
 _MONTHS = ("jan", "feb", "mar", "apr", "may", "jun", "jul", "aug", "sep", "oct", "nov", "dec")
-_WEEKDAYS = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+_WEEKDAYS = ("sun", "mon", "tue", "wed", "thu", "fri", "sat")  # cron's numbering: 0 = Sunday
 _CRON_ITEM = re.compile(r"^(?:\*|(?P<first>\w+)(?:-(?P<last>\w+))?)(?:/(?P<step>\d+))?$")
 
 
@@ -29,15 +35,15 @@ class CronSchedule:
     def expression(self) -> str:
         return " ".join((self.minute, self.hour, self.day, self.month, self.day_of_week))
 
+    @property
+    def fixed_time(self) -> bool:
+        """True when minute and hour are fixed (no ``*``): the schedule names times of day."""
+        return "*" not in self.minute and "*" not in self.hour
+
 
 def parse_schedule(text: str) -> timedelta | CronSchedule:
-    """A schedule of the file: a duration (``30s``) or a five-field cron expression.
-
-    Days of the week are written by name (``mon`` … ``sun``): cron programs disagree on what the
-    numbers mean (0 is Sunday in crontab, Monday in APScheduler 3), and on whether a day of the
-    month and a day of the week must both hold, so restricting both is refused.
-    Raises ValueError saying what is wrong.
-    """
+    """A schedule of the file: a duration (``30s``) or a five-field cron expression
+    ``minute hour day-of-month month day-of-week``. Raises ValueError saying what is wrong."""
     if is_duration(text):
         interval = parse_duration(text)
         if interval <= timedelta(0):
@@ -47,25 +53,36 @@ def parse_schedule(text: str) -> timedelta | CronSchedule:
     if len(fields) != 5:
         raise ValueError(
             f"{text!r} is neither a duration (30s, 5m) nor a cron expression of five fields "
-            "(minute hour day month day-of-week)"
+            "(minute hour day-of-month month day-of-week)"
         )
     minute, hour, day, month, weekday = fields
     _cron_values(minute, "minute", 0, 59, ())
     hours = _cron_values(hour, "hour", 0, 23, ())
-    _cron_values(day, "day of month", 1, 31, ())
-    _cron_values(month, "month", 1, 12, _MONTHS)
-    _cron_values(weekday, "day of week", 0, 6, _WEEKDAYS)
-    if day != "*" and weekday != "*":
-        raise ValueError(
-            f"{text!r} restricts both the day of the month and the day of the week; cron "
-            "programs disagree on whether both or either must hold, so give one and '*' for "
-            "the other"
-        )
+    days = set() if day.lower() == "last" else _cron_values(day, "day of month", 1, 31, ())
+    months = _cron_values(month, "month", 1, 12, _MONTHS)
+    _cron_values(weekday, "day of week", 0, 7, _WEEKDAYS)
+    if days and weekday == "*" and min(days) > max(_MONTH_DAYS[m] for m in months):
+        raise ValueError(f"{text!r} never fires: no month of {month!r} has day {min(days)}")
     return CronSchedule(minute, hour, day, month, weekday, frozenset(hours))
 
 
+_MONTH_DAYS = {
+    1: 31,
+    2: 29,
+    3: 31,
+    4: 30,
+    5: 31,
+    6: 30,
+    7: 31,
+    8: 31,
+    9: 30,
+    10: 31,
+    11: 30,
+    12: 31,
+}
+
+
 def _cron_values(text: str, label: str, low: int, high: int, names: tuple[str, ...]) -> set[int]:
-    names_only = label == "day of week"
     values: set[int] = set()
     for item in text.split(","):
         match = _CRON_ITEM.match(item)
@@ -73,8 +90,9 @@ def _cron_values(text: str, label: str, low: int, high: int, names: tuple[str, .
             raise ValueError(f"cron {label} field {text!r}: cannot read {item!r}")
         step = int(match["step"]) if match["step"] else 1
         named = match["first"] is not None and not match["first"].isdigit()
-        if step < 1 or (match["step"] and (names_only or named)):
-            # APScheduler 3 reads steps only after numbers or '*'.
+        # APScheduler 3 reads a step only after numbers or '*' (the daemon turns day-of-week
+        # names into its own form first, so a step after day names works there).
+        if step < 1 or (match["step"] and named and label != "day of week"):
             raise ValueError(f"cron {label} field {text!r}: step in {item!r} is not allowed")
         if match["first"] is None:
             first, last = low, high
@@ -98,15 +116,13 @@ def _cron_value(
 ) -> int:
     lowered = word.lower()
     if lowered in names:
-        return names.index(lowered) + low
-    if label == "day of week":
-        raise ValueError(
-            f"cron day-of-week field {text!r}: write day names (mon, tue, … sun), not "
-            f"{word!r}; cron programs number the days differently{did_you_mean(lowered, names)}"
-        )
+        # Months count from 1 (jan = 1); days of the week from 0 (sun = 0).
+        return names.index(lowered) + (1 if label == "month" else 0)
     if not word.isdigit():
         raise ValueError(
-            f"cron {label} field {text!r}: {word!r} is not a number{did_you_mean(lowered, names)}"
+            f"cron {label} field {text!r}: {word!r} is not a number"
+            f"{did_you_mean(lowered, names)}"
+            + (" (days of the week: 0-7 with 0 and 7 = Sunday, or sun-sat)" if high == 7 else "")
         )
     if not low <= int(word) <= high:
         raise ValueError(f"cron {label} field {text!r}: {word} is outside {low}–{high}")

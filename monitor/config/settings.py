@@ -144,8 +144,8 @@ SETTINGS: tuple[Setting, ...] = (
             "How often the daemon looks for complete files: a duration or a five-field cron "
             "expression."),
     Setting("schedule.digest", "0 8 * * mon",
-            "When the digest is built and sent: cron (minute hour day month day-of-week, in "
-            "`timezone`, days of the week by name) or a duration."),
+            "When the digest is built and sent: a five-field cron expression read in "
+            "`timezone`, or a duration."),
     # notify
     Setting("notify.html_dir", "reports", "Folder for the HTML pages and digests."),
     Setting("notify.email", None, "SMTP settings; without them Plumbline writes HTML only."),
