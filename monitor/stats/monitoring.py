@@ -1,91 +1,70 @@
 """Sequential monitoring for structural change after a stable baseline, batched over series.
 
-Each week the daemon asks, for every series: since the end of its baseline, has the relationship
-moved? Re-running a retrospective break test every week does not control the chance of a false
-alarm over many looks; a monitoring statistic with a boundary built for the whole monitoring
-horizon does (Chu, Stinchcombe & White 1996; Leisch, Hornik & Kuan 2000; Zeileis, Leisch, Kleiber
-& Hornik 2005 — bibliographic details as recalled, MEM in ../shared/reference/CHECK_VALUES.md
-item 5).
+Each week the daemon asks of every series: since its baseline ended, has the relationship moved?
+Re-running a retrospective break test every week does not control the chance of a false alarm
+over many looks; a statistic with a boundary built for the whole horizon does (Chu, Stinchcombe &
+White 1996; Leisch, Hornik & Kuan 2000; Zeileis, Leisch, Kleiber & Hornik 2005; bibliographic
+details as recalled, MEM in ../shared/reference/CHECK_VALUES.md item 5).
 
-The statistic (our convention: post-history CUSUM)
---------------------------------------------------
-With a baseline of n rows and p coefficients, nu = n - p residual degrees of freedom and residual
-standard error sigma_hat (all from the baseline fit), each new row t = n+1, n+2, ... gives a
-recursive residual (Brown, Durbin & Evans 1975), the standardised one-step-ahead prediction error
-from the fit on every row before it:
+Statistic: our convention is the post-history CUSUM. With a baseline of n rows, p coefficients,
+nu = n - p and residual standard error sigma_hat (all from the baseline fit), each new row
+t = n+1, n+2, ... gives a recursive residual (Brown, Durbin & Evans 1975), the standardised
+one-step-ahead forecast error from the fit on all earlier rows,
+w_t = (y_t - x_t' b_{t-1}) / sqrt(1 + x_t' (X_{t-1}' X_{t-1})^-1 x_t). After j new rows
+Q_j = (w_{n+1} + ... + w_{n+j}) / sigma_hat, and the alarm is the first j <= H (the horizon) with
 
-    w_t = (y_t - x_t' b_{t-1}) / sqrt(1 + x_t' (X_{t-1}' X_{t-1})^-1 x_t).
+    |Q_j| > sqrt((nu + j) * (a^2 + ln(1 + j / nu))).
 
-The monitoring statistic after j new rows is the cumulated sum of the *post-baseline* recursive
-residuals only, Q_j = (w_{n+1} + ... + w_{n+j}) / sigma_hat, and an alarm is raised at the first j
-with
+That is Chu, Stinchcombe & White's (1996) boundary with the sum started after the history rather
+than at its start, and the two need different constants (CHECK_VALUES item 5): CSW's published
+a^2 = 7.78 (5 %) and 6.25 (10 %) (MEM) belong to the start-of-history sum over an infinite
+horizon, crossed with probability 2[1 - Phi(a) + a phi(a)] (0.0508 at 7.78, 5 % at 7.815); the
+post-history sum over an infinite horizon is crossed with probability exp(-a^2/2) (about 2 % at
+7.78; 5 % at -2 ln 0.05 = 5.991). Over the finite horizon used here (H = 2n by default) either
+infinite-horizon constant gives far less than alpha (5.991 gives under 1 % at H = 2 nu), so the
+constants are simulated for the finite horizon and baseline; the published ones serve as checks
+only (``PUBLISHED_A_SQUARED``, ``history_form_crossing_probability``,
+``post_history_crossing_probability``).
 
-    |Q_j| > sqrt((nu + j) * (a^2 + ln(1 + j / nu))),     1 <= j <= H (the horizon).
+Why this statistic. (1) Exact: with normal errors the post-baseline recursive residuals are
+independent N(0, sigma^2) and independent of the baseline's residual sum of squares whatever the
+predictors, so the false-alarm chance depends on (nu, H, a^2) alone and is tabulated once, exactly
+for baselines as short as 20 rows, with no large-sample step for sigma_hat and no dependence on
+where the new predictors lie. (2) The sum starts at 0 with monitoring, so after the baseline rolls
+forward a fresh start is a new ``start_monitoring`` call; a start-of-history sum would carry the
+baseline's own noise into every week. (3) It is quick on a change in the mean forecast error, and
+a slope change gives one whenever the predictors' mean is away from 0 in units of their spread
+(counts, hours, prices, volumes). Its known blind spot (Kramer, Ploberger & Alt 1988, MEM): a
+change that leaves the forecast at the predictors' mean unchanged (a slope turning about the mean)
+is not detected; the baseline-vs-recent slope test of ``change.py`` covers it, as would a
+fluctuation (recursive-estimates) monitor, whose boundary depends on the design.
 
-This is Chu, Stinchcombe & White's (1996) boundary with the sum started after the history instead
-of at its start. The two conventions need different constants (CHECK_VALUES item 5): CSW's
-published a^2 = 7.78 (5 %) and 6.25 (10 %) (MEM) belong to the start-of-history sum over an
-infinite horizon, whose crossing probability is 2[1 - Phi(a) + a phi(a)] (0.0508 at 7.78; exactly
-5 % at 7.815); for the post-history sum over an infinite horizon it is exp(-a^2/2), so 7.78 would
-give about 2 % and the right infinite-horizon constant is -2 ln(alpha) (5.991 at 5 %). We use
-neither: the horizon is finite (H = 2n periods by default), and over a finite horizon both
-infinite-horizon constants give a false-alarm chance well below alpha (at H/nu = 2, 5.991 gives
-under 1 %). The constants used here are *simulated* for the finite horizon and the finite baseline
-(see below); the published ones are kept only as checks (``PUBLISHED_A_SQUARED``,
-``history_form_crossing_probability``, ``post_history_crossing_probability``).
+Constants (simulated, none published): ``tables/monitoring_boundaries.json``, written by
+``scripts/simulate_monitoring.py`` (seed 20261201, 200,000 replications per cell; metadata from
+``boundary_table_description()``), holds a^2 for alpha in {0.005, 0.01, 0.025, 0.05, 0.10, 0.20},
+nu in 4..30 and 35..500 (finite sample: normal errors, sigma_hat^2 from chi2_nu / nu, checked at
+every integer j) and the nu -> infinity limit (Brownian motion, continuous time), for H = r * nu,
+r from 0.05 to 12. Between grid points a^2 is interpolated linearly in ln(alpha), ln(H / nu) and
+1 / sqrt(nu). A horizon shorter than the table's shortest for its nu takes that shortest (false
+alarms below alpha); one longer than 12 nu, or alpha outside [0.005, 0.20], is refused. The false-
+alarm chance is alpha up to Monte Carlo error (standard error 0.0005 at 5 %) when errors are
+independent, normal and of constant variance, and approximately so otherwise for long baselines.
+An alarm is a statistical signal that forecast errors have drifted, not proof of a cause, and it
+assumes the baseline itself was stable.
 
-Why this statistic. (1) Exactness: with normal errors the post-baseline recursive residuals are
-independent N(0, sigma^2) and independent of the baseline's residual sum of squares, whatever the
-predictors are, so the false-alarm chance of Q depends on (nu, H, a^2) only and can be tabulated
-once, exactly for small baselines (n of 20 or 52 rows), with no asymptotic approximation for
-sigma_hat and no dependence on how the new predictors compare with the baseline's. (2) The sum
-starts at zero when monitoring starts, so a fresh start after the baseline rolls forward is a new
-``start_monitoring`` call and nothing else; accumulating from the start of the history would carry
-the baseline's own noise into every week's statistic. (3) It detects a change in the mean of the
-forecast errors quickly; a slope change shows up whenever the predictors' average is away from zero
-(in units of their spread), as it is for counts, hours, prices and volumes. Its known blind spot
-(Kramer, Ploberger & Alt 1988, MEM): a change that leaves the forecast at the average of the
-predictors unchanged (a slope turning about the predictors' mean, with an offsetting intercept
-change) produces no drift in the forecast errors and is not detected. The baseline-vs-recent slope
-test of ``change.py`` covers that case; a fluctuation (recursive-estimates) monitor would too, at
-the price of a boundary that depends on the design.
+Estimated break: the start k (1 <= k <= first crossing) maximising the mean-shift likelihood ratio
+(S_J - S_{k-1})^2 / (J - k + 1) of the post-baseline recursive residuals, S_j = w_{n+1} + ... +
+w_{n+j}, J = periods monitored so far (a shift in the mean of independent N(0, sigma^2) errors from
+k on; before k the mean is 0, as monitoring assumes).
 
-Boundary constants (simulated, committed)
------------------------------------------
-``tables/monitoring_boundaries.json`` is written by ``scripts/simulate_monitoring.py`` (seed
-20261201, 200,000 replications per cell; ``boundary_table_description()`` returns its metadata).
-It holds a^2 for alpha in {0.005, 0.01, 0.025, 0.05, 0.10, 0.20}, residual df nu in 4..30 and 35
-to 500 (finite-sample: normal errors, sigma_hat from chi2_nu, checked at every integer j) and the
-nu -> infinity limit (Brownian motion, continuous time), for horizons H = r * nu with r from 0.05
-to 12. Between grid points a^2 is interpolated linearly in ln(alpha), ln(H / nu) and 1 / sqrt(nu)
-(the leading finite-sample term of a discretely checked boundary). A horizon shorter than the
-table's shortest for that nu takes the shortest (a false-alarm chance below alpha); one longer than
-12 nu, or an alpha outside [0.005, 0.20], is refused. None of these constants is published.
-
-Under the null the attained false-alarm chance is alpha up to Monte Carlo error (standard error
-0.0005 at alpha = 0.05) when errors are normal and independent with constant variance; with other
-errors it holds approximately for long baselines. An alarm is a statistical signal that the
-forecast errors have drifted, not proof of a cause; it assumes the baseline itself was stable.
-
-Estimated break. Once an alarm fires, the break is dated by the mean-shift likelihood ratio of the
-post-baseline recursive residuals: the start k (1 <= k <= first crossing) maximising
-(S_J - S_{k-1})^2 / (J - k + 1), with S_j = w_{n+1} + ... + w_{n+j} and J the periods monitored so
-far (a shift in mean of independent N(0, sigma^2) errors starting at k; the known-zero pre-break
-mean is what monitoring assumes).
-
-API (arrays: s series, n baseline rows, m new rows, k predictors without the intercept)
---------------------------------------------------------------------------------------
-* ``start_monitoring(x_base (s, n, k), y_base (s, n), mask=None, *, intercept=True, names=None)
-  -> MonitorState``: the baseline fit each week's call needs.
-* ``monitor(state, x_new (s, m, k), y_new (s, m), mask_new=None, *, alpha=0.05, horizon=None)
-  -> MonitorResult``: stateless; pass all new rows since the baseline's end every week.
-* ``monitoring_boundary(alpha, residual_df, horizon) -> MonitoringBoundary``: the constant and the
-  boundary curve for one (alpha, nu, H).
-* ``boundary_constant(alpha, residual_df, horizon) -> float``: a^2 alone.
-
-Masks: True = row used. Rows with a non-finite value are left out as if masked. A row left out does
-not advance the monitoring clock: "periods monitored" counts rows used, and the horizon is reached
-after ``horizon`` used rows (the rows after it are ignored until the caller starts again).
+API (s series, n baseline rows, m new rows, k predictors without the intercept):
+``start_monitoring(x_base (s, n, k), y_base (s, n), mask=None, *, intercept=True, names=None)
+-> MonitorState``; ``monitor(state, x_new (s, m, k), y_new (s, m), mask_new=None, *, alpha=0.05,
+horizon=None) -> MonitorResult`` (stateless: pass every row since the baseline's end each week);
+``monitoring_boundary(alpha, residual_df, horizon) -> MonitoringBoundary`` and
+``boundary_constant(...) -> float``. Masks: True = row used; rows with NaN or infinity are left out
+too. A row left out does not advance the monitoring clock: periods monitored count rows used, and
+rows after the horizon's ``horizon`` used rows are ignored until the caller starts again.
 """
 
 from __future__ import annotations

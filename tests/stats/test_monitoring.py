@@ -154,6 +154,10 @@ def test_finite_horizon_constants_sit_below_the_infinite_horizon_ones() -> None:
             limit = mon.boundary_constant(alpha, 10**6, ratio * 10**6)
             assert previous < limit < -2 * math.log(alpha)
             previous = limit
+    # So over the default horizon (H = 2n, here nu = 50, H = 100) the infinite-horizon constant
+    # -2 ln 0.05 = 5.991 gives under 1 % and CSW's 7.78 (MEM) under 0.5 % (CHECK_VALUES item 5).
+    assert mon.boundary_constant(0.01, 50, 100) < 5.991
+    assert mon.boundary_constant(0.005, 50, 100) < 7.78
     for residual_df in (4, 10, 20, 50, 100, 500):
         for horizon_ratio in (1, 2, 3):
             values = [
