@@ -184,8 +184,9 @@ def _fast_fit_chunk(
         residual = np.empty_like(y_centred)
 
         def update_residual(slopes: FloatArray) -> None:
-            fitted_centred.fill(0.0)
-            for j in range(k):
+            if k:
+                np.multiply(centred[0], slopes[:, 0, None], out=fitted_centred)
+            for j in range(1, k):
                 np.add(fitted_centred, centred[j] * slopes[:, j, None], out=fitted_centred)
             np.subtract(y_centred, fitted_centred, out=residual)
 
@@ -206,11 +207,16 @@ def _fast_fit_chunk(
 
         # Leverage h = 1/n + ||z R^-1||² row by row (a sum of squares: no cancellation).
         leverage = fitted_centred  # the buffer is free now
-        leverage.fill(0.0)
+        if k:
+            np.multiply(centred[0], (r_inverse[:, 0, 0] / safe_scale[:, 0])[:, None],
+                        out=leverage)
+            leverage *= leverage
+        else:
+            leverage.fill(0.0)
         if intercept:
             leverage += (1.0 / safe_n)[:, None]
         projected = np.empty_like(leverage)
-        for m in range(k):
+        for m in range(1, k):
             np.multiply(centred[0], (r_inverse[:, 0, m] / safe_scale[:, 0])[:, None],
                         out=projected)
             for j in range(1, m + 1):
