@@ -611,6 +611,7 @@ def test_the_settings_table_and_the_models_list_the_same_keys() -> None:
         ("0 7 1,15 * mon", {7}),  # both day fields: either day counts, as in cron
         ("0 23 last * *", {23}),
         ("0 12 * * mon-fri/2", {12}),
+        ("0 5/10 * * *", {5, 15}),  # from 5 to the end of the field, every 10
     ],
 )
 def test_cron_expressions(text: str, hours: set[int]) -> None:
@@ -648,8 +649,56 @@ def test_accepted_cron_expressions_mean_the_same_to_the_scheduler() -> None:
 
 
 def test_a_step_after_a_month_name_is_refused() -> None:
+    # APScheduler 3 would drop the step silently and fire every month from January to June.
     with pytest.raises(ValueError, match="step"):
         parse_schedule("0 8 * jan-jun/2 *")
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        "0 8 * * mon",
+        "*/5 * * * *",
+        "0 8 * * 0",
+        "0 8 * * 7",
+        "0 8 * * 1-5",
+        "0 8 1,15 * mon",
+        "0 23 last * *",
+        "0 12 * * mon-fri/2",
+        "0 5/10 * * *",
+        "0 8 * jan,jul *",
+        "0 8 * * */2",
+        "0 8 1-31/2 * *",
+        "0 8 * * sun-sat",
+        "0 8 31 feb *",
+        "0 8 * * 8",
+        "0 25 * * *",
+        "0 8 * *",
+        "0 8 * * mno",
+        "*/0 * * * *",
+        "0 8 L * *",
+        "0 8 * * sat-sun",
+        "60 * * * *",
+        "0 8 0 * *",
+        "0 8 * 13 *",
+        "30s",
+        "0s",
+    ],
+)
+def test_the_config_accepts_the_schedules_the_daemon_runs(text: str) -> None:
+    from monitor.daemon import validate_schedule
+
+    try:
+        validate_schedule(text)
+        daemon_runs = True
+    except ConfigError:
+        daemon_runs = False
+    try:
+        parse_schedule(text)
+        config_accepts = True
+    except ValueError:
+        config_accepts = False
+    assert config_accepts == daemon_runs
 
 
 def test_durations_as_schedules() -> None:

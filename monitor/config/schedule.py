@@ -90,9 +90,10 @@ def _cron_values(text: str, label: str, low: int, high: int, names: tuple[str, .
             raise ValueError(f"cron {label} field {text!r}: cannot read {item!r}")
         step = int(match["step"]) if match["step"] else 1
         named = match["first"] is not None and not match["first"].isdigit()
-        # APScheduler 3 reads a step only after numbers or '*' (the daemon turns day-of-week
-        # names into its own form first, so a step after day names works there).
-        if step < 1 or (match["step"] and named and label != "day of week"):
+        # APScheduler 3 silently drops a step after month names ('jan-jun/2' fires every month
+        # from January to June), so it is refused; the daemon turns day-of-week names into its
+        # own form first, so a step after day names works.
+        if step < 1 or (match["step"] and named and label == "month"):
             raise ValueError(f"cron {label} field {text!r}: step in {item!r} is not allowed")
         if match["first"] is None:
             first, last = low, high
@@ -104,7 +105,9 @@ def _cron_values(text: str, label: str, low: int, high: int, names: tuple[str, .
                 else _cron_value(match["last"], text, label, low, high, names)
             )
             if match["step"] and match["last"] is None:
-                raise ValueError(f"cron {label} field {text!r}: a step needs a range or '*'")
+                if label == "day of week":  # the daemon's reading of day names needs a range
+                    raise ValueError(f"cron {label} field {text!r}: a step needs a range or '*'")
+                last = high  # '5/10': from 5 to the end of the field in steps of 10
             if last < first:
                 raise ValueError(f"cron {label} field {text!r}: range {item!r} runs backwards")
         values.update(range(first, last + 1, step))
