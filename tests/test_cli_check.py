@@ -88,6 +88,19 @@ def test_both_commands_are_registered() -> None:
     assert "check" in cli.COMMAND_MODULES and "schema" in cli.COMMAND_MODULES
 
 
+def test_through_the_real_command_line(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    config = workspace(tmp_path)
+    assert cli.main(["check", "--config", str(config)]) == 0
+    assert "config valid" in capsys.readouterr().out
+    config.write_text(CONFIG.replace("period_type: integer", "period_type: year"), "utf-8")
+    assert cli.main(["check", "-c", str(config)]) == 2
+    assert "feeds.region_yearly.period_type: 'year' is not one of date, integer" in (
+        capsys.readouterr().err
+    )
+    assert cli.main(["schema"]) == 0
+    assert json.loads(capsys.readouterr().out)["title"] == "Plumbline configuration"
+
+
 # ---------------------------------------------------------------------------------------------
 # check
 
