@@ -353,8 +353,6 @@ def _as_batch(
 ) -> tuple[FloatArray, FloatArray, BoolArray]:
     x_arr = np.asarray(x, dtype=np.float64)
     y_arr = np.asarray(y, dtype=np.float64)
-    if x_arr.ndim == 2 and y_arr.ndim == 2 and x_arr.shape == y_arr.shape and x_arr.shape[1] == 0:
-        x_arr = x_arr[:, :, None]
     if x_arr.ndim != 3 or y_arr.ndim != 2 or x_arr.shape[:2] != y_arr.shape:
         raise ValueError(
             f"{what}: x must be (series, rows, predictors) and y (series, rows); "

@@ -453,3 +453,19 @@ def test_horizon_exhausted_and_fresh_start() -> None:
         mon.monitor(state, np.zeros((4, 3, 2)), np.zeros((4, 3)))
     with pytest.raises(ValueError, match="at least 1"):
         mon.monitor(state, x[:, n:], y[:, n:], horizon=0)
+
+
+def test_mean_only_model_recursive_residuals_by_hand() -> None:
+    # No predictors (as `plumbline breaks` allows): the recursive residual of row t is
+    # (y_t - mean of rows before t) * sqrt((t - 1) / t) (Brown, Durbin & Evans 1975, worked by
+    # hand from the updating formula with x_t = 1).
+    rng = np.random.default_rng(21)
+    y = rng.normal(10.0, 2.0, (1, 45))
+    n = 30
+    state = mon.start_monitoring(np.zeros((1, n, 0)), y[:, :n])
+    result = mon.monitor(state, np.zeros((1, 15, 0)), y[:, n:])
+    t = np.arange(n + 1, 46)
+    previous_mean = np.cumsum(y[0])[n - 1 : 44] / (t - 1)
+    expected = (y[0, n:] - previous_mean) * np.sqrt((t - 1) / t)
+    np.testing.assert_allclose(result.recursive_residuals[0], expected, rtol=1e-10)
+    assert state.residual_std_error[0] == pytest.approx(float(np.std(y[0, :n], ddof=1)))
