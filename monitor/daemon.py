@@ -576,8 +576,8 @@ class MonitorDaemon:
                         break
                     self._sleep_until_woken(timeout=5.0)
                 logger.info(
-                    "stopping (%s): no new runs; waiting for the running job to finish",
-                    self._stop_reason, extra=_event("daemon_stopping", reason=self._stop_reason),
+                    "stopping: no new runs; waiting for the running job to finish",
+                    extra=_event("daemon_stopping", reason=self._stop_reason),
                 )
                 # The waiting happens in another thread so that the main thread stays free to
                 # take a second signal (which ends the process at once).

@@ -427,7 +427,8 @@ def test_dropped_file_is_seen_and_sigterm_waits_for_the_running_scan(
     assert (daemon.work / "week_01.csv.done").exists()  # the running job was finished first
     assert (daemon.work / "seen.txt").read_text() == "week_01.csv\n"
     log = daemon.log
-    assert "daemon_stopping: stopping (SIGTERM)" in log
+    assert "daemon_stopping: stopping: no new runs; waiting for the running job to finish " \
+        "(reason=SIGTERM)" in log
     assert log.index("scan_done") < log.index("daemon_stopped")
     plain_line = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z (info|warning) [a-z_]+: ")
     assert all(plain_line.match(line) for line in log.splitlines()), log
