@@ -472,6 +472,24 @@ def test_an_alias_cycle_is_refused() -> None:
     ]
 
 
+def test_feeds_do_not_share_an_inbox_or_file_into_one() -> None:
+    second = (
+        "  other:\n    inbox: feeds/depot/inbox\n    archive: feeds/depot/done\n"
+        "    period: week_ending\n    cadence: 7d\n"
+    )
+    text = edit("models:\n", second + "models:\n")
+    inbox_line = [i for i, s in enumerate(text.splitlines(), 1) if "inbox: feeds/depot" in s][1]
+    assert problems(text) == [
+        f"plumbline.yaml line {inbox_line}: feeds.other.inbox: /srv/plumbline/feeds/depot/inbox "
+        "is also the inbox of feed depot_weekly; give each feed its own"
+    ]
+    looping = edit("    cadence: 7d\n", "    cadence: 7d\n    archive: inbox\n")
+    looping = edit("    inbox: feeds/depot/inbox\n", "    inbox: inbox\n", looping)
+    (message,) = problems(looping)
+    assert f"line {line_of(looping, 'archive: inbox')}: feeds.depot_weekly.archive: " in message
+    assert "would be read again as new" in message
+
+
 def test_yaml_is_loaded_safely() -> None:
     text = BASE + "database: !!python/object/apply:os.system [echo unsafe]\n"
     (message,) = problems(text)

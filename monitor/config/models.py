@@ -373,6 +373,7 @@ class PlumblineConfig(_Section):
         for key in ("feeds", "models"):
             if not getattr(self, key):
                 problems.append(Problem((key,), f"declare at least one {key[:-1]}"))
+        problems += _shared_folders(self.feeds)
         default_owners = list(self.notify.email.to) if self.notify.email is not None else []
         for name, model in self.models.items():
             if model.owners is None:
@@ -390,6 +391,26 @@ class PlumblineConfig(_Section):
         if problems:
             raise problems_error(problems)
         return self
+
+
+def _shared_folders(feeds: dict[str, Feed]) -> list[Problem]:
+    """Each inbox belongs to one feed, and no feed files into an inbox (a moved file would come
+    back as new)."""
+    inboxes: dict[Path, str] = {}
+    problems: list[Problem] = []
+    for name, feed in feeds.items():
+        owner = inboxes.setdefault(feed.inbox, name)
+        if owner != name:
+            message = f"{feed.inbox} is also the inbox of feed {owner}; give each feed its own"
+            problems.append(Problem(("feeds", name, "inbox"), message))
+    for name, feed in feeds.items():
+        for key in ("archive", "rejected"):
+            folder = getattr(feed, key)
+            if folder in inboxes:
+                message = f"{folder} is the inbox of feed {inboxes[folder]}; files moved there "
+                message += "would be read again as new"
+                problems.append(Problem(("feeds", name, key), message))
+    return problems
 
 
 def _against_feed(model: Model, feed: Feed) -> list[tuple[Loc, str]]:
