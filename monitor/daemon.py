@@ -15,35 +15,22 @@ The daemon holds the :class:`~monitor.lock.DatabaseLock` itself, so the callable
 it again. An exception from a job is logged (``scan_failed`` / ``digest_failed``) and the daemon
 carries on; the next run is tried on schedule.
 
-Schedules (DESIGN.md section 8) are a duration (``30s``, ``5m``; real elapsed time) or a
-five-field cron expression read on the wall clock of the configured IANA time zone, by our own
-:class:`WallClockCronTrigger`: APScheduler 3.11's ``CronTrigger`` runs a fixed-time schedule twice
-in the repeated autumn hour and, in spring, skips the day after the change for schedules at
-00:00–01:59 (a weekly Monday-midnight schedule loses a whole week). DEVELOPERS.md, section
-"daemon", has the reproductions. Daylight-saving rules follow classic (Vixie) cron:
+Schedules (DESIGN.md section 8) are a duration (real elapsed time) or a five-field cron
+expression read on the wall clock of the configured IANA zone by our :class:`WallClockCronTrigger`
+(APScheduler 3.11's ``CronTrigger`` fires fixed-time schedules twice in the repeated autumn hour
+and skips days after the spring change; DEVELOPERS.md, section "daemon", has the reproductions).
+Daylight saving follows classic cron: a fixed-time schedule (no ``*`` in minute and hour) whose
+time is skipped runs once when the clock jumps, and once only when its time is repeated; a
+schedule with ``*`` there follows the clock as it is. Day-of-week numbers are cron's (0 and 7 =
+Sunday), and with both day fields restricted either one matching counts.
 
-* a *fixed-time* schedule (no ``*`` in the minute and hour fields, e.g. ``30 2 * * *``) whose
-  time the clock skips runs once, at the moment the clock jumps (03:00 in Europe/Berlin); one
-  whose time the clock repeats runs at the first occurrence only;
-* a schedule with ``*`` in the minute or hour field (``*/5 * * * *``) follows the clock as it
-  is: skipped minutes do not happen and repeated ones run again, so its spacing in real time
-  stays even.
+Missed runs: ``coalesce=True``, ``max_instances=1``, ``misfire_grace_time=None`` and one worker
+thread. Missed run times of a job (a suspend, a held-up scheduler) collapse into one late run; a
+scan due while a scan runs is dropped; a digest due during a pass runs when the pass ends.
 
-Day-of-week numbers are cron's (0 or 7 = Sunday, 1 = Monday; names ``sun``–``sat`` work too), not
-APScheduler 3's Monday-first numbering; with both day fields restricted, a day matching either
-counts, as in cron.
-
-Missed runs and overlaps: both jobs use ``coalesce=True``, ``max_instances=1`` and
-``misfire_grace_time=None``, and one worker thread runs one job at a time. After a suspend, or
-when the scheduler was held up, all the missed run times of a job collapse into one run, made as
-soon as the daemon notices (the scheduler re-reads the clock at least every
-``MAX_SLEEP_SECONDS``), however late. A scan due while a scan still runs is dropped (the next one
-comes on schedule); a digest due during a pass starts when the pass ends.
-
-Signals: the first SIGTERM or SIGINT sets ``stop_requested``; no new job starts, the running one
-is waited for, the lock is released and :meth:`MonitorDaemon.run_forever` returns 0. A second
-signal while waiting ends the process at once with 128 + the signal number (130 for SIGINT, 143
-for SIGTERM); every stage commits on its own, so the next pass finishes the work.
+Signals: the first SIGTERM or SIGINT sets ``stop_requested``; nothing new starts, the running
+job is waited for, the lock is released and :meth:`MonitorDaemon.run_forever` returns 0. A
+second signal ends the process at once with 128 + the signal number.
 
 Logs: one line per event on stderr, plain or JSON (``EventLineFormatter``).
 """
@@ -510,7 +497,7 @@ class MonitorDaemon:
             for name, (trigger, function) in self._jobs.items():
                 options: dict[str, Any] = {}
                 if name == "scan" and self.scan_at_start:
-                    options["next_run_time"] = datetime.now(self.timezone)
+                    options["next_run_time"] = datetime.now(self.timezone).replace(microsecond=0)
                 scheduler.add_job(
                     self._run_job, trigger=trigger, args=(name, function), id=name, name=name,
                     **options,
@@ -519,14 +506,16 @@ class MonitorDaemon:
             # logged before the first job's lines.
             scheduler.start(paused=True)
             self._scheduler = scheduler
-            upcoming = self.next_run_times()
+            fields: dict[str, object] = {
+                "database": str(self.database), "timezone": self.timezone.key,
+                "scan_schedule": self.scan_schedule,
+            }
+            if self.digest_schedule is not None:
+                fields["digest_schedule"] = self.digest_schedule
+            for name, moment in self.next_run_times().items():
+                fields[f"next_{name}"] = moment
             logger.info(
-                "daemon started (pid %d)", os.getpid(),
-                extra=_event(
-                    "daemon_started", database=str(self.database), timezone=self.timezone.key,
-                    scan_schedule=self.scan_schedule, digest_schedule=self.digest_schedule,
-                    **{f"next_{name}": moment for name, moment in upcoming.items()},
-                ),
+                "daemon started (pid %d)", os.getpid(), extra=_event("daemon_started", **fields)
             )
             scheduler.resume()
         except BaseException:
