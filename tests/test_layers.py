@@ -18,6 +18,7 @@ LAYERS: dict[str, int] = {
     "lock": 2,
     "ingest": 3,
     "findings": 4,
+    "audit": 4,
     "notify": 5,
     "demo": 6,
     "passes": 6,
