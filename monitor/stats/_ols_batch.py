@@ -236,7 +236,7 @@ def _fast_arrays(
     df = fast.n - p
     safe_df = np.maximum(df, 1).astype(np.float64)
     scale = fast.scale
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         inverse_n = 1.0 / np.maximum(n, 1.0)
         slope_cov = np.matmul(fast.r_inverse, np.swapaxes(fast.r_inverse, 1, 2))
         slope_cov = slope_cov / (scale[:, :, None] * scale[:, None, :])
@@ -259,6 +259,9 @@ def _fast_arrays(
         unique_df, where = np.unique(safe_df, return_inverse=True)
         t_star = t_quantile(1.0 - (1.0 - level) / 2.0, unique_df)[where]
         half = t_star[:, None] * standard_error
+        lower = coef - half
+        upper = coef + half
+        fitted = y - fast.residuals
         total = fast.ssr + fast.sse
         r_squared = fast.ssr / total
         adj_factor = (n - 1.0) / safe_df if intercept else n / safe_df
@@ -284,8 +287,8 @@ def _fast_arrays(
         "standard_error": standard_error,
         "t": t_values,
         "p_value": p_values,
-        "lower": coef - half,
-        "upper": coef + half,
+        "lower": lower,
+        "upper": upper,
         "cov_unscaled": cov,
         "residual_std_error": s_hat,
         "sse": fast.sse,
@@ -297,7 +300,7 @@ def _fast_arrays(
         "f_p_value": f_p_value,
         "f_df": np.column_stack((np.full(s_count, df_model), df)).astype(np.float64),
         "residuals": fast.residuals,
-        "fitted": y - fast.residuals,
+        "fitted": fitted,
         "leverage": fast.leverage,
         "x_min": fast.x_min,
         "x_max": fast.x_max,

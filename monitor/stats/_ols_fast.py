@@ -23,6 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from monitor.stats._linalg import FloatArray
+from monitor.stats._ols_single import CONSTANT_RTOL, MAGNITUDE_LIMIT
 
 # Condition number of the standardised cross-product matrix Z'Z up to which the fast path is
 # used. Its error in the coefficients after refinement is about cond(Z) * eps and in the
@@ -35,9 +36,6 @@ FAST_CONDITION_LIMIT = 1e4
 # fit_ols, which decides about exact fits with compensated residuals.
 NEAR_EXACT_RTOL = 1e-6
 
-# Same rule as ols.CONSTANT_RTOL: a column whose centred norm is this small a share of its
-# uncentred norm is constant to rounding.
-CONSTANT_RTOL = 1e-12
 
 # Series per chunk of the fast path (about 1.2 MB per (chunk, 156) column: cache-sized).
 CHUNK_SERIES = 1024
@@ -123,16 +121,27 @@ def _fast_fit_chunk(
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         if partial:
             x_min = _side_by_side(
-                [np.where(mask, c, np.inf).min(axis=1) for c in columns], s_count)
+                [np.where(mask, c, np.inf).min(axis=1, initial=np.inf) for c in columns], s_count)
             x_max = _side_by_side(
-                [np.where(mask, c, -np.inf).max(axis=1) for c in columns], s_count)
+                [np.where(mask, c, -np.inf).max(axis=1, initial=-np.inf) for c in columns], s_count)
         else:
-            x_min = _side_by_side([c.min(axis=1) for c in columns], s_count)
-            x_max = _side_by_side([c.max(axis=1) for c in columns], s_count)
+            x_min = _side_by_side([c.min(axis=1, initial=np.inf) for c in columns], s_count)
+            x_max = _side_by_side([c.max(axis=1, initial=-np.inf) for c in columns], s_count)
         x_min = x_min.reshape(s_count, k)
         x_max = x_max.reshape(s_count, k)
         x_min[n == 0] = np.nan
         x_max[n == 0] = np.nan
+        # fit_ols's magnitude rule, so that such series go to it and get its reason.
+        largest_x = np.maximum(np.abs(x_min), np.abs(x_max))
+        if y_used.shape[1]:
+            largest_y = np.maximum(np.abs(y_used.max(axis=1)), np.abs(y_used.min(axis=1)))
+        else:
+            largest_y = np.zeros(s_count)
+        for largest in (largest_x, largest_y[:, None]):
+            outside = (largest > MAGNITUDE_LIMIT) | (
+                (largest > 0.0) & (largest < 1.0 / MAGNITUDE_LIMIT)
+            )
+            needs_fallback |= outside.any(axis=1)
         if intercept:
             centre = _side_by_side([c.sum(axis=1) for c in columns], s_count)
             centre /= safe_n[:, None]
@@ -152,7 +161,9 @@ def _fast_fit_chunk(
         # Non-finite data show up as non-finite means or norms: no separate pass over the data.
         needs_fallback |= ~np.isfinite(y_mean) | ~np.isfinite(scale).all(axis=1)
         raw_norm = np.sqrt(scale * scale + safe_n[:, None] * centre * centre)
-        degenerate = ~(scale > CONSTANT_RTOL * raw_norm)
+        # A thousand times fit_ols's rule: a column near the line goes to fit_ols, which decides,
+        # so the two can never disagree about it.
+        degenerate = ~(scale > 1e3 * CONSTANT_RTOL * raw_norm)
         needs_fallback |= degenerate.any(axis=1)
         safe_scale = np.where(degenerate | ~np.isfinite(scale), 1.0, scale)
 

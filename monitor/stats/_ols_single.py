@@ -31,7 +31,11 @@ EXACT_FIT_RTOL = 32.0 * EPS
 
 # A predictor whose centred norm is below this share of its uncentred norm is constant to
 # rounding: its variation is the last digits of its values.
-CONSTANT_RTOL = 1e-12
+CONSTANT_RTOL = 64.0 * EPS
+
+# Data whose magnitudes lie outside [1/MAGNITUDE_LIMIT, MAGNITUDE_LIMIT] (zero apart) would
+# overflow or underflow in sums of squares; such a column or response is reported, not fitted.
+MAGNITUDE_LIMIT = 1e100
 
 # Steps of augmented-system refinement. One step reaches the limit the float64 data allow on
 # every NIST StRD linear file (a second changes nothing there); see tests/stats/test_ols_nist.py.
@@ -198,10 +202,11 @@ def _not_estimable(
     k = x.shape[1]
     nan_p = _frozen(np.full(p, math.nan))
     nan_n = _frozen(np.full(n, math.nan))
-    with np.errstate(invalid="ignore"):
-        finite = np.where(np.isfinite(x), x, np.nan)
-        x_min = np.nanmin(finite, axis=0) if n and np.isfinite(finite).any() else np.full(k, np.nan)
-        x_max = np.nanmax(finite, axis=0) if n and np.isfinite(finite).any() else np.full(k, np.nan)
+    finite = np.isfinite(x)
+    has_finite = finite.any(axis=0)
+    x_min = np.where(has_finite, np.where(finite, x, np.inf).min(axis=0, initial=np.inf), np.nan)
+    x_max = np.where(has_finite, np.where(finite, x, -np.inf).max(axis=0, initial=-np.inf),
+                     np.nan)
     df_model = p - 1 if intercept else p
     one_predictor = intercept and k == 1
     return OlsFit(
@@ -245,14 +250,28 @@ def _diagnose_inputs(
             f"too few rows: {n} row(s) for {p} term(s) ({', '.join(terms)}); "
             f"inference needs at least {p + 1}"
         )
+    for label, values in (("the response", y), *((f"column {nm!r}", x[:, j])
+                                                   for j, nm in enumerate(names))):
+        largest = float(np.max(np.abs(values))) if n else 0.0
+        if largest > MAGNITUDE_LIMIT or 0.0 < largest < 1.0 / MAGNITUDE_LIMIT:
+            return (
+                f"{label} has values of magnitude {largest:.3g}, beyond what float64 sums of "
+                f"squares can hold (1e-100 to 1e100); change its units"
+            )
     for j in range(k):
         column = x[:, j]
         if intercept:
-            spread = np.linalg.norm(column - column.mean())
-            if np.ptp(column) == 0.0 or spread <= CONSTANT_RTOL * np.linalg.norm(column):
+            if np.ptp(column) == 0.0:
                 return (
                     f"column {names[j]!r} is constant (every row {column[0]:.6g}); its slope "
                     "cannot be told apart from the intercept"
+                )
+            spread = np.linalg.norm(column - column.mean())
+            if spread <= CONSTANT_RTOL * np.linalg.norm(column):
+                return (
+                    f"column {names[j]!r} is constant to rounding (its rows differ only in the "
+                    f"last digits of {column[0]:.6g}); its slope cannot be told apart from the "
+                    "intercept"
                 )
         elif not np.any(column):
             return f"column {names[j]!r} is zero in every row; its slope cannot be estimated"

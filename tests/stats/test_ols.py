@@ -258,3 +258,33 @@ def test_results_are_read_only() -> None:
     fit = fit_ols(x, y)
     with pytest.raises(ValueError):
         fit.coef[0] = 0.0
+
+
+def test_values_float64_cannot_square_are_reported_not_fitted() -> None:
+    # Sums of squares of values beyond 1e100 (or below 1e-100) overflow or underflow float64
+    # (IEEE 754 double range, about 1e308 to 1e-308); pytest turns any numpy warning into an
+    # error here, so these also show that no overflow happens on the way.
+    rng = np.random.default_rng(31)
+    a = rng.normal(size=20)
+    y = 1.0 + a + rng.normal(size=20)
+    for x, yy, label in ((a * 1e200, y, "'x1'"), (a * 1e-200, y, "'x1'"),
+                         (a, y * 1e300, "response"), (a, y * 1e-300, "response")):
+        reason = _reason(fit_ols(x, yy))
+        assert label in reason and "magnitude" in reason
+    all_nan = np.column_stack([a, np.full(20, np.nan)])
+    assert "'x2'" in _reason(fit_ols(all_nan, y))
+
+
+def test_constant_to_rounding_versus_small_real_spread() -> None:
+    rng = np.random.default_rng(32)
+    a = rng.normal(size=25)
+    y = 2.0 + a + rng.normal(size=25)
+    # 1e15 + N(0, 1): the spread is in the last bits of the values (ulp 0.125).
+    reason = _reason(fit_ols(1e15 + a, y))
+    assert "constant to rounding" in reason
+    # 1e9 + N(0, 1): about seven digits of spread survive, so the fit is estimable. (statsmodels
+    # calls this design singular.) A shift of x leaves the slope unchanged, so the fit on the
+    # unshifted column is the reference, to the digits the shifted values keep.
+    fit = fit_ols(1e9 + a, y)
+    assert fit.estimable
+    close(fit.coef[1], fit_ols(a, y).coef[1], rtol=1e-6)

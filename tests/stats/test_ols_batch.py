@@ -224,3 +224,15 @@ def test_intercept_only_batch() -> None:
     fit = fit_batch(np.zeros((4, 9, 0)), y, mask, level=0.9)
     assert fit.fast_path.all()
     each_series_matches(fit, np.zeros((4, 9, 0)), y, mask)
+
+
+def test_batch_follows_fit_ols_on_out_of_range_and_empty_series() -> None:
+    x, y, mask = ragged(15, 6, 20, 1)
+    x[0] *= 1e200  # beyond the magnitude fit_ols accepts
+    y[1] *= 1e-300
+    x[2] = 1e15 + np.nan_to_num(x[2] - 50.0)  # constant to rounding
+    mask[3] = False  # no rows at all
+    fit = fit_batch(x, y, mask)
+    assert not fit.fast_path[:4].any() and fit.fast_path[4:].all()
+    assert not fit.estimable[:4].any()
+    each_series_matches(fit, x, y, mask)
