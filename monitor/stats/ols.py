@@ -42,8 +42,10 @@ Special results:
   the standard errors are 0, R² and adjusted R² are 1, t statistics, p-values and the
   correlation's t test are NaN (null in JSON), F and its p-value are None, and the confidence
   and prediction intervals collapse to the estimate. A constant response is an exact fit.
-* **Not estimable**: non-finite data, ``n <= p``, a constant (with an intercept; to rounding,
-  ``CONSTANT_RTOL``) or all-zero predictor, or collinear columns (smallest singular value of the
+* **Not estimable**: non-finite data, ``n <= p``, values whose squares float64 cannot hold
+  (magnitude beyond ``MAGNITUDE_LIMIT`` = 1e100 or, non-zero, below 1e-100), a constant (with an
+  intercept; also constant to rounding, centred norm at most ``CONSTANT_RTOL`` = 64 eps of the
+  uncentred norm) or all-zero predictor, or collinear columns (smallest singular value of the
   standardised columns at or below ``max(n, k) * eps`` times the largest, numpy's rank rule).
   The result has ``estimable=False``, a ``reason`` that names the column(s) and the cause (rows
   counted from 1), NaN in every numerical field, and ``predict`` raises ``ValueError``.
@@ -78,6 +80,7 @@ from monitor.stats._ols_batch import BatchFit, BatchPrediction, fit_batch
 from monitor.stats._ols_single import (
     CONSTANT_RTOL,
     EXACT_FIT_RTOL,
+    MAGNITUDE_LIMIT,
     REFINEMENT_STEPS,
     OlsFit,
     Prediction,
@@ -87,6 +90,7 @@ from monitor.stats._ols_single import (
 __all__ = [
     "CONSTANT_RTOL",
     "EXACT_FIT_RTOL",
+    "MAGNITUDE_LIMIT",
     "REFINEMENT_STEPS",
     "BatchFit",
     "BatchPrediction",
