@@ -131,17 +131,13 @@ def _fast_fit_chunk(
         x_max = x_max.reshape(s_count, k)
         x_min[n == 0] = np.nan
         x_max[n == 0] = np.nan
-        # fit_ols's magnitude rule, so that such series go to it and get its reason.
+        # fit_ols's magnitude rule for the predictors, so that such series go to it and get
+        # its reason (the response's is checked below from its sum of squares).
         largest_x = np.maximum(np.abs(x_min), np.abs(x_max))
-        if y_used.shape[1]:
-            largest_y = np.maximum(np.abs(y_used.max(axis=1)), np.abs(y_used.min(axis=1)))
-        else:
-            largest_y = np.zeros(s_count)
-        for largest in (largest_x, largest_y[:, None]):
-            outside = (largest > MAGNITUDE_LIMIT) | (
-                (largest > 0.0) & (largest < 1.0 / MAGNITUDE_LIMIT)
-            )
-            needs_fallback |= outside.any(axis=1)
+        outside = (largest_x > MAGNITUDE_LIMIT) | (
+            (largest_x > 0.0) & (largest_x < 1.0 / MAGNITUDE_LIMIT)
+        )
+        needs_fallback |= outside.any(axis=1)
         if intercept:
             centre = _side_by_side([c.sum(axis=1) for c in columns], s_count)
             centre /= safe_n[:, None]
@@ -214,6 +210,13 @@ def _fast_fit_chunk(
         ssr = _dot(fitted_centred, fitted_centred)
         sst = _dot(y_centred, y_centred)
         needs_fallback |= ~(np.sqrt(sse) > NEAR_EXACT_RTOL * np.sqrt(sst))
+        # max|y| > 1e100 forces sum y² > 1e200, and 0 < max|y| < 1e-100 forces
+        # sum y² < n 1e-200 (or an underflow to 0, caught as near-exact above): either way the
+        # series goes to fit_ols, which applies its magnitude rule exactly.
+        y_square_sum = sst + safe_n * y_mean * y_mean if intercept else sst
+        needs_fallback |= ~(y_square_sum <= MAGNITUDE_LIMIT**2) | ~(
+            y_square_sum >= safe_n / MAGNITUDE_LIMIT**2
+        )
         intercept_value = y_mean - np.einsum("sk,sk->s", centre, slopes)
 
         # Leverage h = 1/n + ||z R^-1||² row by row (a sum of squares: no cancellation).
