@@ -233,7 +233,7 @@ class PlantedChange:
     detect_within_weeks: int
     period_tolerance_weeks: int | None
     description: str
-    size: dict[str, float] = field(default_factory=dict)
+    size: dict[str, float] = field(default_factory=dict, hash=False)
 
     @property
     def week(self) -> date:

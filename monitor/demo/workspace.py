@@ -14,7 +14,7 @@ clock at ``ScenarioWeek.delivered_at``.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import date, datetime
 from functools import lru_cache
 from pathlib import Path, PurePosixPath
@@ -44,7 +44,8 @@ class ScenarioWeek:
     number: int
     week_ending: date
     delivered_at: datetime  # aware, Europe/Berlin: the business clock of that week's pass
-    files: dict[str, Path]  # feed name -> the week's file under drops/ (absent when quiet)
+    # feed name -> the week's file under drops/ (a quiet feed has no entry)
+    files: dict[str, Path] = field(hash=False)
 
 
 @dataclass(frozen=True)
@@ -55,7 +56,7 @@ class ScenarioManifest:
     config_path: Path
     manifest_path: Path
     readme_path: Path
-    inboxes: dict[str, Path]
+    inboxes: dict[str, Path] = field(hash=False)
     weeks: tuple[ScenarioWeek, ...]
     planted: tuple[PlantedChange, ...]
     healthy: tuple[HealthySeries, ...]
