@@ -5,7 +5,7 @@
 
 Rows are taken in file order, which must be time order. Without ``--predictors`` the model is
 the mean alone (the intercept), so the tests look for a shift in level. Three tests run on the
-same least-squares model (``monitor.stats.change`` and ``monitor.stats.supf``):
+same least-squares model (``monitor.stats.supf.break_tests``):
 
 - the CUSUM of recursive residuals (Brown, Durbin & Evans 1975) against its 5 % lines;
 - the OLS-residual CUSUM (Ploberger & Krämer 1992);
@@ -30,12 +30,7 @@ import numpy as np
 
 from monitor.commands._csv import CsvTable, read_csv_table
 from monitor.errors import InputFileError, UsageError
-from monitor.stats.change import (
-    cusum_from_recursive,
-    ols_cusum_test,
-    recursive_residuals,
-)
-from monitor.stats.supf import DEFAULT_TRIMMING, sup_f_test
+from monitor.stats.supf import DEFAULT_TRIMMING, break_tests
 from monitor.text import format_p_value
 
 # The level at which the verdicts are worded; the CUSUM lines are drawn for it.
@@ -149,10 +144,11 @@ def build_report(
             f"at least {minimum_rows(p)}"
         )
     names = list(predictors)
-    recursive = recursive_residuals(x, y, intercept=intercept, names=names)
-    cusum = cusum_from_recursive(recursive).series(0)
-    ols = ols_cusum_test(x, y, intercept=intercept, names=names).series(0)
-    sup_f = sup_f_test(x, y, intercept=intercept, names=names).series(0)
+    tests = break_tests(x, y, intercept=intercept, names=names)
+    recursive = tests.recursive
+    cusum = tests.cusum.series(0)
+    ols = tests.ols_cusum.series(0)
+    sup_f = tests.sup_f.series(0)
     if not ols.applicable and ols.reason is not None and not ols.reason.startswith("the fit"):
         raise InputFileError(f"{table.path.name}: cannot test {response!r}: {ols.reason}")
     lines = table.line_numbers

@@ -62,6 +62,7 @@ _PIVOT_TOLERANCE = 1e-9
 # Residual RMS below this fraction of the response's RMS (centred with an intercept) is an exact
 # fit: no error scale to test against.
 _EXACT_FIT_RELATIVE = 1e-10
+EXACT_REASON = "the fit is exact (residuals are zero to rounding), so there is no scale"
 
 
 @dataclass(frozen=True, eq=False)
@@ -137,32 +138,40 @@ def prepare(
         raise ValueError(f"names has {len(predictor_names)} entries for {k} predictors")
     terms = (("intercept",) if intercept else ()) + predictor_names
     reason: list[str | None] = [None] * s
-    finite = np.isfinite(y_arr) & np.all(np.isfinite(x_arr), axis=2)
-    bad = used & ~finite
-    for i in np.flatnonzero(bad.any(axis=1)):
-        row = int(np.flatnonzero(bad[i])[0])
-        reason[i] = f"row {row} holds a value that is not a finite number"
+    if np.isfinite(y_arr).all() and np.isfinite(x_arr).all():
+        used_f = used
+    else:
+        finite = np.isfinite(y_arr) & np.all(np.isfinite(x_arr), axis=2)
+        bad = used & ~finite
+        for i in map(int, np.flatnonzero(bad.any(axis=1))):
+            row = int(np.flatnonzero(bad[i])[0])
+            reason[i] = f"row {row} holds a value that is not a finite number"
+        used_f = used & finite
     if p == 0:
         reason = ["the model has no coefficients (no predictors and no intercept)"] * s
-    used_f = used & finite
     n_used = used_f.sum(axis=1).astype(np.int64)
     safe_n = np.maximum(n_used, 1).astype(np.float64)
-    # Work series-last, (n, columns, s), the layout the row updates read.
-    weights = np.ascontiguousarray(used_f.T, dtype=np.float64)  # (n, s)
-    x_t = np.array(x_arr.transpose(1, 2, 0), order="C")  # (n, k, s), a copy
-    y_t = np.array(y_arr.T, order="C")  # (n, s), a copy
+    # Work series-last, (n, columns, s), the layout the row updates read, in place in ``rows``.
+    rows = np.empty((n, p + 1, s))
+    x_t = rows[:, p - k : p, :]
+    y_t = rows[:, p, :]
+    x_t[...] = x_arr.transpose(1, 2, 0)
+    y_t[...] = y_arr.T
     every_row = bool(used_f.all())
-    if not every_row:
-        x_t = np.where(weights[:, None, :] > 0, x_t, 0.0)
-        y_t = np.where(weights > 0, y_t, 0.0)
+    weights = None if every_row else np.ascontiguousarray(used_f.T, dtype=np.float64)
+    if weights is not None:
+        # Unused rows (and non-finite values in them) become zeros, which no update sees.
+        x_t[...] = np.where(weights[:, None, :] > 0, x_t, 0.0)
+        y_t[...] = np.where(weights > 0, y_t, 0.0)
     if intercept:
         x_centre = x_t.sum(axis=0) / safe_n  # (k, s)
         y_centre = y_t.sum(axis=0) / safe_n
         x_t -= x_centre[None]
         y_t -= y_centre[None]
-        if not every_row:
+        if weights is not None:
             x_t *= weights[:, None, :]
             y_t *= weights
+        rows[:, 0, :] = 1.0 if weights is None else weights
     else:
         x_centre = np.zeros((k, s))
         y_centre = np.zeros(s)
@@ -170,11 +179,8 @@ def prepare(
     x_scale = np.where(x_scale > 0, x_scale, 1.0)
     y_scale = np.sqrt(np.einsum("ns,ns->s", y_t, y_t) / safe_n)
     y_scale = np.where(y_scale > 0, y_scale, 1.0)
-    rows = np.empty((n, p + 1, s))
-    if intercept:
-        rows[:, 0, :] = weights
-    np.divide(x_t, x_scale[None], out=rows[:, p - k : p, :])
-    np.divide(y_t, y_scale[None], out=rows[:, p, :])
+    x_t /= x_scale[None]
+    y_t /= y_scale[None]
     basis = np.zeros((s, p, p))
     offset = p - k
     if intercept:
@@ -272,13 +278,13 @@ def _rls_rows(
     p = cov.shape[0]
     for t in range(start, rows.shape[0]):
         x = rows[t, :p]
-        gain = np.einsum("ijs,js->is", cov, x)
-        f = 1.0 + np.einsum("is,is->s", x, gain)
+        px = np.einsum("ijs,js->is", cov, x)
+        f = 1.0 + np.einsum("is,is->s", x, px)
         error = rows[t, p] - np.einsum("is,is->s", x, coef)
         residual[t] = error / np.sqrt(f)
-        gain /= f
+        gain = px / f
         coef += gain * error
-        cov -= gain[:, None, :] * (gain * f)[None, :, :]
+        cov -= gain[:, None, :] * px[None, :, :]
 
 
 def _triangular_inverse(r: FloatArray, ok: BoolArray) -> FloatArray:
@@ -356,8 +362,15 @@ def least_squares_pass(rows: FloatArray, p: int) -> QrPass:
         cov[idx] = inv_slow @ inv_slow.transpose(0, 2, 1)
         filled[:, idx] = sub_filled
     empty = np.where(filled.all(axis=0), -1, np.argmin(filled, axis=0)) if p else np.full(s, -1)
-    rss = np.cumsum(residual**2, axis=0)
-    rank = np.cumsum(rank_row, axis=0, dtype=np.int64)
+    rss = np.square(residual)
+    np.cumsum(rss, axis=0, out=rss)
+    if slow.any() or start >= n:
+        rank = np.cumsum(rank_row, axis=0, dtype=np.int64)
+    else:
+        # Rows after the rotations never raise the rank: it stays at its value there.
+        rank = np.empty((n, s), dtype=np.int64)
+        np.cumsum(rank_row[:start], axis=0, out=rank[:start])
+        rank[start:] = rank[start - 1]
     return QrPass(
         residual=residual,
         rank_row=rank_row,
@@ -390,46 +403,44 @@ class RecursiveResiduals:
     (s, n) marks the rows that have one (all used rows but the p that first raised the rank: rows
     p … n − 1 when the first p rows determine the fit); ``count`` (s,) = used rows − p;
     ``forward_rss`` (s, n) the residual sum of squares of the used rows up to and including each
-    row (valid where ``forward_rank`` == p); ``applicable`` (s,), ``reason``.
+    row (valid where the rank so far, ``forward_rank`` (n, s), is p); ``applicable``,
+    ``reason``.
     """
 
     residuals: FloatArray
     has_residual: BoolArray
     count: IntArray
-    forward_rss: FloatArray
-    forward_rank: IntArray
+    forward_rss_scaled: FloatArray  # (n, s) in the scaled units of the updates
+    forward_rank: IntArray  # (n, s)
     p: int
     n_used: IntArray
     y_scale: FloatArray
     applicable: BoolArray
     reason: list[str | None]
 
+    @property
+    def forward_rss(self) -> FloatArray:
+        """(s, n) RSS of the used rows up to and including each row, in the response's units."""
+        return np.asarray(self.forward_rss_scaled.T * self.y_scale[:, None] ** 2)
 
-def _recursive_from(prep: Prepared, qr: QrPass) -> RecursiveResiduals:
+
+def recursive_from_pass(prep: Prepared, qr: QrPass) -> RecursiveResiduals:
+    """Recursive residuals (see ``recursive_residuals``) from prepared series and their pass."""
     s = prep.used.shape[0]
     final_rank = qr.rank[-1] if qr.rank.shape[0] else np.zeros(s, dtype=np.int64)
-    has = (prep.used & ~qr.rank_row.T) & (final_rank[:, None] == prep.p)
-    count = (prep.n_used - prep.p).astype(np.int64)
-    reason = list(prep.reason)
-    for i in range(s):
-        if reason[i] is not None:
-            continue
-        if prep.n_used[i] <= prep.p:
-            reason[i] = (
-                f"{prep.n_used[i]} rows used; recursive residuals need more than {prep.p} "
-                f"(one per coefficient to start from)"
-            )
-        elif final_rank[i] < prep.p:
-            reason[i] = rank_reason(prep, qr, i)
+    reason = basic_reasons(prep, qr, "recursive residuals")
     applicable = np.array([why is None for why in reason], dtype=bool)
-    scale = prep.y_scale[:, None]
-    residuals = np.where(has & applicable[:, None], qr.residual.T * scale, 0.0)
+    has = (prep.used & ~qr.rank_row.T) & ((final_rank == prep.p) & applicable)[:, None]
+    count = (prep.n_used - prep.p).astype(np.int64)
+    residuals = qr.residual.T * prep.y_scale[:, None]
+    if not has.all():
+        residuals = np.where(has, residuals, 0.0)
     return RecursiveResiduals(
         residuals=residuals,
-        has_residual=has & applicable[:, None],
+        has_residual=has,
         count=np.where(applicable, count, 0),
-        forward_rss=qr.rss.T * scale**2,
-        forward_rank=qr.rank.T,
+        forward_rss_scaled=qr.rss,
+        forward_rank=qr.rank,
         p=prep.p,
         n_used=prep.n_used,
         y_scale=prep.y_scale,
@@ -455,7 +466,7 @@ def recursive_residuals(
     independent N(0, σ²).
     """
     prep = prepare(x, y, mask, intercept=intercept, names=names)
-    return _recursive_from(prep, least_squares_pass(prep.rows, prep.p))
+    return recursive_from_pass(prep, least_squares_pass(prep.rows, prep.p))
 
 
 def is_exact_fit(rss_scaled: FloatArray, n_used: IntArray) -> BoolArray:
@@ -490,7 +501,8 @@ class BatchCusum:
     """BDE CUSUM tests of s series; arrays (s,) or (s, n), see the module docstring for NaN/−1.
 
     ``path`` (s, n) is W at each row, carried forward over rows without a residual (0 before the
-    first); ``boundary`` (s, n) the 5 % line at rows with a residual (NaN elsewhere);
+    first; NaN for series not applicable); ``boundary`` (s, n) the 5 % line at rows with a
+    residual (NaN elsewhere);
     ``first_crossing`` maps level -> (s,) row index or −1.
     """
 
@@ -500,10 +512,16 @@ class BatchCusum:
     p_value: FloatArray
     sigma: FloatArray
     path: FloatArray
-    boundary: FloatArray
+    line5: FloatArray  # (s, n) or (s, 1)-broadcastable: the 5 % line at every row
     has_residual: BoolArray
     applicable: BoolArray
     reason: list[str | None]
+
+    @property
+    def boundary(self) -> FloatArray:
+        """(s, n) the 5 % boundary at rows with a recursive residual, NaN elsewhere."""
+        line = np.broadcast_to(self.line5, self.has_residual.shape)
+        return np.where(self.has_residual, line, np.nan)
 
     def series(self, i: int) -> CusumResult:
         """The result of series ``i`` with None for what is not applicable."""
@@ -542,23 +560,32 @@ def cusum_from_recursive(rr: RecursiveResiduals) -> BatchCusum:
     """
     s, n = rr.residuals.shape
     count = rr.count.astype(np.float64)
-    rss = (rr.residuals**2).sum(axis=1)
+    rss = np.einsum("sn,sn->s", rr.residuals, rr.residuals)
     reason = list(rr.reason)
     exact = is_exact_fit(rss / rr.y_scale**2, rr.n_used)
-    for i in range(s):
-        if reason[i] is None and rr.count[i] < 2:
+    for i in map(int, np.flatnonzero(rr.applicable & ((rr.count < 2) | exact))):
+        if rr.count[i] < 2:
             reason[i] = f"{rr.count[i]} recursive residual(s); the CUSUM test needs at least 2"
-        elif reason[i] is None and exact[i]:
-            reason[i] = "the fit is exact (residuals are zero to rounding), so there is no scale"
-    scaled_rss = rss / np.where(count > 0, count, 1.0)
+        else:
+            reason[i] = EXACT_REASON
     applicable = np.array([why is None for why in reason], dtype=bool)
-    sigma = np.sqrt(np.where(applicable, scaled_rss, 1.0))
-    path = np.cumsum(rr.residuals, axis=1) / sigma[:, None]
-    position = np.cumsum(rr.has_residual, axis=1).astype(np.float64)
+    every = bool(applicable.all())
+    has = rr.has_residual if every else rr.has_residual & applicable[:, None]
+    sigma = np.sqrt(np.where(applicable, rss / np.where(count > 0, count, 1.0), 1.0))
+    path = np.cumsum(rr.residuals, axis=1)
+    path /= sigma[:, None]
+    p = rr.p
+    if n > p and every and has[:, :p].sum() == 0 and has[:, p:].all():
+        # Every series has its residuals on rows p … n − 1: r − k is the same for all.
+        position = np.maximum(np.arange(n, dtype=np.float64) - p + 1, 0.0)[None, :]
+    else:
+        position = np.cumsum(has, axis=1, dtype=np.float64)
     root = np.sqrt(np.where(count > 0, count, 1.0))[:, None]
     a5 = bde_boundary_constant(0.05)
-    unit_line = root + 2.0 * position / root  # boundary for a = 1
-    ratio = np.where(rr.has_residual, np.abs(path) / (a5 * unit_line), 0.0)
+    line5 = a5 * (root + 2.0 * position / root)
+    ratio = np.abs(path)
+    ratio /= line5
+    ratio[~has] = 0.0
     statistic = ratio.max(axis=1) if n else np.zeros(s)
     first: dict[float, IntArray] = {}
     for level in CUSUM_LEVELS:
@@ -574,9 +601,9 @@ def cusum_from_recursive(rr: RecursiveResiduals) -> BatchCusum:
         first_crossing=first,
         p_value=np.where(applicable, p_value, nan),
         sigma=np.where(applicable, sigma, nan),
-        path=np.where(applicable[:, None], path, np.nan),
-        boundary=np.where(rr.has_residual & applicable[:, None], a5 * unit_line, np.nan),
-        has_residual=rr.has_residual & applicable[:, None],
+        path=path if every else np.where(applicable[:, None], path, np.nan),
+        line5=line5,
+        has_residual=has,
         applicable=applicable,
         reason=reason,
     )
@@ -615,7 +642,6 @@ class BatchOlsCusum:
     statistic: FloatArray
     p_value: FloatArray
     peak_index: IntArray
-    residuals: FloatArray  # (s, n) full-sample OLS residuals in the response's units, 0 unused
     applicable: BoolArray
     reason: list[str | None]
 
@@ -643,41 +669,58 @@ def ols_cusum_test(
     ``scipy.stats.kstwobign.sf``. x (n, k) / (s, n, k), y (n,) / (s, n), mask (s, n).
     """
     prep = prepare(x, y, mask, intercept=intercept, names=names)
-    qr = least_squares_pass(prep.rows, prep.p)
+    return ols_cusum_from_pass(prep, least_squares_pass(prep.rows, prep.p))
+
+
+def basic_reasons(prep: Prepared, qr: QrPass, needs: str) -> list[str | None]:
+    """Input problems, too few rows, rank deficiency: the reasons every test shares."""
     s, n = prep.used.shape
     final_rank = qr.rank[-1] if n else np.zeros(s, dtype=np.int64)
     reason = list(prep.reason)
-    for i in range(s):
+    suspect = (prep.n_used <= prep.p) | (final_rank < prep.p)
+    for i in map(int, np.flatnonzero(suspect)):
         if reason[i] is not None:
             continue
         if prep.n_used[i] <= prep.p:
-            reason[i] = f"{prep.n_used[i]} rows used; the OLS-CUSUM needs more than {prep.p}"
-        elif final_rank[i] < prep.p:
+            reason[i] = (
+                f"{prep.n_used[i]} rows used; {needs} require more than {prep.p} (one per "
+                "coefficient)"
+            )
+        else:
             reason[i] = rank_reason(prep, qr, i)
+    return reason
+
+
+def ols_cusum_from_pass(prep: Prepared, qr: QrPass) -> BatchOlsCusum:
+    """OLS-CUSUM (see ``ols_cusum_test``) from prepared series and their forward pass."""
+    s, n = prep.used.shape
+    p = prep.p
+    reason = basic_reasons(prep, qr, "OLS residuals for the CUSUM")
     ok = np.array([why is None for why in reason], dtype=bool)
     coef = np.where(ok[:, None], qr.coef, 0.0)
-    design = prep.rows[:, : prep.p, :].transpose(2, 0, 1)  # (s, n, p)
-    fitted = np.einsum("snp,sp->sn", design, coef)
-    resid = np.where(prep.used, prep.rows[:, prep.p, :].T - fitted, 0.0)
-    sse = (resid**2).sum(axis=1)
+    # Series-last, as the rows are stored: residuals (n, s) = y − Σ_j x_j·b_j.
+    resid = prep.rows[:, p, :].copy()
+    for j in range(p):
+        resid -= prep.rows[:, j, :] * coef[:, j]
+    if not prep.used.all():
+        resid *= prep.used.T
+    sse = np.einsum("ns,ns->s", resid, resid)
     exact = is_exact_fit(sse, prep.n_used)
-    for i in range(s):
-        if reason[i] is None and exact[i]:
-            reason[i] = "the fit is exact (residuals are zero to rounding), so there is no scale"
-    applicable = np.array([why is None for why in reason], dtype=bool)
-    df = np.maximum(prep.n_used - prep.p, 1).astype(np.float64)
+    for i in map(int, np.flatnonzero(exact & ok)):
+        reason[i] = EXACT_REASON
+    applicable = ok & ~exact
+    df = np.maximum(prep.n_used - p, 1).astype(np.float64)
     sigma = np.sqrt(np.where(applicable, sse / df, 1.0))
-    process = np.abs(np.cumsum(resid, axis=1)) / (sigma * np.sqrt(np.maximum(prep.n_used, 1)))[
-        :, None
-    ]
-    statistic = process.max(axis=1) if n else np.zeros(s)
-    peak = np.argmax(process, axis=1) if n else np.zeros(s, dtype=np.int64)
+    process = np.cumsum(resid, axis=0, out=resid)
+    np.abs(process, out=process)
+    peak = np.argmax(process, axis=0) if n else np.zeros(s, dtype=np.int64)
+    top = process[peak, np.arange(s)] if n else np.zeros(s)
+    statistic = top / (sigma * np.sqrt(np.maximum(prep.n_used, 1)))
     p_value = stats.kstwobign.sf(statistic)
     return BatchOlsCusum(
         statistic=np.where(applicable, statistic, np.nan),
         p_value=np.where(applicable, p_value, np.nan),
         peak_index=np.where(applicable, peak, -1).astype(np.int64),
-        residuals=np.where(applicable[:, None], resid * prep.y_scale[:, None], 0.0),
         applicable=applicable,
         reason=reason,
     )

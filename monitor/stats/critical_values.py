@@ -176,6 +176,27 @@ def supf_p_value(wald_statistic: float, restrictions: int, trimming: float = 0.1
     return SupFPValue(float(np.exp(log_tail)), None)
 
 
+def supf_p_values(
+    wald_statistics: ArrayLike, restrictions: int, trimming: float = 0.15
+) -> tuple[FloatArray, list[str | None]]:
+    """``supf_p_value`` for an array of Wald statistics (s,): p-values (s,) and bounds."""
+    table = supf_table()
+    if abs(trimming - table.trimming) > 1e-12 or restrictions not in table.quantiles:
+        raise ValueError("no simulated table for this trimming or number of restrictions")
+    wald = np.asarray(wald_statistics, dtype=np.float64).reshape(-1)
+    q = np.asarray(table.quantiles[restrictions])
+    tails = np.asarray(table.tail_probabilities)
+    p_values = np.exp(np.interp(wald, q, np.log(tails)))
+    below = wald >= q[-1]
+    above = wald <= q[0]
+    p_values = np.where(below, tails[-1], np.where(above, tails[0], p_values))
+    bounds: list[str | None] = [
+        "below" if b else ("above" if a else None)
+        for b, a in zip(below.tolist(), above.tolist(), strict=True)
+    ]
+    return p_values, bounds
+
+
 def supf_critical_value(restrictions: int, significance: float) -> float:
     """Simulated critical value of p·sup-F (15 % trimming) at a significance in [0.001, 0.999]."""
     table = supf_table()
@@ -201,5 +222,6 @@ __all__ = [
     "solve_bde_constant",
     "supf_critical_value",
     "supf_p_value",
+    "supf_p_values",
     "supf_table",
 ]

@@ -32,15 +32,24 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from monitor.stats.change import (
+    EXACT_REASON,
+    BatchCusum,
+    BatchOlsCusum,
     BoolArray,
     FloatArray,
     IntArray,
+    Prepared,
+    QrPass,
+    RecursiveResiduals,
+    cusum_from_recursive,
     is_exact_fit,
     least_squares_pass,
+    ols_cusum_from_pass,
     prepare,
     rank_reason,
+    recursive_from_pass,
 )
-from monitor.stats.critical_values import supf_p_value, supf_table
+from monitor.stats.critical_values import supf_p_values, supf_table
 
 DEFAULT_TRIMMING = 0.15
 
@@ -86,11 +95,23 @@ class BatchSupF:
     break_index: IntArray
     first_regime_rows: IntArray
     candidates: IntArray
-    f_statistics: FloatArray
+    f_window: FloatArray  # (m, s): F of the splits whose new regime starts at rows start … +m
+    f_window_start: int
+    f_shape: tuple[int, int]
     restrictions: int
     trimming: float
     applicable: BoolArray
     reason: list[str | None]
+
+    @property
+    def f_statistics(self) -> FloatArray:
+        """(s, n): F of the split whose new regime starts at each row; NaN at non-candidates."""
+        s, n = self.f_shape
+        out = np.full((s, n), np.nan)
+        m = self.f_window.shape[0]
+        out[:, self.f_window_start : self.f_window_start + m] = self.f_window.T
+        out[~self.applicable] = np.nan
+        return out
 
     def series(self, i: int) -> SupFResult:
         """The result of series ``i`` with None for what is not applicable."""
@@ -123,6 +144,102 @@ def trimmed_range(n_used: int, p: int, trimming: float) -> tuple[int, int]:
     return lo, n_used - lo
 
 
+@dataclass(frozen=True, eq=False)
+class _Scan:
+    statistic: FloatArray  # (s,) F at the best split (NaN where none)
+    best_unrestricted: FloatArray  # (s,) RSS₁ + RSS₂ there (scaled units)
+    candidates: IntArray  # (s,)
+    break_index: IntArray  # (s,) first row of the new regime at the best split
+    first_rows: IntArray  # (s,) used rows before it
+    f_window: FloatArray  # (m, s)
+    f_window_start: int
+
+
+def _f_form(
+    rss_total: FloatArray, unrestricted: FloatArray, p: int, df_denominator: FloatArray
+) -> FloatArray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        explained = np.maximum(rss_total - unrestricted, 0.0)
+        return np.asarray((explained / max(p, 1)) / (unrestricted / df_denominator))
+
+
+def _scan(
+    prep: Prepared,
+    forward: QrPass,
+    backward: QrPass,
+    lo: IntArray,
+    hi: IntArray,
+    rss_total: FloatArray,
+    df_denominator: FloatArray,
+) -> _Scan:
+    """Every candidate split's RSS₁ + RSS₂ from the two passes; the best split per series.
+
+    Forward entry t covers the used rows 0 … t. Backward entry u covers rows n − 1 − u … n − 1,
+    so the rows after t are backward entry n − 2 − t. Split "after row t" is a candidate when
+    the first regime holds lo … hi used rows and both regimes have full rank.
+    """
+    p = prep.p
+    s, n = prep.used.shape
+    columns = np.arange(s)
+    after = backward.rss[::-1]  # entry t: rows t … n − 1
+    after_rank = backward.rank[::-1]
+    if bool(prep.used.all()) and n > 1:
+        # Every series has the same rows, so the same window of split rows t = lo − 1 … hi − 1.
+        first_t, last_t = int(lo[0]) - 1, int(hi[0]) - 1
+        if first_t > last_t:
+            empty = np.zeros(s, dtype=np.int64)
+            return _Scan(np.full(s, np.nan), np.ones(s), empty, empty - 1, empty - 1,
+                         np.zeros((0, s)), 0)  # fmt: skip
+        window = slice(first_t, last_t + 1)
+        later = slice(first_t + 1, last_t + 2)
+        ok = (forward.rank[window] == p) & (after_rank[later] == p)
+        unrestricted = forward.rss[window] + after[later]
+        unrestricted[~ok] = np.inf
+        best = np.argmin(unrestricted, axis=0)
+        best_unrestricted = unrestricted[best, columns]
+        f_window = _f_form(rss_total, unrestricted, p, df_denominator)
+        f_window[~ok] = np.nan
+        return _Scan(
+            statistic=_f_form(rss_total, best_unrestricted, p, df_denominator),
+            best_unrestricted=best_unrestricted,
+            candidates=ok.sum(axis=0).astype(np.int64),
+            break_index=(best + first_t + 1).astype(np.int64),
+            first_rows=(best + first_t + 1).astype(np.int64),
+            f_window=f_window,
+            f_window_start=first_t + 1,
+        )
+    # Rows differ between series (a mask): the general form over all rows.
+    used_t = prep.used.T
+    counts = np.cumsum(used_t, axis=0)
+    after_rss = np.zeros((n, s))
+    after_rk = np.zeros((n, s), dtype=np.int64)
+    if n > 1:
+        after_rss[:-1] = after[1:]
+        after_rk[:-1] = after_rank[1:]
+    candidate = used_t & (counts >= lo) & (counts <= hi) & (forward.rank == p) & (after_rk == p)
+    unrestricted = np.where(candidate, forward.rss + after_rss, np.inf)
+    best = np.argmin(unrestricted, axis=0) if n else np.zeros(s, dtype=np.int64)
+    best_unrestricted = unrestricted[best, columns] if n else np.ones(s)
+    index = np.where(used_t, np.arange(n)[:, None], n)
+    next_used = np.minimum.accumulate(index[::-1], axis=0)[::-1]
+    next_after = np.full((n, s), n, dtype=np.int64)
+    if n > 1:
+        next_after[:-1] = next_used[1:]
+    f_values = _f_form(rss_total, unrestricted, p, df_denominator)
+    f_by_start = np.full((n, s), np.nan)
+    rows_t, cols_i = np.nonzero(candidate)
+    f_by_start[next_after[rows_t, cols_i], cols_i] = f_values[rows_t, cols_i]
+    return _Scan(
+        statistic=_f_form(rss_total, best_unrestricted, p, df_denominator),
+        best_unrestricted=best_unrestricted,
+        candidates=candidate.sum(axis=0).astype(np.int64),
+        break_index=next_after[best, columns] if n else np.full(s, -1),
+        first_rows=counts[best, columns] if n else np.full(s, -1),
+        f_window=f_by_start,
+        f_window_start=0,
+    )
+
+
 def sup_f_test(
     x: ArrayLike | None,
     y: ArrayLike,
@@ -140,68 +257,44 @@ def sup_f_test(
     0.15 and up to the table's number of restrictions (10); otherwise ``p_value`` is NaN and
     ``p_value_note`` says why.
     """
+    prep = prepare(x, y, mask, intercept=intercept, names=names)
+    return sup_f_from_pass(prep, least_squares_pass(prep.rows, prep.p), trimming)
+
+
+def sup_f_from_pass(prep: Prepared, forward: QrPass, trimming: float) -> BatchSupF:
+    """sup-F (see ``sup_f_test``) from prepared series and their forward pass."""
     if not 0.0 < trimming < 0.5:
         raise ValueError(f"trimming must be in (0, 0.5); got {trimming}")
-    prep = prepare(x, y, mask, intercept=intercept, names=names)
     p = prep.p
     s, n = prep.used.shape
-    forward = least_squares_pass(prep.rows, p)
-    backward = least_squares_pass(np.ascontiguousarray(prep.rows[::-1]), p)
-    fwd_rss = forward.rss.T  # (s, n): used rows 0..t
-    fwd_rank = forward.rank.T
-    # Backward pass on reversed rows: entry t covers rows t..n-1; shift so column t covers t+1..
-    bwd_rss_from = backward.rss[::-1].T
-    bwd_rank_from = backward.rank[::-1].T
-    bwd_rss_after = np.zeros((s, n))
-    bwd_rank_after = np.zeros((s, n), dtype=np.int64)
-    if n > 1:
-        bwd_rss_after[:, :-1] = bwd_rss_from[:, 1:]
-        bwd_rank_after[:, :-1] = bwd_rank_from[:, 1:]
-    counts = np.cumsum(prep.used, axis=1)
-    rss_total = fwd_rss[:, -1] if n else np.zeros(s)
-    final_rank = fwd_rank[:, -1] if n else np.zeros(s, dtype=np.int64)
-
-    lo = np.array([trimmed_range(int(m), p, trimming)[0] for m in prep.n_used])
+    backward = least_squares_pass(prep.rows[::-1], p)  # a reversed view, no copy
+    rss_total = forward.rss[-1] if n else np.zeros(s)
+    final_rank = forward.rank[-1] if n else np.zeros(s, dtype=np.int64)
+    lo = np.maximum(np.floor(trimming * prep.n_used + 1e-9).astype(np.int64), p + 1)
     hi = prep.n_used - lo
-    candidate = (
-        prep.used
-        & (counts >= lo[:, None])
-        & (counts <= hi[:, None])
-        & (fwd_rank == p)
-        & (bwd_rank_after == p)
-    )
-    unrestricted = fwd_rss + bwd_rss_after
-    df_denominator = (prep.n_used - 2 * p).astype(np.float64)
-    safe_unrestricted = np.where(candidate & (unrestricted > 0), unrestricted, 1.0)
-    f_values = (np.maximum(rss_total[:, None] - unrestricted, 0.0) / max(p, 1)) / (
-        safe_unrestricted / np.maximum(df_denominator, 1.0)[:, None]
-    )
-    f_values = np.where(candidate, f_values, -np.inf)
-    best_last = np.argmax(f_values, axis=1)  # row t ending regime 1 at the best split
-    statistic = f_values[np.arange(s), best_last] if n else np.zeros(s)
-    n_candidates = candidate.sum(axis=1).astype(np.int64)
-
-    # First used row after each split: the first row of the new regime.
-    index = np.where(prep.used, np.arange(n)[None, :], n)
-    next_used = np.minimum.accumulate(index[:, ::-1], axis=1)[:, ::-1]
-    next_after = np.full((s, n), n, dtype=np.int64)
-    if n > 1:
-        next_after[:, :-1] = next_used[:, 1:]
+    df_denominator = np.maximum(prep.n_used - 2 * p, 1).astype(np.float64)
+    scan = _scan(prep, forward, backward, lo, hi, rss_total, df_denominator)
+    best_unrestricted = scan.best_unrestricted
+    n_candidates = scan.candidates
+    statistic = scan.statistic
 
     reason = list(prep.reason)
     exact_total = is_exact_fit(rss_total, prep.n_used)
-    exact_split = is_exact_fit(
-        np.where(n_candidates > 0, unrestricted[np.arange(s), best_last] if n else 0.0, 1.0),
-        prep.n_used,
+    exact_split = (n_candidates > 0) & is_exact_fit(best_unrestricted, prep.n_used)
+    suspect = (
+        (prep.n_used - 2 * p < 1)
+        | (final_rank < p)
+        | (lo > hi)
+        | (n_candidates == 0)
+        | exact_total
+        | exact_split
     )
-    for i in range(s):
+    for i in map(int, np.flatnonzero(suspect)):
         if reason[i] is not None:
             continue
         m = int(prep.n_used[i])
         if m - 2 * p < 1:
-            reason[i] = (
-                f"{m} rows used; sup-F with {p} coefficient(s) needs at least {2 * p + 1}"
-            )
+            reason[i] = f"{m} rows used; sup-F with {p} coefficient(s) needs at least {2 * p + 1}"
         elif final_rank[i] < p:
             reason[i] = rank_reason(prep, forward, i)
         elif lo[i] > hi[i]:
@@ -209,12 +302,12 @@ def sup_f_test(
                 f"{m} rows are too few for {trimming:.0%} trimming with {p} coefficient(s): "
                 f"each regime needs at least {lo[i]} rows"
             )
+        elif exact_total[i]:
+            reason[i] = EXACT_REASON
         elif n_candidates[i] == 0:
             reason[i] = "no candidate split leaves both regimes with every coefficient determined"
-        elif exact_total[i]:
-            reason[i] = "the fit is exact (residuals are zero to rounding), so there is no scale"
-        elif exact_split[i]:
-            row = int(next_after[i, best_last[i]])
+        else:
+            row = int(scan.break_index[i])
             reason[i] = (
                 f"both regimes fit exactly when the new regime starts at row {row}, so F is "
                 "infinite: the series changes there without noise"
@@ -229,30 +322,25 @@ def sup_f_test(
         note = f"the p-value table is for {table.trimming:.0%} trimming only"
     elif p not in table.quantiles:
         note = f"the p-value table covers 1 to {table.max_restrictions} coefficients, not {p}"
-    else:
-        for i in map(int, np.flatnonzero(applicable)):
-            value = supf_p_value(float(statistic[i]) * p, p, trimming)
-            p_values[i] = value.p_value
-            bounds[i] = value.bound
+    elif applicable.any():
+        found, found_bounds = supf_p_values(statistic[applicable] * p, p, trimming)
+        p_values[applicable] = found
+        for i, bound in zip(map(int, np.flatnonzero(applicable)), found_bounds, strict=True):
+            bounds[i] = bound
 
-    f_by_start = np.full((s, n), np.nan)
-    rows_i, cols_t = np.nonzero(candidate & applicable[:, None])
-    f_by_start[rows_i, next_after[rows_i, cols_t]] = f_values[rows_i, cols_t]
-    break_index = np.where(applicable, next_after[np.arange(s), best_last], -1) if n else (
-        np.full(s, -1)
-    )
-    first_rows = np.where(applicable, counts[np.arange(s), best_last], -1) if n else (
-        np.full(s, -1)
-    )
+    break_index = np.where(applicable, scan.break_index, -1)
+    first_rows = np.where(applicable, scan.first_rows, -1)
     return BatchSupF(
         statistic=np.where(applicable, statistic, np.nan),
         p_value=np.where(applicable, p_values, np.nan),
-        p_value_bound=[b if ok else None for b, ok in zip(bounds, applicable, strict=True)],
+        p_value_bound=bounds,
         p_value_note=note,
         break_index=np.asarray(break_index, dtype=np.int64),
         first_regime_rows=np.asarray(first_rows, dtype=np.int64),
         candidates=n_candidates,
-        f_statistics=f_by_start,
+        f_window=scan.f_window,
+        f_window_start=scan.f_window_start,
+        f_shape=(s, n),
         restrictions=p,
         trimming=trimming,
         applicable=applicable,
@@ -260,4 +348,48 @@ def sup_f_test(
     )
 
 
-__all__ = ["DEFAULT_TRIMMING", "BatchSupF", "SupFResult", "sup_f_test", "trimmed_range"]
+@dataclass(frozen=True, eq=False)
+class BreakTests:
+    """All retrospective change tests of s series from one shared forward pass."""
+
+    recursive: RecursiveResiduals
+    cusum: BatchCusum
+    ols_cusum: BatchOlsCusum
+    sup_f: BatchSupF
+
+
+def break_tests(
+    x: ArrayLike | None,
+    y: ArrayLike,
+    mask: ArrayLike | None = None,
+    *,
+    intercept: bool = True,
+    trimming: float = DEFAULT_TRIMMING,
+    names: Sequence[str] | None = None,
+) -> BreakTests:
+    """Recursive residuals, BDE CUSUM, OLS-CUSUM and sup-F in one go (shapes as ``sup_f_test``).
+
+    The same results as calling each test alone, with the preparation and the forward
+    updating pass done once for all four.
+    """
+    prep = prepare(x, y, mask, intercept=intercept, names=names)
+    forward = least_squares_pass(prep.rows, prep.p)
+    recursive = recursive_from_pass(prep, forward)
+    return BreakTests(
+        recursive=recursive,
+        cusum=cusum_from_recursive(recursive),
+        ols_cusum=ols_cusum_from_pass(prep, forward),
+        sup_f=sup_f_from_pass(prep, forward, trimming),
+    )
+
+
+__all__ = [
+    "DEFAULT_TRIMMING",
+    "BatchSupF",
+    "BreakTests",
+    "SupFResult",
+    "break_tests",
+    "sup_f_from_pass",
+    "sup_f_test",
+    "trimmed_range",
+]
