@@ -191,7 +191,7 @@ def fit_batch(
     s_count, n_max, k = x_arr.shape
     terms = _terms(names, k, intercept)
     mask_arr = (
-        np.ones((s_count, n_max), dtype=bool) if mask is None else np.asarray(mask, dtype=bool)
+        np.ones((s_count, n_max), dtype=bool) if mask is None else np.array(mask, dtype=bool)
     )
     if mask_arr.shape != (s_count, n_max):
         raise ValueError(f"mask must be ({s_count}, {n_max}); got {mask_arr.shape}")
@@ -206,23 +206,24 @@ def fit_batch(
     with_correlation = intercept and k == 1
     frozen = {name: _freeze_owned(values) for name, values in out.items()}
     return BatchFit(
-        terms=terms, intercept=intercept, level=level, n=fast.n, p=len(terms),
-        residual_df=out["residual_df"].astype(np.int64), estimable=out["estimable"] > 0,
-        reason=reasons, exact_fit=out["exact_fit"] > 0,
+        terms=terms, intercept=intercept, level=level, n=_freeze_owned(fast.n), p=len(terms),
+        residual_df=_freeze_owned(out["residual_df"].astype(np.int64)),
+        estimable=_freeze_owned(out["estimable"] > 0),
+        reason=reasons, exact_fit=_freeze_owned(out["exact_fit"] > 0),
         coef=frozen["coef"], standard_error=frozen["standard_error"], t=frozen["t"],
         p_value=frozen["p_value"], lower=frozen["lower"], upper=frozen["upper"],
         cov_unscaled=frozen["cov_unscaled"], residual_std_error=frozen["residual_std_error"],
         sse=frozen["sse"], ssr=frozen["ssr"], sst=frozen["sst"], r_squared=frozen["r_squared"],
         adj_r_squared=frozen["adj_r_squared"], f_statistic=frozen["f_statistic"],
-        f_p_value=frozen["f_p_value"], f_df=out["f_df"].astype(np.int64),
+        f_p_value=frozen["f_p_value"], f_df=_freeze_owned(out["f_df"].astype(np.int64)),
         residuals=frozen["residuals"], fitted=frozen["fitted"], leverage=frozen["leverage"],
-        mask=mask_arr, x_min=frozen["x_min"], x_max=frozen["x_max"],
+        mask=_freeze_owned(mask_arr), x_min=frozen["x_min"], x_max=frozen["x_max"],
         correlation=frozen["correlation"] if with_correlation else None,
         correlation_t=frozen["correlation_t"] if with_correlation else None,
         correlation_p_value=frozen["correlation_p_value"] if with_correlation else None,
         t_critical=frozen["t_critical"], x_centre=frozen["x_centre"],
         x_scale=frozen["x_scale"], r_inverse=frozen["r_inverse"],
-        fast_path=~fast.needs_fallback,
+        fast_path=_freeze_owned(~fast.needs_fallback),
     )
 
 

@@ -8,9 +8,10 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import TypeVar
 
 import numpy as np
-from numpy.typing import ArrayLike
+from numpy.typing import ArrayLike, NDArray
 
 from monitor.stats._linalg import (
     EPS,
@@ -23,6 +24,8 @@ from monitor.stats._linalg import (
     t_quantile,
     t_two_sided_p,
 )
+
+ArrayT = TypeVar("ArrayT", bound=np.generic)
 
 # A residual norm at or below this share of the response's norm counts as rounding (32 units in
 # the last place). After refinement an exact relation leaves only the rounding of y itself
@@ -42,7 +45,8 @@ MAGNITUDE_LIMIT = 1e100
 REFINEMENT_STEPS = 1
 
 
-def _freeze_owned(array: FloatArray) -> FloatArray:
+def _freeze_owned(array: NDArray[ArrayT]) -> NDArray[ArrayT]:
+    """Make an array this module created read-only, without a copy."""
     array.setflags(write=False)
     return array
 
