@@ -19,6 +19,7 @@ LAYERS: dict[str, int] = {
     "ingest": 3,
     "findings": 4,
     "audit": 4,
+    "analysis": 4,
     "notify": 5,
     "demo": 6,
     "passes": 6,
