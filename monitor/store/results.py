@@ -1,0 +1,460 @@
+"""What passes produce: passes, model versions, fits, forecasts, outcomes, baselines."""
+
+from __future__ import annotations
+
+import json
+import struct
+from collections.abc import Iterable, Mapping, Sequence
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from monitor.store.base import StoreBase
+from monitor.store.records import (
+    AwaitingOutcome,
+    BaselineRecord,
+    BaselineRow,
+    FitRecord,
+    FitRow,
+    ForecastRecord,
+    ForecastRow,
+    ModelVersionRecord,
+    PassRecord,
+    RecordedForecasts,
+    ScoredForecasts,
+    StoreError,
+    _maybe_utc,
+    _series,
+    _skey,
+    parse_utc,
+    to_json,
+    utc_text,
+)
+from monitor.vocabulary import Outcome, OutcomeKind
+
+
+class ResultsMixin(StoreBase):
+    # ----------------------------------------------------------------- passes
+
+    def record_pass(self, *, as_of: datetime, started_at: datetime) -> PassRecord:
+        """Start a pass (status ``running``); returns it with its id.
+
+        Only one process writes at a time (the writer lock), so a pass still ``running`` here is
+        one that died: it is marked ``interrupted``.
+        """
+        with self.transaction():
+            self._conn.execute("UPDATE passes SET status = 'interrupted' WHERE status = 'running'")
+            cursor = self._conn.execute(
+                "INSERT INTO passes (as_of, started_at, status) VALUES (?, ?, 'running')",
+                (utc_text(as_of), utc_text(started_at)),
+            )
+            pass_id = int(cursor.lastrowid or 0)
+        return self._require(self.get_pass(pass_id), "pass", pass_id)
+
+    def finish_pass(
+        self,
+        pass_id: int,
+        *,
+        finished_at: datetime,
+        status: str = "finished",
+        counts: Mapping[str, Any] | None = None,
+    ) -> PassRecord:
+        """Close a pass with its status (``finished`` or ``failed``) and counts (JSON)."""
+        if status not in ("finished", "failed"):
+            raise ValueError(f"a pass finishes as 'finished' or 'failed', not {status!r}")
+        with self.transaction():
+            cursor = self._conn.execute(
+                "UPDATE passes SET finished_at = ?, status = ?, counts = ? WHERE id = ?",
+                (utc_text(finished_at), status, to_json(dict(counts or {})), pass_id),
+            )
+            if cursor.rowcount != 1:
+                raise StoreError(f"no pass with id {pass_id}")
+        return self._require(self.get_pass(pass_id), "pass", pass_id)
+
+    def get_pass(self, pass_id: int) -> PassRecord | None:
+        row = self._dict("SELECT * FROM passes WHERE id = ?", (pass_id,))
+        return None if row is None else _pass_record(row)
+
+    def latest_pass(self, *, finished_only: bool = False) -> PassRecord | None:
+        """The most recent pass (its ``as_of`` is the latest business clock), or None."""
+        where = "WHERE status = 'finished'" if finished_only else ""
+        row = self._dict(f"SELECT * FROM passes {where} ORDER BY id DESC LIMIT 1")
+        return None if row is None else _pass_record(row)
+
+    def list_passes(self, limit: int = 10) -> list[PassRecord]:
+        """The latest ``limit`` passes, newest first."""
+        rows = self._dicts("SELECT * FROM passes ORDER BY id DESC LIMIT ?", (limit,))
+        return [_pass_record(row) for row in rows]
+
+    # ----------------------------------------------------------------- model versions
+
+    def record_model_version(
+        self, model: str, *, signature: str, config: Mapping[str, Any], created_at: datetime
+    ) -> tuple[ModelVersionRecord, bool]:
+        """The model's current version if its signature is unchanged, else a new version.
+
+        Returns (version, created). ``signature`` is whatever identifies the model's shape
+        (response, predictors, ``per:``); editing it starts a new version (DESIGN.md section 6).
+        """
+        with self.transaction():
+            current = self.current_model_version(model)
+            if current is not None and current.signature == signature:
+                return current, False
+            version = 1 if current is None else current.version + 1
+            self._conn.execute(
+                "INSERT INTO model_versions (model, version, signature, config, created_at) "
+                "VALUES (?, ?, ?, ?, ?)",
+                (model, version, signature, to_json(dict(config)), utc_text(created_at)),
+            )
+        record = self.current_model_version(model)
+        assert record is not None
+        return record, True
+
+    def current_model_version(self, model: str) -> ModelVersionRecord | None:
+        row = self._dict(
+            "SELECT * FROM model_versions WHERE model = ? ORDER BY version DESC LIMIT 1", (model,)
+        )
+        return None if row is None else _model_version(row)
+
+    def model_versions(self, model: str) -> list[ModelVersionRecord]:
+        rows = self._dicts(
+            "SELECT * FROM model_versions WHERE model = ? ORDER BY version", (model,)
+        )
+        return [_model_version(row) for row in rows]
+
+    # ----------------------------------------------------------------- fits
+
+    def record_fits(self, pass_id: int, fits: Sequence[FitRow]) -> tuple[int, ...]:
+        """Store a pass's fits in one transaction; returns their ids in the order given.
+
+        One fit per (pass, model, series): recording the same one again returns the stored id.
+        """
+        params = [
+            (
+                pass_id, fit.model, fit.version, _skey(fit.series), fit.window_first,
+                fit.window_first_key, fit.window_last, fit.window_last_key, fit.n,
+                int(fit.estimable), fit.reason, to_json(dict(fit.coefficients)),
+                to_json(dict(fit.inference)), to_json(dict(fit.diagnostics)),
+            )
+            for fit in fits
+        ]
+        with self.transaction():
+            self._conn.executemany(
+                "INSERT INTO fits (pass_id, model, version, series_key, window_first, "
+                "window_first_key, window_last, window_last_key, n, estimable, reason, "
+                "coefficients, inference, diagnostics) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+                "ON CONFLICT (pass_id, model, series_key) DO NOTHING",
+                params,
+            )
+            ids = {
+                (model, skey): fit_id
+                for fit_id, model, skey in self._conn.execute(
+                    "SELECT id, model, series_key FROM fits WHERE pass_id = ?", (pass_id,)
+                )
+            }
+        return tuple(ids[(fit.model, _skey(fit.series))] for fit in fits)
+
+    def get_fit(self, fit_id: int) -> FitRecord | None:
+        row = self._dict("SELECT * FROM fits WHERE id = ?", (fit_id,))
+        return None if row is None else _fit_record(row)
+
+    def latest_fits(self, model: str, *, version: int | None = None) -> dict[str | None, FitRecord]:
+        """The latest fit of each series of a model (of one version if given)."""
+        rows = self._dicts(
+            "SELECT * FROM fits WHERE id IN (SELECT max(id) FROM fits WHERE model = ?1 "
+            "AND (?2 IS NULL OR version = ?2) GROUP BY series_key) ORDER BY series_key",
+            (model, version),
+        )
+        return {_series(row["series_key"]): _fit_record(row) for row in rows}
+
+    # ----------------------------------------------------------------- forecasts and outcomes
+
+    def record_forecasts(self, pass_id: int, rows: Sequence[ForecastRow]) -> RecordedForecasts:
+        """Append a pass's forecasts in one transaction; ids come back in the order given.
+
+        Unique per (pass, model, series, target period): recording one again changes nothing.
+        """
+        params = [
+            (
+                pass_id, row.fit_id, row.model, row.version, row.feed, _skey(row.series),
+                row.target_period, row.target_period_key, row.observation_id,
+                utc_text(row.issued_at), row.lead, to_json(dict(row.inputs)), row.point,
+                row.mean_lower, row.mean_upper, row.lower, row.upper, row.level, row.leverage,
+                int(row.extrapolation),
+            )
+            for row in rows
+        ]
+        with self.transaction():
+            before = self._conn.total_changes
+            self._conn.executemany(
+                "INSERT INTO forecasts (pass_id, fit_id, model, version, feed, series_key, "
+                "target_period, target_period_key, observation_id, issued_at, lead, inputs, "
+                "point, mean_lower, mean_upper, lower, upper, level, leverage, extrapolation) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+                "ON CONFLICT (pass_id, model, series_key, target_period_key) DO NOTHING",
+                params,
+            )
+            inserted = self._conn.total_changes - before
+            ids = {
+                (model, skey, key): forecast_id
+                for forecast_id, model, skey, key in self._conn.execute(
+                    "SELECT id, model, series_key, target_period_key FROM forecasts "
+                    "WHERE pass_id = ?",
+                    (pass_id,),
+                )
+            }
+        aligned = tuple(ids[(r.model, _skey(r.series), r.target_period_key)] for r in rows)
+        return RecordedForecasts(aligned, inserted)
+
+    def list_forecasts(
+        self, *, model: str | None = None, pass_id: int | None = None
+    ) -> list[ForecastRecord]:
+        """Forecasts in the order issued, optionally of one model or one pass."""
+        rows = self._dicts(
+            "SELECT * FROM forecasts WHERE (?1 IS NULL OR model = ?1) "
+            "AND (?2 IS NULL OR pass_id = ?2) ORDER BY id",
+            (model, pass_id),
+        )
+        return [_forecast_record(row) for row in rows]
+
+    def forecasts_awaiting_outcome(self, model: str, response: str) -> list[AwaitingOutcome]:
+        """Unscored forecasts of ``model`` whose target now has an actual ``response`` value.
+
+        The actual is the key's current row (the latest revision) when the pass scores it.
+        """
+        registries: dict[str, list[str]] = {}
+        awaiting: list[AwaitingOutcome] = []
+        cursor = self._conn.execute(
+            "SELECT f.id, f.feed, f.series_key, f.target_period, f.target_period_key, f.lead, "
+            "f.point, f.lower, f.upper, a.vals FROM forecasts AS f "
+            "JOIN series AS s ON s.feed = f.feed AND s.key = f.series_key "
+            "JOIN observations AS a ON a.series_id = s.id AND a.period_key = f.target_period_key "
+            "AND a.is_plan = 0 AND a.current = 1 WHERE f.model = ? AND NOT EXISTS "
+            "(SELECT 1 FROM outcomes AS o WHERE o.forecast_id = f.id) "
+            "ORDER BY f.series_key, f.target_period_key, f.id",
+            (model,),
+        )
+        for fid, feed, skey, period, key, lead, point, lower, upper, vals in cursor.fetchall():
+            if feed not in registries:
+                registries[feed] = [
+                    row[0]
+                    for row in self._conn.execute(
+                        "SELECT name FROM feed_columns WHERE feed = ? ORDER BY position", (feed,)
+                    )
+                ]
+            registry = registries[feed]
+            if response not in registry or 8 * registry.index(response) >= len(vals):
+                continue
+            (actual,) = struct.unpack_from("<d", vals, 8 * registry.index(response))
+            if actual != actual:  # NaN: this row has no value for the response
+                continue
+            awaiting.append(
+                AwaitingOutcome(
+                    int(fid), _series(skey), period, int(key), int(lead), float(point),
+                    float(lower), float(upper), float(actual),
+                )
+            )
+        return awaiting
+
+    def record_outcomes(self, pass_id: int, outcomes: Iterable[Outcome]) -> int:
+        """Score forecasts; a forecast is scored once (again is ignored). Returns how many new."""
+        params = [
+            (o.forecast_id, float(o.actual), OutcomeKind(o.outcome).value, pass_id)
+            for o in outcomes
+        ]
+        with self.transaction():
+            before = self._conn.total_changes
+            self._conn.executemany(
+                "INSERT INTO outcomes (forecast_id, actual, outcome, pass_id) VALUES (?, ?, ?, ?) "
+                "ON CONFLICT (forecast_id) DO NOTHING",
+                params,
+            )
+            return self._conn.total_changes - before
+
+    def scored_forecasts(
+        self,
+        model: str | None = None,
+        *,
+        series: str | None = None,
+        all_series: bool = True,
+        latest_only: bool = True,
+        last: int | None = None,
+    ) -> ScoredForecasts:
+        """Scored forecasts for the coverage audit, as columns.
+
+        ``latest_only``: per (model, series, target period) only the last forecast issued (the
+        default audit); False keeps every issue (``--by-lead``). ``last``: only each series'
+        latest ``last`` scored target periods. ``all_series=False`` restricts to ``series``.
+        """
+        sql = (
+            "SELECT id, model, series_key, target_period, target_period_key, lead, issued_at, "
+            "actual, point, lower, upper, level, outcome FROM (SELECT f.*, o.actual, o.outcome, "
+            "row_number() OVER (PARTITION BY f.model, f.series_key, f.target_period_key "
+            "ORDER BY f.id DESC) AS issue_rank, dense_rank() OVER (PARTITION BY f.model, "
+            "f.series_key ORDER BY f.target_period_key DESC) AS period_rank "
+            "FROM forecasts AS f JOIN outcomes AS o ON o.forecast_id = f.id "
+            "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3)) "
+            "WHERE (NOT ?4 OR issue_rank = 1) AND (?5 IS NULL OR period_rank <= ?5) "
+            "ORDER BY model, series_key, target_period_key, id"
+        )
+        rows = self._conn.execute(
+            sql, (model, int(all_series), _skey(series), int(latest_only), last)
+        ).fetchall()
+        columns = list(zip(*rows, strict=True)) if rows else [()] * 13
+
+        def numbers(index: int, dtype: type) -> NDArray[Any]:
+            return np.array(columns[index], dtype=dtype)
+
+        return ScoredForecasts(
+            forecast_id=numbers(0, np.int64),
+            model=tuple(columns[1]),
+            series=tuple(_series(key) for key in columns[2]),
+            target_period=tuple(columns[3]),
+            target_period_key=numbers(4, np.int64),
+            lead=numbers(5, np.int64),
+            issued_at=tuple(columns[6]),
+            actual=numbers(7, np.float64),
+            point=numbers(8, np.float64),
+            lower=numbers(9, np.float64),
+            upper=numbers(10, np.float64),
+            level=numbers(11, np.float64),
+            outcome=tuple(OutcomeKind(kind) for kind in columns[12]),
+        )
+
+    # ----------------------------------------------------------------- baselines
+
+    def set_baselines(
+        self, rows: Sequence[BaselineRow], *, created_at: datetime, pass_id: int | None = None
+    ) -> int:
+        """Set baselines (history kept: the newest per model, version and series is in force)."""
+        for row in rows:
+            if row.set_by not in ("auto", "declared", "rolled", "rebaseline"):
+                raise ValueError(f"set_by is auto, declared, rolled or rebaseline: {row.set_by!r}")
+        params = [
+            (
+                row.model, row.version, _skey(row.series), row.start_period, row.start_key,
+                row.end_period, row.end_key, row.set_by, row.monitoring_start,
+                row.monitoring_start_key, utc_text(created_at), pass_id,
+            )
+            for row in rows
+        ]
+        with self.transaction():
+            self._conn.executemany(
+                "INSERT INTO baselines (model, version, series_key, start_period, start_key, "
+                "end_period, end_key, set_by, monitoring_start, monitoring_start_key, "
+                "created_at, pass_id) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                params,
+            )
+        return len(params)
+
+    def baseline(self, model: str, version: int, series: str | None) -> BaselineRecord | None:
+        row = self._dict(
+            "SELECT * FROM baselines WHERE model = ? AND version = ? AND series_key = ? "
+            "ORDER BY id DESC LIMIT 1",
+            (model, version, _skey(series)),
+        )
+        return None if row is None else _baseline_record(row)
+
+    def baselines(self, model: str, version: int) -> dict[str | None, BaselineRecord]:
+        """The baseline in force for each series of a model version."""
+        rows = self._dicts(
+            "SELECT * FROM baselines WHERE id IN (SELECT max(id) FROM baselines "
+            "WHERE model = ? AND version = ? GROUP BY series_key) ORDER BY series_key",
+            (model, version),
+        )
+        return {_series(row["series_key"]): _baseline_record(row) for row in rows}
+
+    def baseline_history(self, model: str, series: str | None) -> list[BaselineRecord]:
+        rows = self._dicts(
+            "SELECT * FROM baselines WHERE model = ? AND series_key = ? ORDER BY id",
+            (model, _skey(series)),
+        )
+        return [_baseline_record(row) for row in rows]
+
+
+def _pass_record(row: Mapping[str, Any]) -> PassRecord:
+    return PassRecord(
+        id=row["id"],
+        as_of=parse_utc(row["as_of"]),
+        started_at=parse_utc(row["started_at"]),
+        finished_at=_maybe_utc(row["finished_at"]),
+        status=row["status"],
+        counts=json.loads(row["counts"]),
+    )
+
+
+def _model_version(row: Mapping[str, Any]) -> ModelVersionRecord:
+    return ModelVersionRecord(
+        row["model"], row["version"], row["signature"], json.loads(row["config"]),
+        parse_utc(row["created_at"]),
+    )
+
+
+def _fit_record(row: Mapping[str, Any]) -> FitRecord:
+    return FitRecord(
+        id=row["id"],
+        pass_id=row["pass_id"],
+        model=row["model"],
+        version=row["version"],
+        series=_series(row["series_key"]),
+        n=row["n"],
+        estimable=bool(row["estimable"]),
+        reason=row["reason"],
+        window_first=row["window_first"],
+        window_first_key=row["window_first_key"],
+        window_last=row["window_last"],
+        window_last_key=row["window_last_key"],
+        coefficients=json.loads(row["coefficients"]),
+        inference=json.loads(row["inference"]),
+        diagnostics=json.loads(row["diagnostics"]),
+    )
+
+
+def _forecast_record(row: Mapping[str, Any]) -> ForecastRecord:
+    return ForecastRecord(
+        id=row["id"],
+        pass_id=row["pass_id"],
+        fit_id=row["fit_id"],
+        model=row["model"],
+        version=row["version"],
+        feed=row["feed"],
+        series=_series(row["series_key"]),
+        target_period=row["target_period"],
+        target_period_key=row["target_period_key"],
+        observation_id=row["observation_id"],
+        issued_at=parse_utc(row["issued_at"]),
+        lead=row["lead"],
+        inputs=json.loads(row["inputs"]),
+        point=row["point"],
+        mean_lower=row["mean_lower"],
+        mean_upper=row["mean_upper"],
+        lower=row["lower"],
+        upper=row["upper"],
+        level=row["level"],
+        leverage=row["leverage"],
+        extrapolation=bool(row["extrapolation"]),
+    )
+
+
+def _baseline_record(row: Mapping[str, Any]) -> BaselineRecord:
+    return BaselineRecord(
+        id=row["id"],
+        model=row["model"],
+        version=row["version"],
+        series=_series(row["series_key"]),
+        start_period=row["start_period"],
+        start_key=row["start_key"],
+        end_period=row["end_period"],
+        end_key=row["end_key"],
+        set_by=row["set_by"],
+        monitoring_start=row["monitoring_start"],
+        monitoring_start_key=row["monitoring_start_key"],
+        created_at=parse_utc(row["created_at"]),
+        pass_id=row["pass_id"],
+    )
+
+
+__all__ = ["ResultsMixin"]

@@ -1,0 +1,666 @@
+"""The database, on real SQLite files in tmp_path."""
+
+from __future__ import annotations
+
+import sqlite3
+import threading
+import time
+from datetime import UTC, date, datetime, timedelta
+from pathlib import Path
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pytest
+
+from monitor.store import (
+    MIGRATIONS,
+    SCHEMA_VERSION,
+    BaselineRow,
+    FileOutcome,
+    FitRow,
+    ForecastRow,
+    ObservationRow,
+    Store,
+    StoreError,
+    apply_migrations,
+    date_period_key,
+    parse_utc,
+    period_key_date,
+    utc_text,
+)
+from monitor.vocabulary import (
+    Finding,
+    FindingKind,
+    FindingState,
+    Outcome,
+    OutcomeKind,
+    Severity,
+    classify_outcome,
+)
+
+T0 = datetime(2024, 3, 4, 8, 0, tzinfo=UTC)
+COLUMNS = ("pick_hours", "order_lines")
+
+
+@pytest.fixture
+def store(tmp_path: Path) -> Store:
+    opened = Store.open(tmp_path / "state" / "plumbline.sqlite")
+    yield opened  # type: ignore[misc]
+    opened.close()
+
+
+def week(n: int) -> tuple[str, int]:
+    day = date(2024, 1, 7) + timedelta(weeks=n)
+    return day.isoformat(), date_period_key(day)
+
+
+def a_file(store: Store, name: str = "w.csv", sha: str | None = None) -> int:
+    record = store.record_file(
+        feed="depot", name=name, sha256=sha or name, size=10, received_at=T0,
+        outcome=FileOutcome.ARCHIVED, stored_path=f"/archive/{name}",
+    )
+    return record.id
+
+
+def actual(series: str | None, n: int, y: float, x: float, line: int = 2) -> ObservationRow:
+    period, key = week(n)
+    return ObservationRow(series, period, key, False, (y, x), line)
+
+
+def plan(series: str | None, n: int, x: float, line: int = 2) -> ObservationRow:
+    period, key = week(n)
+    return ObservationRow(series, period, key, True, (None, x), line)
+
+
+# ----------------------------------------------------------------------------- opening
+
+
+def test_open_creates_folder_and_sets_the_connection_up(tmp_path: Path) -> None:
+    path = tmp_path / "deep" / "folder" / "db.sqlite"
+    with Store.open(path) as store:
+        conn = store._conn
+        assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+        assert conn.execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL
+        assert conn.execute("PRAGMA foreign_keys").fetchone()[0] == 1
+        assert store.schema_version == SCHEMA_VERSION == MIGRATIONS[-1].version
+    assert path.exists()
+    with Store.open(path) as again:  # opening again migrates nothing and keeps the version
+        assert again.schema_version == SCHEMA_VERSION
+
+
+def test_a_newer_or_foreign_database_is_refused(tmp_path: Path) -> None:
+    newer = tmp_path / "newer.sqlite"
+    Store.open(newer).close()
+    conn = sqlite3.connect(newer)
+    conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION + 1}")
+    conn.close()
+    with pytest.raises(StoreError, match="newer than this Plumbline"):
+        Store.open(newer)
+    foreign = tmp_path / "foreign.sqlite"
+    conn = sqlite3.connect(foreign)
+    conn.execute("CREATE TABLE t (x)")
+    conn.close()
+    with pytest.raises(StoreError, match="not a Plumbline database"):
+        Store.open(foreign)
+
+
+def test_readonly_open_never_creates_or_migrates(tmp_path: Path) -> None:
+    with pytest.raises(StoreError, match="no database"):
+        Store.open(tmp_path / "absent.sqlite", readonly=True)
+    assert not (tmp_path / "absent.sqlite").exists()
+    old = tmp_path / "old.sqlite"
+    conn = sqlite3.connect(old, isolation_level=None)
+    apply_migrations(conn, 1)
+    conn.close()
+    with pytest.raises(StoreError, match="needs migrating"):
+        Store.open(old, readonly=True)
+    with Store.open(old):
+        pass
+    with Store.open(old, readonly=True) as reader:
+        assert reader.latest_pass() is None
+        with pytest.raises(sqlite3.OperationalError, match="readonly"):
+            reader.record_pass(as_of=T0, started_at=T0)
+
+
+def test_migration_from_version_1_keeps_the_data(tmp_path: Path) -> None:
+    path = tmp_path / "v1.sqlite"
+    conn = sqlite3.connect(path, isolation_level=None)
+    apply_migrations(conn, 1)
+    assert conn.execute("PRAGMA user_version").fetchone()[0] == 1
+    tables = {row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    assert "observations" in tables and "forecasts" not in tables and "findings" not in tables
+    # Rows as a version-1 database holds them.
+    conn.execute("INSERT INTO passes (as_of, started_at, status) VALUES (?, ?, 'finished')",
+                 (utc_text(T0), utc_text(T0)))
+    conn.execute(
+        "INSERT INTO files (feed, name, sha256, size, received_at, pass_id, outcome, stored_path, "
+        "moved_at) VALUES ('depot', 'w.csv', 'abc', 3, ?, 1, 'archived', '/a/w.csv', ?)",
+        (utc_text(T0), utc_text(T0)),
+    )
+    conn.execute("INSERT INTO series (feed, key) VALUES ('depot', 'north')")
+    conn.execute("INSERT INTO feed_columns VALUES ('depot', 0, 'pick_hours')")
+    conn.execute("INSERT INTO periods VALUES ('depot', ?, ?)", (week(0)[1], week(0)[0]))
+    conn.execute(
+        "INSERT INTO observations (series_id, period, period_key, is_plan, revision, current, "
+        "vals, file_id, line) VALUES (1, ?, ?, 0, 0, 1, ?, 1, 2)",
+        (week(0)[0], week(0)[1], np.array([41.5]).astype("<f8").tobytes()),
+    )
+    conn.close()
+    with Store.open(path) as store:
+        assert store.schema_version == SCHEMA_VERSION
+        assert store.file_by_sha256("abc") is not None
+        windows = store.windows("depot", ["pick_hours"])
+        assert windows.series == ("north",)
+        assert windows.values.tolist() == [[41.5]]
+        assert windows.period_labels == {week(0)[1]: "2024-01-07"}
+        # the tables of later versions work on the migrated file
+        version, _ = store.record_model_version("m", signature="s", config={}, created_at=T0)
+        assert store.record_fits(1, [FitRow("m", version.version, "north", 1, False, "few")])
+        assert store.list_findings() == []
+
+
+def test_times_are_utc_fixed_width_and_naive_ones_refused() -> None:
+    berlin = datetime(2024, 3, 31, 3, 30, tzinfo=ZoneInfo("Europe/Berlin"))
+    text = utc_text(berlin)
+    assert text == "2024-03-31T01:30:00.000000Z"
+    assert parse_utc(text) == berlin
+    assert len(utc_text(T0)) == len(text)
+    with pytest.raises(ValueError, match="no time zone"):
+        utc_text(datetime(2024, 1, 1))
+    assert period_key_date(date_period_key(date(2024, 2, 29))) == date(2024, 2, 29)
+    assert date_period_key(date(1970, 1, 2)) == 1
+
+
+def test_transaction_rolls_back_and_nests_as_savepoints(store: Store) -> None:
+    with pytest.raises(RuntimeError), store.transaction():
+        store.record_pass(as_of=T0, started_at=T0)
+        raise RuntimeError("boom")
+    assert store.latest_pass() is None
+    with store.transaction():
+        store.record_pass(as_of=T0, started_at=T0)
+        with pytest.raises(RuntimeError), store.transaction():
+            a_file(store)
+            raise RuntimeError("inner")
+    assert store.latest_pass() is not None
+    assert store.list_files() == []
+
+
+# ----------------------------------------------------------------------------- observations
+
+
+def test_revisions_are_kept_beside_the_first_and_identical_resends_are_not(store: Store) -> None:
+    first = a_file(store, "a.csv")
+    counts = store.insert_observations(
+        "depot", first, COLUMNS, [actual("north", 0, 40.0, 400.0), actual("north", 1, 42.0, 410.0)]
+    )
+    assert (counts.new_actuals, counts.revisions, counts.unchanged) == (2, 0, 0)
+    second = a_file(store, "b.csv")
+    counts = store.insert_observations(
+        "depot", second, COLUMNS, [actual("north", 0, 40.0, 400.0), actual("north", 1, 44.0, 410.0)]
+    )
+    assert (counts.new_actuals, counts.revisions, counts.unchanged) == (0, 1, 1)
+    assert [(r.series, r.period, r.revision) for r in counts.revised] == [("north", week(1)[0], 1)]
+    history = store.observation_history("depot", "north")
+    assert [(h.period, h.revision, h.current, h.values["pick_hours"]) for h in history] == [
+        (week(0)[0], 0, True, 40.0),
+        (week(1)[0], 0, False, 42.0),
+        (week(1)[0], 1, True, 44.0),
+    ]
+    assert store.windows("depot", COLUMNS).values[:, 0].tolist() == [40.0, 44.0]
+    file_b = store.get_file(second)
+    assert file_b is not None
+    assert (file_b.rows_ingested, file_b.revisions, file_b.unchanged) == (1, 1, 1)
+
+
+def test_a_batch_with_a_key_twice_or_a_non_finite_value_writes_nothing(store: Store) -> None:
+    file_id = a_file(store)
+    with pytest.raises(ValueError, match="given twice"):
+        store.insert_observations(
+            "depot", file_id, COLUMNS, [actual("n", 0, 1.0, 2.0), actual("n", 0, 1.0, 3.0)]
+        )
+    with pytest.raises(ValueError, match="not a finite number"):
+        store.insert_observations(
+            "depot", file_id, COLUMNS, [actual("n", 1, 1.0, 2.0), actual("n", 2, float("nan"), 3)]
+        )
+    assert store.observation_history("depot", "n") == []
+
+
+def test_plan_rows_wait_for_a_forecast_until_answered(store: Store) -> None:
+    store.record_pass(as_of=T0, started_at=T0)
+    file_id = a_file(store, "a.csv")
+    store.insert_observations("depot", file_id, COLUMNS, [actual(None, 0, 40.0, 400.0),
+                                                          plan(None, 1, 405.0)])
+    awaiting = store.plan_rows_awaiting_forecast("depot", "pick", ["order_lines"])
+    assert awaiting.series == (None,)
+    assert awaiting.values.tolist() == [[405.0]]
+    plan_id = int(awaiting.observation_id[0])
+    forecast = ForecastRow(
+        model="pick", feed="depot", series=None, target_period=week(1)[0],
+        target_period_key=week(1)[1], issued_at=T0, lead=1, point=41.0, lower=38.0, upper=44.0,
+        level=0.95, observation_id=plan_id,
+    )
+    store.record_forecasts(1, [forecast])
+    assert len(store.plan_rows_awaiting_forecast("depot", "pick", ["order_lines"]).series) == 0
+    # another model on the same feed still has it to do
+    assert len(store.plan_rows_awaiting_forecast("depot", "other", ["order_lines"]).series) == 1
+    # a re-sent plan asks again (a new issue, a shorter lead later on)
+    store.insert_observations("depot", a_file(store, "b.csv"), COLUMNS, [plan(None, 1, 405.0)])
+    again = store.plan_rows_awaiting_forecast("depot", "pick", ["order_lines"])
+    assert len(again.series) == 1 and int(again.observation_id[0]) != plan_id
+    # the actual answers it; a plan sent after its actual is stored but never awaited
+    store.insert_observations("depot", a_file(store, "c.csv"), COLUMNS, [actual(None, 1, 43, 405)])
+    store.insert_observations("depot", a_file(store, "d.csv"), COLUMNS, [plan(None, 1, 405.0)])
+    assert len(store.plan_rows_awaiting_forecast("depot", "other", ["order_lines"]).series) == 0
+    plans = [h for h in store.observation_history("depot", None) if h.is_plan]
+    assert len(plans) == 3 and not any(h.current for h in plans)
+
+
+def test_windows_take_the_latest_rows_per_series_in_one_read(store: Store) -> None:
+    file_id = a_file(store)
+    rows = [actual(s, n, float(10 * i + n), float(n)) for i, s in enumerate(["b", "a", "c"])
+            for n in range(12)]
+    rows.append(ObservationRow("a", week(12)[0], week(12)[1], False, (None, 5.0), 2))
+    store.insert_observations("depot", file_id, COLUMNS, rows)
+    up_to = week(9)[1]
+    windows = store.windows("depot", COLUMNS, last=4, up_to_key=up_to)
+    assert windows.series == ("a", "b", "c")  # sorted by name, not by arrival
+    assert windows.lengths().tolist() == [4, 4, 4]
+    assert windows.values[windows.rows_of(0), 0].tolist() == [16.0, 17.0, 18.0, 19.0]
+    assert windows.values[windows.rows_of(1), 0].tolist() == [6.0, 7.0, 8.0, 9.0]
+    assert windows.period_key[windows.rows_of(2)].max() == up_to
+    assert windows.period_labels[up_to] == week(9)[0]
+    # the row without a response counts only when the response is not required
+    everything = store.windows("depot", COLUMNS, series=["a"])
+    assert everything.lengths().tolist() == [12]
+    with_x_only = store.windows("depot", COLUMNS, series=["a"], required=["order_lines"])
+    assert with_x_only.lengths().tolist() == [13]
+    assert np.isnan(with_x_only.values[-1, 0])
+    stacked, mask, keys = store.windows("depot", COLUMNS, last=4).stack()
+    assert stacked.shape == (3, 4, 2) and mask.all()
+    assert keys[0, -1] == week(11)[1]
+
+
+def test_columns_in_another_order_or_added_later_line_up(store: Store) -> None:
+    store.insert_observations("depot", a_file(store, "a.csv"), COLUMNS, [actual("n", 0, 40, 400)])
+    store.insert_observations(
+        "depot", a_file(store, "b.csv"), ("pallets", "order_lines", "pick_hours"),
+        [ObservationRow("n", week(1)[0], week(1)[1], False, (7.0, 410.0, 42.0), 2)],
+    )
+    assert store.feed_columns("depot") == ["pick_hours", "order_lines", "pallets"]
+    windows = store.windows("depot", ("order_lines", "pick_hours", "pallets"), required=[])
+    assert windows.values[0, :2].tolist() == [400.0, 40.0] and np.isnan(windows.values[0, 2])
+    assert windows.values[1].tolist() == [410.0, 42.0, 7.0]
+    # re-sending week 0 with the new column empty is the same row, not a revision
+    counts = store.insert_observations(
+        "depot", a_file(store, "c.csv"), ("pallets", "order_lines", "pick_hours"),
+        [ObservationRow("n", week(0)[0], week(0)[1], False, (None, 400.0, 40.0), 2)],
+    )
+    assert counts.unchanged == 1 and counts.revisions == 0
+    summary = store.feed_summary("depot")
+    assert (summary.actual_rows, summary.series, summary.latest_period) == (2, 1, week(1)[0])
+
+
+def test_stored_rows_cannot_be_changed_or_deleted(store: Store) -> None:
+    store.insert_observations("depot", a_file(store), COLUMNS, [actual("n", 0, 40.0, 400.0)])
+    conn = store._conn
+    for statement in (
+        "UPDATE observations SET vals = x'00'",
+        "UPDATE observations SET period_key = 1",
+        "DELETE FROM observations",
+        "DELETE FROM files",
+    ):
+        with pytest.raises(sqlite3.IntegrityError):
+            conn.execute(statement)
+    assert len(store.observation_history("depot", "n")) == 1
+
+
+# ----------------------------------------------------------------------------- files and passes
+
+
+def test_the_same_bytes_are_recorded_as_ingested_once(store: Store) -> None:
+    a_file(store, "a.csv", sha="same")
+    with pytest.raises(sqlite3.IntegrityError):
+        a_file(store, "b.csv", sha="same")
+    rejected = store.record_file(
+        feed="depot", name="c.csv", sha256="same", size=1, received_at=T0,
+        outcome=FileOutcome.DUPLICATE, stored_path="/rejected/c.csv", duplicate_of=1,
+        errors_text="same as a.csv",
+    )
+    assert store.file_by_sha256("same") == store.get_file(1)
+    assert [f.name for f in store.files_awaiting_move("depot")] == ["a.csv", "c.csv"]
+    moved = store.mark_file_moved(rejected.id, at=T0, stored_path="/rejected/c-2.csv")
+    assert moved.moved_at == T0 and moved.stored_path == Path("/rejected/c-2.csv")
+    assert [f.name for f in store.files_awaiting_move("depot")] == ["a.csv"]
+
+
+def test_a_pass_left_running_is_marked_interrupted(store: Store) -> None:
+    first = store.record_pass(as_of=T0, started_at=T0)
+    second = store.record_pass(as_of=T0 + timedelta(days=7), started_at=T0 + timedelta(hours=1))
+    assert store.get_pass(first.id).status == "interrupted"  # type: ignore[union-attr]
+    done = store.finish_pass(second.id, finished_at=T0 + timedelta(hours=2), counts={"files": 3})
+    assert (done.status, done.counts) == ("finished", {"files": 3})
+    assert store.latest_pass() == done
+    assert store.latest_pass(finished_only=True) == done
+    with pytest.raises(StoreError, match="no pass"):
+        store.finish_pass(99, finished_at=T0)
+
+
+def test_model_versions_change_only_with_the_signature(store: Store) -> None:
+    v1, created = store.record_model_version("m", signature="a", config={"x": 1}, created_at=T0)
+    assert (v1.version, created) == (1, True)
+    same, created = store.record_model_version("m", signature="a", config={}, created_at=T0)
+    assert (same, created) == (v1, False)
+    v2, created = store.record_model_version("m", signature="b", config={"x": 2}, created_at=T0)
+    assert (v2.version, v2.config, created) == (2, {"x": 2}, True)
+    assert [v.version for v in store.model_versions("m")] == [1, 2]
+
+
+# ----------------------------------------------------------------------------- fits, forecasts
+
+
+def _pass_with_model(store: Store) -> int:
+    store.record_model_version("pick", signature="s", config={}, created_at=T0)
+    return store.record_pass(as_of=T0, started_at=T0).id
+
+
+def test_fits_are_recorded_in_bulk_with_ids_in_order(store: Store) -> None:
+    pass_id = _pass_with_model(store)
+    fits = [
+        FitRow("pick", 1, s, 20, True, coefficients={"slope": np.float64(1.5)},
+               inference={"p": float("nan"), "se": np.array([0.1, 0.2])}, window_first="w1")
+        for s in ("b", "a", None)
+    ]
+    ids = store.record_fits(pass_id, fits)
+    assert len(set(ids)) == 3
+    assert store.record_fits(pass_id, fits) == ids  # again: the same rows, nothing added
+    fit = store.get_fit(ids[0])
+    assert fit is not None
+    assert (fit.series, fit.coefficients, fit.inference) == (
+        "b", {"slope": 1.5}, {"p": None, "se": [0.1, 0.2]}
+    )
+    assert set(store.latest_fits("pick")) == {"a", "b", None}
+    with pytest.raises(sqlite3.IntegrityError):  # a fit needs its model version recorded
+        store.record_fits(pass_id, [FitRow("unknown", 1, None, 1, False)])
+
+
+def _forecast(series: str | None, n: int, point: float, *, plan_id: int | None = None,
+              lead: int = 1, issued: datetime = T0) -> ForecastRow:
+    return ForecastRow(
+        model="pick", feed="depot", series=series, target_period=week(n)[0],
+        target_period_key=week(n)[1], issued_at=issued, lead=lead, point=point,
+        lower=point - 5, upper=point + 5, level=0.9, mean_lower=point - 1, mean_upper=point + 1,
+        leverage=0.1, observation_id=plan_id, inputs={"order_lines": 400.0},
+    )
+
+
+def test_forecasts_are_append_only_and_a_rerun_cannot_duplicate_them(store: Store) -> None:
+    pass_id = _pass_with_model(store)
+    rows = [_forecast("a", 1, 40.0), _forecast("b", 1, 50.0)]
+    first = store.record_forecasts(pass_id, rows)
+    assert first.inserted == 2
+    again = store.record_forecasts(pass_id, rows)
+    assert (again.ids, again.inserted) == (first.ids, 0)
+    assert len(store.list_forecasts(model="pick")) == 2
+    with pytest.raises(sqlite3.IntegrityError, match="append-only"):
+        store._conn.execute("UPDATE forecasts SET point = 0")
+    with pytest.raises(sqlite3.IntegrityError, match="append-only"):
+        store._conn.execute("DELETE FROM forecasts")
+    record = store.list_forecasts(pass_id=pass_id)[0]
+    assert (record.issued_at, record.inputs, record.extrapolation) == (
+        T0, {"order_lines": 400.0}, False
+    )
+
+
+def test_scoring_and_the_audit_views(store: Store) -> None:
+    first_pass = _pass_with_model(store)
+    # issued twice for week 2 (leads 2 and 1), once for week 1
+    store.record_forecasts(first_pass, [_forecast("a", 1, 40.0), _forecast("a", 2, 40.0, lead=2)])
+    second_pass = store.record_pass(as_of=T0 + timedelta(days=7), started_at=T0).id
+    store.record_forecasts(second_pass, [_forecast("a", 2, 48.0, lead=1)])
+    assert store.forecasts_awaiting_outcome("pick", "pick_hours") == []
+    store.insert_observations("depot", a_file(store), COLUMNS, [actual("a", 1, 46.0, 400.0),
+                                                                actual("a", 2, 44.0, 410.0)])
+    awaiting = store.forecasts_awaiting_outcome("pick", "pick_hours")
+    assert [(a.target_period, a.lead, a.actual) for a in awaiting] == [
+        (week(1)[0], 1, 46.0), (week(2)[0], 2, 44.0), (week(2)[0], 1, 44.0)
+    ]
+    outcomes = [Outcome(a.forecast_id, a.actual, classify_outcome(a.actual, a.lower, a.upper))
+                for a in awaiting]
+    assert store.record_outcomes(second_pass, outcomes) == 3
+    assert store.record_outcomes(second_pass, outcomes) == 0  # scored once
+    assert store.forecasts_awaiting_outcome("pick", "pick_hours") == []
+    latest = store.scored_forecasts("pick")
+    assert len(latest) == 2  # the last issue for each target period
+    assert latest.lead.tolist() == [1, 1]
+    assert latest.outcome == (OutcomeKind.MISS_HIGH, OutcomeKind.HIT)
+    every = store.scored_forecasts("pick", latest_only=False)
+    assert sorted(every.lead.tolist()) == [1, 1, 2]
+    last_one = store.scored_forecasts(latest_only=False, last=1)
+    assert set(last_one.target_period) == {week(2)[0]} and len(last_one) == 2
+    assert last_one.level.tolist() == [0.9, 0.9]
+
+
+# ----------------------------------------------------------------------------- findings
+
+
+def finding(kind: FindingKind = FindingKind.SLOPE_SHIFT, *, series: str | None = "a",
+            severity: Severity = Severity.WARNING, model: str | None = "pick",
+            feed: str | None = "depot") -> Finding:
+    return Finding(model, series, feed, kind, severity, week(3)[0], 2.5, 0.01, "moved", "look")
+
+
+def test_a_finding_that_holds_lapses_once_and_returns_is_one_finding(store: Store) -> None:
+    passes = [store.record_pass(as_of=T0 + timedelta(days=7 * i), started_at=T0).id
+              for i in range(6)]
+    raised = store.upsert_finding(finding(), pass_id=passes[0], at=T0)
+    assert raised.created and raised.finding.state == FindingState.NEW
+    same_pass = store.upsert_finding(finding(), pass_id=passes[0], at=T0)
+    assert not same_pass.created and same_pass.finding.state == FindingState.NEW
+    held = store.upsert_finding(finding(severity=Severity.CRITICAL), pass_id=passes[1], at=T0)
+    assert (held.finding.state, held.previous_severity) == (FindingState.ONGOING, Severity.WARNING)
+    lapsed = store.mark_finding_absent(held.finding.id, pass_id=passes[2], at=T0, clear_after=2)
+    assert (lapsed.state, lapsed.false_streak) == (FindingState.ONGOING, 1)
+    # counted once per pass, however often it is said
+    lapsed = store.mark_finding_absent(held.finding.id, pass_id=passes[2], at=T0, clear_after=2)
+    assert lapsed.false_streak == 1
+    back = store.upsert_finding(finding(), pass_id=passes[3], at=T0)
+    assert back.finding.id == raised.finding.id and back.finding.false_streak == 0
+    store.mark_finding_absent(back.finding.id, pass_id=passes[4], at=T0, clear_after=2)
+    cleared = store.mark_finding_absent(back.finding.id, pass_id=passes[5], at=T0, clear_after=2)
+    assert (cleared.state, cleared.cleared_pass_id) == (FindingState.CLEARED, passes[5])
+    assert len(store.list_findings()) == 1
+    assert store.list_findings(cleared_in_pass=passes[5]) == [cleared]
+    assert store.open_findings() == []
+
+
+def test_one_open_finding_per_scope_and_feed_level_findings(store: Store) -> None:
+    pass_id = store.record_pass(as_of=T0, started_at=T0).id
+    store.upsert_finding(finding(), pass_id=pass_id, at=T0)
+    store.upsert_finding(finding(series="b"), pass_id=pass_id, at=T0)
+    store.upsert_finding(finding(FindingKind.COVERAGE), pass_id=pass_id, at=T0)
+    feed_level = Finding(None, None, "depot", FindingKind.REJECTED_INPUT, Severity.NOTICE, None,
+                         None, None, "rows rejected", "fix them")
+    first = store.upsert_finding(feed_level, pass_id=pass_id, at=T0)
+    second = store.upsert_finding(feed_level, pass_id=pass_id, at=T0)
+    assert second.finding.id == first.finding.id
+    assert len(store.open_findings()) == 4
+    assert [f.kind for f in store.open_findings(feed="depot", kind=FindingKind.REJECTED_INPUT)] == [
+        FindingKind.REJECTED_INPUT
+    ]
+    with pytest.raises(sqlite3.IntegrityError):  # the index itself refuses a second open one
+        store._conn.execute(
+            "INSERT INTO findings (model, series_key, feed, kind, severity, state, message, "
+            "action, first_pass_id, last_pass_id, created_at, updated_at) SELECT model, "
+            "series_key, feed, kind, severity, 'ongoing', message, action, first_pass_id, "
+            "last_pass_id, created_at, updated_at FROM findings WHERE id = 1"
+        )
+    with pytest.raises(ValueError, match="feed-level finding has no series"):
+        store.upsert_finding(
+            Finding(None, "a", "depot", FindingKind.STALE_FEED, Severity.WARNING, None, None,
+                    None, "m", "a"), pass_id=pass_id, at=T0,
+        )
+
+
+def test_acknowledging_and_listing_findings(store: Store) -> None:
+    first = store.record_pass(as_of=T0, started_at=T0).id
+    made = store.upsert_finding(finding(), pass_id=first, at=T0).finding
+    acked = store.acknowledge_finding(made.id, at=T0 + timedelta(hours=1))
+    assert acked.acknowledged_at == T0 + timedelta(hours=1)
+    again = store.acknowledge_finding(made.id, at=T0 + timedelta(hours=5))
+    assert again.acknowledged_at == acked.acknowledged_at  # the first acknowledgement stands
+    with pytest.raises(StoreError, match="no finding with id 99"):
+        store.acknowledge_finding(99, at=T0)
+    second = store.record_pass(as_of=T0 + timedelta(days=7), started_at=T0).id
+    assert store.mark_new_findings_ongoing(second) == 1
+    assert store.list_findings(state="ongoing") == [store.get_finding(made.id)]
+    assert store.list_findings(raised_in_pass=first)[0].id == made.id
+    closed = store.clear_finding(made.id, pass_id=second, at=T0)
+    assert closed.state == FindingState.CLEARED
+    latest = store.latest_finding(model="pick", series="a", feed="depot",
+                                  kind=FindingKind.SLOPE_SHIFT)
+    assert latest is not None and latest.acknowledged_at is not None
+    assert latest.as_finding() == finding()
+
+
+# ----------------------------------------------------------------------------- baselines, digests
+
+
+def test_baselines_keep_history_and_the_newest_is_in_force(store: Store) -> None:
+    rows = [BaselineRow("pick", 1, s, week(0)[0], week(0)[1], week(9)[0], week(9)[1], "auto",
+                        week(10)[0], week(10)[1]) for s in ("a", None)]
+    store.set_baselines(rows, created_at=T0)
+    store.set_baselines(
+        [BaselineRow("pick", 1, "a", week(20)[0], week(20)[1], week(29)[0], week(29)[1],
+                     "rebaseline")], created_at=T0 + timedelta(days=1),
+    )
+    current = store.baselines("pick", 1)
+    assert current["a"].start_period == week(20)[0] and current["a"].set_by == "rebaseline"
+    assert current[None].monitoring_start == week(10)[0]
+    assert store.baseline("pick", 1, "a") == current["a"]
+    assert [b.set_by for b in store.baseline_history("pick", "a")] == ["auto", "rebaseline"]
+    assert store.baseline("pick", 2, "a") is None
+    with pytest.raises(ValueError, match="set_by"):
+        store.set_baselines([BaselineRow("p", 1, None, "a", 1, "b", 2, "manual")], created_at=T0)
+
+
+def test_digests_are_recorded_once_per_period(store: Store) -> None:
+    end = datetime(2024, 3, 4, 7, 0, tzinfo=UTC)
+    record, created = store.record_digest(period_end=end, created_at=T0, path="/r/d.html")
+    assert created
+    again, created = store.record_digest(period_end=end, created_at=T0 + timedelta(hours=1))
+    assert (again, created) == (record, False)
+    later, _ = store.record_digest(period_end=end + timedelta(days=7), created_at=T0)
+    assert store.latest_digest() == later
+
+
+# ----------------------------------------------------------------------------- outbox
+
+
+def test_outbox_dedupes_retries_with_backoff_and_never_drops(store: Store) -> None:
+    message, created = store.enqueue_message(
+        kind="pass", dedupe_key="pass:pick:2024-03-04", recipients=["a@example.org"],
+        subject="Two new findings", body=b"From: x\r\n\r\nbody", created_at=T0,
+    )
+    assert created
+    same, created = store.enqueue_message(
+        kind="pass", dedupe_key="pass:pick:2024-03-04", recipients=["a@example.org"],
+        subject="Two new findings", body=b"other", created_at=T0,
+    )
+    assert (same.id, same.body, created) == (message.id, b"From: x\r\n\r\nbody", False)
+    assert [m.id for m in store.due_messages(T0)] == [message.id]
+    delays = []
+    at = T0
+    for _ in range(12):
+        next_at = store.mark_failed(message.id, at=at, error="connection refused")
+        delays.append(next_at - at)
+        assert store.due_messages(next_at - timedelta(seconds=1)) == []
+        at = next_at
+    assert delays[:4] == [timedelta(minutes=m) for m in (1, 2, 4, 8)]
+    assert delays[-1] == timedelta(hours=6)  # capped
+    waiting = store.due_messages(at)[0]
+    assert (waiting.attempts, waiting.last_error) == (12, "connection refused")
+    store.mark_sent(message.id, at=at)
+    assert store.due_messages(at + timedelta(days=30)) == []
+    assert store.unsent_messages() == []
+    with pytest.raises(ValueError, match="line breaks"):
+        store.enqueue_message(kind="digest", dedupe_key="d", recipients=["a@x.org\nBcc: b@x.org"],
+                              subject="s", body=b"", created_at=T0)
+
+
+# ----------------------------------------------------------------------------- backup
+
+
+def test_backup_of_a_live_database_is_a_consistent_copy(tmp_path: Path) -> None:
+    path = tmp_path / "live.sqlite"
+    with Store.open(path) as store:
+        rows = [actual(f"s{i:03d}", n, float(n), float(i)) for i in range(300) for n in range(150)]
+        store.insert_observations("depot", a_file(store), COLUMNS, rows)
+    stop = threading.Event()
+    written: list[int] = []
+
+    def writer() -> None:
+        # Each transaction writes a pass and a file that names it: a torn copy would show one
+        # without the other.
+        with Store.open(path) as other:
+            while not stop.is_set():
+                with other.transaction():
+                    pass_id = other.record_pass(as_of=T0, started_at=T0).id
+                    other.record_file(
+                        feed="depot", name=f"p{pass_id}", sha256=f"p{pass_id}", size=1,
+                        received_at=T0, outcome=FileOutcome.REJECTED, stored_path="/r",
+                        pass_id=pass_id,
+                    )
+                written.append(pass_id)
+
+    thread = threading.Thread(target=writer)
+    thread.start()
+    try:
+        while len(written) < 20:
+            time.sleep(0.005)
+        with Store.open(path) as store:
+            result = store.backup(tmp_path / "copies" / "copy.sqlite")
+        before_stop = len(written)
+        while len(written) < before_stop + 20:
+            time.sleep(0.005)
+    finally:
+        stop.set()
+        thread.join()
+    assert result.integrity == "ok"
+    copy = sqlite3.connect(result.path)
+    assert copy.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    assert copy.execute("PRAGMA journal_mode").fetchone()[0] == "delete"
+    passes = [row[0] for row in copy.execute("SELECT id FROM passes ORDER BY id")]
+    assert passes == list(range(1, len(passes) + 1))  # a prefix of the history, no gaps
+    assert 20 <= len(passes) < len(written)  # taken while the writer was going
+    orphans = copy.execute(
+        "SELECT count(*) FROM passes WHERE id NOT IN (SELECT pass_id FROM files "
+        "WHERE pass_id IS NOT NULL)"
+    ).fetchone()[0]
+    assert orphans == 0
+    live = sqlite3.connect(path)
+    # The copy holds the rows the live database had then: compare what never changes later (a
+    # pass's status does: the writer's next pass marks the one before it 'interrupted').
+    for table, columns in (("passes", "id, as_of, started_at"), ("files", "*"),
+                           ("observations", "*")):
+        copied = copy.execute(f"SELECT {columns} FROM {table} ORDER BY id").fetchall()
+        source = live.execute(
+            f"SELECT {columns} FROM {table} ORDER BY id LIMIT ?", (len(copied),)
+        ).fetchall()
+        assert copied == source, table
+    copy.close()
+    live.close()
+    with Store.open(result.path) as reopened:
+        assert reopened.windows("depot", COLUMNS).lengths().sum() == 300 * 150
+
+
+def test_backup_refuses_to_overwrite_unless_asked(tmp_path: Path) -> None:
+    with Store.open(tmp_path / "db.sqlite") as store:
+        target = tmp_path / "b.sqlite"
+        target.write_bytes(b"keep me")
+        with pytest.raises(StoreError, match="already exists"):
+            store.backup(target)
+        assert target.read_bytes() == b"keep me"
+        store.record_pass(as_of=T0, started_at=T0)
+        store.backup(target, overwrite=True)
+    with Store.open(target) as copy:
+        assert copy.latest_pass() is not None
