@@ -9,13 +9,13 @@ Two halves, both pure (no database access; the pass reads and writes through ``m
    neither renewed nor counted towards clearing. Tests of one kind across the series of one model
    are controlled together with Benjamini–Hochberg at ``thresholds.fdr`` before they hold.
 
-2. **Lifecycle.** ``plan_transitions`` compares this pass's conditions with the open findings:
-   a condition that holds with no open finding raises a ``new`` one; one that holds on an open
-   finding keeps it ``ongoing`` (not sent again, unless its severity rose); a finding whose
-   condition is false for ``thresholds.clear_after`` consecutive evaluations is ``cleared`` and that
-   is reported once. A lapse shorter than that leaves the finding open, so findings do not flap.
-   An acknowledged finding is never sent again, and a finding that returns within
-   ``REACK_PASSES`` passes of an acknowledged one clearing inherits the acknowledgement.
+2. **Lifecycle** (DESIGN.md section 7) is kept by the store, which holds the findings: the pass
+   calls ``Store.upsert_finding`` for each condition that holds (raising a ``new`` finding or
+   keeping the open one ``ongoing``) and ``Store.mark_finding_absent`` for each evaluated
+   condition that does not (clearing it after ``thresholds.clear_after`` such passes in a row, so
+   a one-pass lapse does not flap). ``should_notify`` below says which of those changes go into
+   the pass's message: a finding raised, a finding whose severity rose, a finding cleared;
+   never one that is acknowledged (``plumbline ack``), and never a finding that merely continues.
 """
 
 from __future__ import annotations
@@ -32,15 +32,13 @@ from numpy.typing import ArrayLike, NDArray
 from monitor.stats.coverage import CoverageBatch, CoverageZone
 from monitor.stats.multitest import benjamini_hochberg
 from monitor.text import format_p_value
-from monitor.vocabulary import FindingKind, FindingState, Severity
+from monitor.vocabulary import FindingKind, Severity
 
 # Durbin–Watson outside 1.5–2.5 is a rule of thumb (common practice), not a test.
 DURBIN_WATSON_LOW = 1.5
 DURBIN_WATSON_HIGH = 2.5
 # A feed is stale when nothing new arrived for this many cadences past its latest period.
 STALE_CADENCES = 1.5
-# A finding that returns within this many passes after an acknowledged one cleared stays quiet.
-REACK_PASSES = 4
 
 
 class DecisionThresholds(Protocol):
@@ -62,7 +60,6 @@ class FindingKey:
     model: str | None
     series: str | None
     feed: str | None
-    subject: str | None = None  # e.g. the file name of a rejected file
 
 
 @dataclass(frozen=True)
@@ -79,84 +76,23 @@ class Condition:
     action: str
 
 
-@dataclass(frozen=True)
-class OpenFinding:
-    """An open (``new`` or ``ongoing``) finding as the store holds it."""
-
-    id: int
-    key: FindingKey
-    severity: Severity
-    state: FindingState
-    false_streak: int
-    acknowledged: bool
-
-
-@dataclass(frozen=True)
-class Transition:
-    """What the pass does to one finding.
-
-    ``raise``: record a new finding from ``condition``. ``continue``: the open finding stays
-    (``ongoing``) with ``condition``'s figures. ``lapse``: the condition was false but not yet for
-    ``clear_after`` passes; store ``false_streak``. ``clear``: the finding is cleared.
-    ``notify`` says whether this transition goes into the pass's message.
-    """
-
-    change: Literal["raise", "continue", "lapse", "clear"]
-    key: FindingKey
-    condition: Condition | None
-    finding_id: int | None
-    false_streak: int
-    notify: bool
-    acknowledged: bool = False
-
-
-def plan_transitions(
-    open_findings: Iterable[OpenFinding],
-    conditions: Iterable[Condition],
+def should_notify(
+    change: Literal["raised", "continued", "cleared"],
     *,
-    clear_after: int | dict[FindingKey, int],
-    recently_acknowledged: Iterable[FindingKey] = (),
-) -> list[Transition]:
-    """The lifecycle step of DESIGN.md section 7 for one pass.
-
-    ``clear_after`` is one number, or one per key (models have their own thresholds).
-    ``recently_acknowledged`` lists keys whose acknowledged finding cleared within the last
-    ``REACK_PASSES`` passes: a new finding on such a key is raised already acknowledged and quiet.
-    """
-    by_key: dict[FindingKey, OpenFinding] = {}
-    for open_finding in open_findings:
-        by_key[open_finding.key] = open_finding
-    quiet = set(recently_acknowledged)
-    transitions: list[Transition] = []
-    for condition in conditions:
-        finding = by_key.get(condition.key)
-        limit = clear_after if isinstance(clear_after, int) else clear_after.get(condition.key, 2)
-        if condition.holds:
-            if finding is None:
-                acknowledged = condition.key in quiet
-                transitions.append(
-                    Transition("raise", condition.key, condition, None, 0, not acknowledged,
-                               acknowledged)
-                )
-            else:
-                escalated = condition.severity.rank > finding.severity.rank
-                transitions.append(
-                    Transition("continue", condition.key, condition, finding.id, 0,
-                               escalated and not finding.acknowledged, finding.acknowledged)
-                )
-        elif finding is not None:
-            streak = finding.false_streak + 1
-            if streak >= max(1, limit):
-                transitions.append(
-                    Transition("clear", condition.key, condition, finding.id, streak,
-                               not finding.acknowledged, finding.acknowledged)
-                )
-            else:
-                transitions.append(
-                    Transition("lapse", condition.key, condition, finding.id, streak, False,
-                               finding.acknowledged)
-                )
-    return transitions
+    acknowledged: bool,
+    severity: Severity | None = None,
+    previous_severity: Severity | None = None,
+) -> bool:
+    """Whether a lifecycle change goes into the pass's message (see the module docstring)."""
+    if acknowledged:
+        return False
+    if change == "continued":
+        return (
+            severity is not None
+            and previous_severity is not None
+            and severity.rank > previous_severity.rank
+        )
+    return True
 
 
 # ---------------------------------------------------------------------------------------------
@@ -246,15 +182,21 @@ def slope_shift_conditions(
     p_value: ArrayLike,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    *,
+    looks: int = 1,
 ) -> list[Condition]:
     """``slope_shift``: a per-slope baseline-vs-recent test rejects after BH.
 
-    The family is every (series, slope) test of the model; a series holds when any of its slopes
-    rejects, and the condition reports its smallest p-value. ``statistic`` and ``p_value`` are
-    (s, k) arrays, NaN where not tested.
+    ``looks`` is how many disjoint recent windows the monitoring horizon allows (see
+    ``monitor.analysis``): each p-value is multiplied by it (Bonferroni over the looks, so a
+    stable series raises a false ``slope_shift`` over the horizon with chance at most the
+    BH rate), then the family of every (series, slope) test of the model is controlled
+    with Benjamini–Hochberg. A series holds when any of its slopes rejects; the condition reports
+    its smallest p-value. ``statistic`` and ``p_value`` are (s, k) arrays, NaN where not tested.
     """
     stat = np.asarray(statistic, dtype=float).reshape(len(series), len(slopes))
-    p = np.asarray(p_value, dtype=float).reshape(len(series), len(slopes))
+    p = np.minimum(1.0, np.asarray(p_value, dtype=float).reshape(len(series), len(slopes))
+                   * max(1, looks))
     reject = _bh_reject(p.ravel(), thresholds.fdr).reshape(p.shape)
     out: list[Condition] = []
     for i, name in enumerate(series):
@@ -535,43 +477,42 @@ class RejectedInput:
     reason: str
 
 
-def rejected_input_conditions(rejections: Iterable[RejectedInput]) -> list[Condition]:
-    """``rejected_input``: a file or rows were rejected in this pass (one finding per file).
-
-    ``warning`` for a whole file, ``notice`` for rows or a duplicate. Each file is its own
-    finding (key subject = file name); it clears after ``clear_after`` passes without a new
-    rejection of that name.
-    """
-    out: list[Condition] = []
-    for item in rejections:
-        severity = Severity.WARNING if item.whole_file and not item.duplicate else Severity.NOTICE
-        if item.duplicate:
-            what = f"File {item.file_name} in feed {item.feed} was already ingested: {item.reason}"
-        elif item.whole_file:
-            what = f"File {item.file_name} in feed {item.feed} was rejected: {item.reason}"
-        else:
-            what = (f"{item.rows_rejected} row(s) of {item.file_name} in feed {item.feed} were "
-                    f"rejected: {item.reason}")
-        out.append(Condition(
-            FindingKey(FindingKind.REJECTED_INPUT, None, None, item.feed, item.file_name), True,
-            severity, float(item.rows_rejected), None, None, what,
-            "See the report beside the file in the rejected folder; fix and drop a corrected "
-            "file (the original is kept).",
-        ))
-    return out
-
-
-def lapsed_rejections(
-    open_findings: Iterable[OpenFinding], raised: Iterable[Condition], feeds: Iterable[str]
+def rejected_input_conditions(
+    feeds: Iterable[str], rejections: Iterable[RejectedInput]
 ) -> list[Condition]:
-    """False conditions for open ``rejected_input`` findings of ``feeds`` not raised again."""
-    again = {c.key for c in raised}
-    feed_set = set(feeds)
+    """``rejected_input`` per feed: holds when this pass rejected a file or rows of that feed.
+
+    One finding per feed (the store keeps one open finding per feed and kind); its message lists
+    what was rejected. ``warning`` when a whole file was refused, ``notice`` for rows or a
+    duplicate. Every feed in ``feeds`` that ingested files in this pass gets a condition, so a
+    feed whose files are clean again counts towards clearing.
+    """
+    by_feed: dict[str, list[RejectedInput]] = {feed: [] for feed in feeds}
+    for item in rejections:
+        by_feed.setdefault(item.feed, []).append(item)
     out: list[Condition] = []
-    for finding in open_findings:
-        key = finding.key
-        if key.kind is FindingKind.REJECTED_INPUT and key.feed in feed_set and key not in again:
-            out.append(Condition(key, False, finding.severity, None, None, None, "", ""))
+    for feed, items in by_feed.items():
+        key = FindingKey(FindingKind.REJECTED_INPUT, None, None, feed)
+        if not items:
+            out.append(Condition(key, False, Severity.NOTICE, None, None, None, "", ""))
+            continue
+        whole = any(item.whole_file and not item.duplicate for item in items)
+        parts = []
+        for item in items:
+            if item.duplicate:
+                parts.append(f"{item.file_name} was already ingested ({item.reason})")
+            elif item.whole_file:
+                parts.append(f"{item.file_name} was refused ({item.reason})")
+            else:
+                parts.append(f"{item.rows_rejected} row(s) of {item.file_name} were refused "
+                             f"({item.reason})")
+        out.append(Condition(
+            key, True, Severity.WARNING if whole else Severity.NOTICE,
+            float(sum(item.rows_rejected for item in items)), None, None,
+            f"Feed {feed}: " + "; ".join(parts) + ". Nothing was deleted or altered.",
+            "See the report beside each file in the rejected folder; fix the export and drop a "
+            "corrected file.",
+        ))
     return out
 
 
@@ -583,23 +524,19 @@ def with_message(condition: Condition, message: str) -> Condition:
 __all__ = [
     "DURBIN_WATSON_HIGH",
     "DURBIN_WATSON_LOW",
-    "REACK_PASSES",
     "STALE_CADENCES",
     "Condition",
     "DecisionThresholds",
     "FindingKey",
-    "OpenFinding",
     "RejectedInput",
-    "Transition",
     "autocorrelation_conditions",
     "clustered_miss_conditions",
     "coverage_conditions",
     "extrapolation_conditions",
     "heteroscedasticity_conditions",
-    "lapsed_rejections",
     "not_estimable_conditions",
-    "plan_transitions",
     "rejected_input_conditions",
+    "should_notify",
     "significance_conditions",
     "slope_shift_conditions",
     "stale_feed_condition",

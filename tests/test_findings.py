@@ -8,19 +8,18 @@ from datetime import datetime, timedelta
 import numpy as np
 
 from monitor.findings import (
-    Condition,
-    FindingKey,
-    OpenFinding,
+    RejectedInput,
     autocorrelation_conditions,
     coverage_conditions,
-    plan_transitions,
+    rejected_input_conditions,
+    should_notify,
     significance_conditions,
     slope_shift_conditions,
     stale_feed_condition,
     weak_fit_conditions,
 )
 from monitor.stats.coverage import audit_batch
-from monitor.vocabulary import FindingKind, FindingState, Severity
+from monitor.vocabulary import FindingKind, Severity
 
 
 @dataclass(frozen=True)
@@ -33,73 +32,29 @@ class Thresholds:
     clear_after: int = 2
 
 
-KEY = FindingKey(FindingKind.SLOPE_SHIFT, "pick_hours", "depot-01", None)
+def test_only_raising_escalation_and_clearing_are_notified() -> None:
+    assert should_notify("raised", acknowledged=False)
+    assert should_notify("cleared", acknowledged=False)
+    assert not should_notify("continued", acknowledged=False, severity=Severity.WARNING,
+                             previous_severity=Severity.WARNING)
+    assert should_notify("continued", acknowledged=False, severity=Severity.CRITICAL,
+                         previous_severity=Severity.WARNING)
+    # an acknowledged finding is never sent again, whatever happens to it
+    assert not should_notify("cleared", acknowledged=True)
+    assert not should_notify("continued", acknowledged=True, severity=Severity.CRITICAL,
+                             previous_severity=Severity.NOTICE)
 
 
-def _condition(holds: bool, severity: Severity = Severity.WARNING) -> Condition:
-    return Condition(KEY, holds, severity, 3.0, 0.001, "2025-06-01", "msg", "act")
-
-
-def _run(sequence: list[bool], clear_after: int = 2) -> list[str]:
-    """Drive the lifecycle through passes, keeping the open finding as a store would."""
-    open_finding: OpenFinding | None = None
-    changes: list[str] = []
-    next_id = 1
-    for holds in sequence:
-        transitions = plan_transitions(
-            [open_finding] if open_finding else [], [_condition(holds)], clear_after=clear_after
-        )
-        for t in transitions:
-            changes.append(t.change)
-            if t.change == "raise":
-                open_finding = OpenFinding(next_id, KEY, Severity.WARNING, FindingState.NEW, 0,
-                                           False)
-                next_id += 1
-            elif t.change in {"continue", "lapse"}:
-                assert open_finding is not None
-                open_finding = OpenFinding(open_finding.id, KEY, open_finding.severity,
-                                           FindingState.ONGOING, t.false_streak, False)
-            elif t.change == "clear":
-                open_finding = None
-        if not transitions:
-            changes.append("-")
-    return changes
-
-
-def test_a_one_pass_lapse_does_not_flap() -> None:
-    # holds, lapses for one pass, returns: one finding, never cleared or raised twice.
-    changes = _run([True, False, True, True])
-    assert changes == ["raise", "lapse", "continue", "continue"]
-    assert changes.count("raise") == 1
-
-
-def test_clears_after_clear_after_false_passes_and_reports_once() -> None:
-    changes = _run([True, False, False, False], clear_after=2)
-    assert changes == ["raise", "lapse", "clear", "-"]
-
-
-def test_only_raise_and_clear_are_notified() -> None:
-    first = plan_transitions([], [_condition(True)], clear_after=2)
-    assert [t.notify for t in first] == [True]
-    open_finding = OpenFinding(1, KEY, Severity.WARNING, FindingState.NEW, 0, False)
-    again = plan_transitions([open_finding], [_condition(True)], clear_after=2)
-    assert [t.notify for t in again] == [False]
-    escalated = plan_transitions([open_finding], [_condition(True, Severity.CRITICAL)],
-                                 clear_after=2)
-    assert [t.notify for t in escalated] == [True]
-
-
-def test_acknowledged_findings_stay_quiet() -> None:
-    acked = OpenFinding(1, KEY, Severity.WARNING, FindingState.ONGOING, 1, True)
-    cleared = plan_transitions([acked], [_condition(False)], clear_after=2)
-    assert [(t.change, t.notify) for t in cleared] == [("clear", False)]
-    back = plan_transitions([], [_condition(True)], clear_after=2, recently_acknowledged=[KEY])
-    assert [(t.change, t.notify, t.acknowledged) for t in back] == [("raise", False, True)]
-
-
-def test_unevaluated_series_keep_their_state() -> None:
-    open_finding = OpenFinding(1, KEY, Severity.WARNING, FindingState.NEW, 1, False)
-    assert plan_transitions([open_finding], [], clear_after=2) == []
+def test_rejected_input_is_one_condition_per_feed() -> None:
+    conditions = rejected_input_conditions(
+        ["a", "b"],
+        [RejectedInput("a", "w1.csv", True, False, 0, "not UTF-8"),
+         RejectedInput("a", "w2.csv", False, False, 3, "text in a numeric column")],
+    )
+    by_feed = {c.key.feed: c for c in conditions}
+    assert by_feed["a"].holds and by_feed["a"].severity is Severity.WARNING
+    assert "w1.csv" in by_feed["a"].message and "w2.csv" in by_feed["a"].message
+    assert not by_feed["b"].holds
 
 
 def test_coverage_rule_needs_min_scored_low_hit_rate_and_bh() -> None:
@@ -140,6 +95,10 @@ def test_slope_shift_is_controlled_across_series_with_bh() -> None:
     conditions = slope_shift_conditions("m", [f"s{i}" for i in range(20)], ["x"], stat, p,
                                         Thresholds(), [None] * 20)
     assert [c.key.series for c in conditions if c.holds] == ["s0"]
+    # four disjoint recent windows over the horizon: each p-value counts four times
+    conditions = slope_shift_conditions("m", [f"s{i}" for i in range(20)], ["x"], stat, p,
+                                        Thresholds(), [None] * 20, looks=4)
+    assert [c.p_value for c in conditions][:2] == [0.004, 1.0]
 
 
 def test_significance_lost_and_sign_flip() -> None:
