@@ -166,3 +166,29 @@ def test_console_command_runs(demand: Path) -> None:
     )  # fmt: skip
     assert done.returncode == 0, done.stderr
     assert json.loads(done.stdout)["n"] == 120
+
+
+def test_readme_example_is_what_the_command_prints(capsys: Any) -> None:
+    # The README's JSON example (numbers shortened to 6 significant digits) must match a real run
+    # on the example file, key for key, so the documented contract cannot drift.
+    import re
+
+    root = Path(__file__).resolve().parent.parent
+    readme = (root / "README.md").read_text(encoding="utf-8")
+    section = readme.split("<!-- section: breaks -->")[1].split("<!-- end section: breaks -->")[0]
+    documented = json.loads(re.findall(r"```json\n(.*?)```", section, re.S)[0])
+    example = root / "config" / "example_pick_hours.csv"
+    actual = _json(capsys, str(example), "--response", "pick_hours", "--predictors",
+                   "order_lines", "pallets", "--period", "week_ending")  # fmt: skip
+
+    def same(doc: Any, real: Any, where: str) -> None:
+        if isinstance(doc, dict):
+            assert isinstance(real, dict) and set(doc) == set(real), where
+            for key in doc:
+                same(doc[key], real[key], f"{where}.{key}")
+        elif isinstance(doc, float) and not isinstance(real, bool):
+            assert real == pytest.approx(doc, rel=1e-5), where
+        else:
+            assert doc == real, where
+
+    same(documented, actual, "report")

@@ -352,8 +352,8 @@ def _sup_f_verdict(report: dict[str, Any]) -> str:
     if _signals(report, "sup_f"):
         return f"a break: new regime from {where}, after {rows} rows"
     if test["p_value"] is None:
-        return f"no p-value ({test['p_value_note']}); the best split starts at {where}"
-    return f"no break at the 5 % level (the best split would start at {where})"
+        return f"no p-value: {test['p_value_note']}; the best split starts at {where}"
+    return f"no break at the 5 % level; the best split would start at {where}"
 
 
 def render_table(report: dict[str, Any]) -> str:

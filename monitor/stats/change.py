@@ -275,16 +275,28 @@ def _rls_rows(
     it agrees with the rotations to rounding and costs far fewer array operations per row.
     cov (p, p, s), coef (p, s).
     """
-    p = cov.shape[0]
+    p, _, s = cov.shape
+    # Buffers reused row after row: fresh temporaries of this size cost more than the arithmetic.
+    px = np.empty((p, s))
+    gain = np.empty((p, s))
+    outer = np.empty((p, p, s))
+    f = np.empty(s)
+    error = np.empty(s)
+    root = np.empty(s)
     for t in range(start, rows.shape[0]):
         x = rows[t, :p]
-        px = np.einsum("ijs,js->is", cov, x)
-        f = 1.0 + np.einsum("is,is->s", x, px)
-        error = rows[t, p] - np.einsum("is,is->s", x, coef)
-        residual[t] = error / np.sqrt(f)
-        gain = px / f
-        coef += gain * error
-        cov -= gain[:, None, :] * px[None, :, :]
+        np.einsum("ijs,js->is", cov, x, out=px)
+        np.einsum("is,is->s", x, px, out=f)
+        np.add(f, 1.0, out=f)
+        np.einsum("is,is->s", x, coef, out=error)
+        np.subtract(rows[t, p], error, out=error)
+        np.sqrt(f, out=root)
+        np.divide(error, root, out=residual[t])
+        np.divide(px, f, out=gain)
+        np.multiply(gain[:, None, :], px[None, :, :], out=outer)
+        np.subtract(cov, outer, out=cov)
+        np.multiply(gain, error, out=gain)
+        np.add(coef, gain, out=coef)
 
 
 def _triangular_inverse(r: FloatArray, ok: BoolArray) -> FloatArray:
@@ -575,7 +587,8 @@ def cusum_from_recursive(rr: RecursiveResiduals) -> BatchCusum:
     path = np.cumsum(rr.residuals, axis=1)
     path /= sigma[:, None]
     p = rr.p
-    if n > p and every and has[:, :p].sum() == 0 and has[:, p:].all():
+    standard = n > p and every and not has[:, :p].any() and bool(has[:, p:].all())
+    if standard:
         # Every series has its residuals on rows p … n − 1: r − k is the same for all.
         position = np.maximum(np.arange(n, dtype=np.float64) - p + 1, 0.0)[None, :]
     else:
@@ -585,13 +598,17 @@ def cusum_from_recursive(rr: RecursiveResiduals) -> BatchCusum:
     line5 = a5 * (root + 2.0 * position / root)
     ratio = np.abs(path)
     ratio /= line5
-    ratio[~has] = 0.0
+    if not standard:
+        # Rows without a residual carry the path forward; only residual rows are tested.
+        ratio[~has] = 0.0
     statistic = ratio.max(axis=1) if n else np.zeros(s)
+    rows_s = np.arange(s)
     first: dict[float, IntArray] = {}
     for level in CUSUM_LEVELS:
         over = ratio > bde_boundary_constant(level) / a5
-        idx = np.where(over.any(axis=1), np.argmax(over, axis=1), -1).astype(np.int64)
-        first[level] = np.where(applicable, idx, -1)
+        idx = np.argmax(over, axis=1) if n else np.zeros(s, dtype=np.int64)
+        crossed_here = over[rows_s, idx] if n else np.zeros(s, dtype=bool)
+        first[level] = np.where(applicable & crossed_here, idx, -1).astype(np.int64)
     widest = statistic * a5  # the largest a whose lines the path reaches
     p_value = bde_crossing_probability(widest)
     nan = np.full(s, np.nan)

@@ -498,3 +498,37 @@ def test_perfect_break_without_noise_is_reported_not_infinite() -> None:
     assert not result.applicable and "row 20" in str(result.reason)
     chow = chow_test(None, y[:20], None, y[20:]).series(0)
     assert not chow.applicable and "infinite" in str(chow.reason)
+
+
+def test_sup_f_with_a_mask_equals_the_series_without_those_rows() -> None:
+    x, y = _data(50, 90, 1)
+    y[55:] += 2.0
+    mask = np.ones(90, dtype=bool)
+    dropped = [3, 40, 41, 70]
+    mask[dropped] = False
+    masked = sup_f_test(x[None], y[None], mask[None]).series(0)
+    kept = np.flatnonzero(mask)
+    plain = sup_f_test(x[kept], y[kept])
+    alone = plain.series(0)
+    assert masked.statistic == pytest.approx(alone.statistic, rel=1e-10)
+    assert masked.candidates == alone.candidates
+    assert masked.first_regime_rows == alone.first_regime_rows
+    assert alone.break_index is not None
+    assert masked.break_index == kept[alone.break_index]  # reported in the original rows
+    f_masked = sup_f_test(x[None], y[None], mask[None]).f_statistics[0]
+    np.testing.assert_allclose(f_masked[kept], plain.f_statistics[0], rtol=1e-10)
+    assert np.all(np.isnan(f_masked[dropped]))
+
+
+def test_break_tests_equal_each_test_alone() -> None:
+    from monitor.stats.supf import break_tests
+
+    x, y = _data(60, 70, 2)
+    together = break_tests(x, y, names=["a", "b"])
+    assert together.cusum.series(0).statistic == pytest.approx(
+        cusum_test(x, y).series(0).statistic, rel=1e-12
+    )
+    assert together.ols_cusum.series(0).p_value == pytest.approx(
+        ols_cusum_test(x, y).series(0).p_value, rel=1e-12
+    )
+    assert together.sup_f.series(0) == sup_f_test(x, y).series(0)
