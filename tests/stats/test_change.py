@@ -532,3 +532,26 @@ def test_break_tests_equal_each_test_alone() -> None:
         ols_cusum_test(x, y).series(0).p_value, rel=1e-12
     )
     assert together.sup_f.series(0) == sup_f_test(x, y).series(0)
+
+
+def test_no_intercept_matches_statsmodels_without_a_constant() -> None:
+    # Reference: statsmodels recursive_olsresiduals and breaks_cusumolsresid on a design with
+    # no constant column.
+    x, y = _data(70, 60, 2)
+    fit = sm.OLS(y, x).fit()
+    reference = recursive_olsresiduals(fit)[4][2:]
+    ours = recursive_residuals(x, y, intercept=False)
+    np.testing.assert_allclose(ours.residuals[0, 2:], reference, rtol=1e-9, atol=1e-9)
+    statistic, p_value, _ = breaks_cusumolsresid(fit.resid, ddof=2)
+    ols = ols_cusum_test(x, y, intercept=False).series(0)
+    assert ols.statistic == pytest.approx(statistic, rel=1e-9)
+    assert ols.p_value == pytest.approx(p_value, rel=1e-9)
+
+
+def test_sup_f_beyond_the_table_keeps_the_statistic_without_a_p_value() -> None:
+    x, y = _data(71, 120, 10)  # 11 coefficients: the table covers 1 to 10
+    result = sup_f_test(x, y).series(0)
+    assert result.applicable and result.statistic is not None
+    assert result.p_value is None and "1 to 10" in str(result.p_value_note)
+    other_trim = sup_f_test(x[:, :1], y, trimming=0.2).series(0)
+    assert other_trim.p_value is None and "15%" in str(other_trim.p_value_note)
