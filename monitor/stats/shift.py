@@ -16,7 +16,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import stats
 
-from monitor.stats.change import (
+from monitor.stats.updating import (
     BoolArray,
     FloatArray,
     IntArray,

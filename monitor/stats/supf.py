@@ -32,24 +32,26 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from monitor.stats.change import (
-    EXACT_REASON,
     BatchCusum,
     BatchOlsCusum,
+    RecursiveResiduals,
+    cusum_from_recursive,
+    ols_cusum_from_pass,
+    recursive_from_pass,
+)
+from monitor.stats.critical_values import supf_p_values, supf_table
+from monitor.stats.updating import (
+    EXACT_REASON,
     BoolArray,
     FloatArray,
     IntArray,
     Prepared,
     QrPass,
-    RecursiveResiduals,
-    cusum_from_recursive,
     is_exact_fit,
     least_squares_pass,
-    ols_cusum_from_pass,
     prepare,
     rank_reason,
-    recursive_from_pass,
 )
-from monitor.stats.critical_values import supf_p_values, supf_table
 
 DEFAULT_TRIMMING = 0.15
 
