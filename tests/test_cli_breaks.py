@@ -192,3 +192,7 @@ def test_readme_example_is_what_the_command_prints(capsys: Any) -> None:
             assert doc == real, where
 
     same(documented, actual, "report")
+    shown = re.findall(r"```text\n(.*?)```", section, re.S)[0]
+    status, out, _ = _run(capsys, str(example), "--response", "pick_hours", "--predictors",
+                          "order_lines", "pallets", "--period", "week_ending")  # fmt: skip
+    assert status == 0 and out == shown
