@@ -555,3 +555,34 @@ def test_sup_f_beyond_the_table_keeps_the_statistic_without_a_p_value() -> None:
     assert result.p_value is None and "1 to 10" in str(result.p_value_note)
     other_trim = sup_f_test(x[:, :1], y, trimming=0.2).series(0)
     assert other_trim.p_value is None and "15%" in str(other_trim.p_value_note)
+
+
+def test_batch_mixing_well_and_badly_started_series() -> None:
+    # Series 0 starts with eight equal predictor values (its rank is reached only at row 8, so
+    # it stays on Givens rotations); series 1 starts nearly collinear (rotations, then the switch
+    # is refused); series 2 is ordinary (covariance updates). Each must match the definition
+    # refitted by lstsq at every row where the rows before determine the fit. Series 1's first
+    # fits are ill-conditioned by construction (x spread 1e-7, condition ~1e7), which bounds what
+    # any method can agree on: hence 1e-6 relative (the others agree to ~1e-13).
+    rng = np.random.default_rng(8)
+    n = 40
+    x = rng.normal(size=(3, n, 1))
+    x[0, :8, 0] = 1.5
+    x[1, :6, 0] = 2.0 + 1e-7 * rng.normal(size=6)
+    y = 1.0 + 2.0 * x[:, :, 0] + rng.normal(size=(3, n))
+    batch = recursive_residuals(x, y)
+    assert batch.applicable.all()
+    for i in range(3):
+        design = _design(x[i])
+        for t in range(2, n):
+            if np.linalg.matrix_rank(design[:t]) < 2:
+                continue
+            b = np.linalg.lstsq(design[:t], y[i, :t], rcond=None)[0]
+            _q, r = np.linalg.qr(design[:t])
+            h = np.linalg.lstsq(r.T, design[t], rcond=None)[0]
+            expected = (y[i, t] - design[t] @ b) / math.sqrt(1 + h @ h)
+            assert batch.residuals[i, t] == pytest.approx(expected, rel=1e-6, abs=1e-9), (i, t)
+    # Series 0: rows 1 … 7 repeat row 0's x, so they carry residuals (prediction errors of the
+    # mean so far) and row 8 raises the rank instead.
+    assert batch.has_residual[0, :9].tolist() == [False] + [True] * 7 + [False]
+    assert batch.count.tolist() == [n - 2] * 3
