@@ -1,0 +1,696 @@
+"""E-mail: build MIME messages, queue them in the outbox, deliver the outbox over SMTP.
+
+Standard library only (``email`` with ``policy.SMTP``, ``smtplib``, ``ssl``).
+
+What the renderer hands over (the neutral content)::
+
+    MailContent(subject: str, text: str, html: str, inline_images: Sequence[InlineImage] = ())
+    InlineImage(cid: str, png: bytes, filename: str)     # a NamedTuple: a plain 3-tuple works
+
+Any object with the attributes ``subject``, ``text``, ``html`` and ``inline_images`` will do
+(:class:`MessageContent`). The HTML refers to each image as ``src="cid:<cid>"``; ``cid`` is a
+dot-atom such as ``chart-3@plumbline``.
+
+What a pass calls (DESIGN.md section 5, step 7), when ``notify.email`` is configured::
+
+    changed = models_to_notify(store, config, pass_id)        # new or cleared findings
+    enqueue_pass_messages(store, config.notify.email, pass_id=pass_id,
+                          owners_by_model=model_owners(config), changed_models=changed,
+                          render=render, created_at=now)      # render(recipient, models)
+    report = deliver_outbox(store, config.notify.email, now=now)
+
+``render(recipient, models) -> MessageContent`` is called once per recipient with the sorted
+names of that recipient's models that have news, so an owner of two models gets one message
+covering both, and a pass with no new or cleared findings sends nothing. The dedupe key
+``pass:<pass id>:<recipient>`` makes a re-run of the same pass queue nothing new.
+
+What the digest command calls::
+
+    enqueue_digest(store, email, content, period_end=..., created_at=now)   # key digest:<end>
+    deliver_outbox(store, email, now=now)                                   # with --send
+
+``--dry-run``: ``compose_pass_messages`` / ``compose_digest`` build the same
+:class:`ComposedMessage` without touching the database; ``write_eml(m.body, out_dir,
+m.eml_name)`` writes each one to a ``.eml`` file instead of queueing and sending it.
+
+Headers. Every header is built by the standard library from values that are checked first: a
+line break (CR, LF or any other character ``str.splitlines`` breaks on) or a NUL in a header
+value, an address or an image's Content-ID or file name is refused by :func:`build_message` with
+a ``ValueError`` naming the header. The compose functions first pass the renderer's subject
+through :func:`header_text`, which turns control characters and line breaks into single spaces,
+so a series called ``"x\\r\\nBcc: y@z"`` gives the subject text ``x Bcc: y@z`` on one line, not a
+header. As a last check, the built bytes are parsed again and their header names compared with
+the ones intended.
+
+Delivery (DESIGN.md section 12). :func:`deliver_outbox` opens one connection for all due
+messages (a new one only if the server drops it), sends each, and marks each sent in its own
+commit right after the server's acceptance. A message that fails (connection refused, timeout,
+TLS or login failure, a 4xx or 5xx reply) stays in the outbox and is retried with back-off
+(``Store.mark_failed``: 1 min, doubling, at most 6 h); nothing is ever dropped. A message the
+server accepted for some recipients and refused for others counts as sent (retrying would send
+it twice to the others); the refused addresses are in the report. The one case in which a
+message can go out twice: the server accepted it and the process died (or the connection was
+lost before the server's reply arrived) before ``mark_sent`` committed. The retry then sends the
+same bytes with the same Message-ID, which lets a receiving system recognise the copy.
+
+Security: ``none`` (plain SMTP), ``starttls`` (plain, then STARTTLS; a server that does not offer
+it is an error, never a fall-back to plain text), ``tls`` (TLS from the first byte). Certificates
+are verified against the system's trust store with the host name checked
+(``ssl.create_default_context()``; OpenSSL honours ``SSL_CERT_FILE`` for a private CA); callers
+may pass their own ``ssl_context``. Login happens only when ``username_env`` and
+``password_env`` are configured and both variables are set; they are read at send time and
+never stored, logged or put in an error text; a password is never sent over ``security: none``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import re
+import smtplib
+import ssl
+import unicodedata
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from email.headerregistry import Address
+from email.message import EmailMessage, MIMEPart
+from email.parser import BytesHeaderParser
+from email.policy import SMTP
+from email.policy import default as default_policy
+from email.utils import format_datetime, make_msgid
+from pathlib import Path
+from typing import NamedTuple, Protocol
+
+from monitor.config import Email, PlumblineConfig, models_of_feed
+from monitor.store import OutboxMessage, Store, utc_text
+
+# --------------------------------------------------------------------------- content
+
+
+class InlineImage(NamedTuple):
+    """A PNG shown inside the HTML part, referred to there as ``cid:<cid>``."""
+
+    cid: str
+    png: bytes
+    filename: str
+
+
+class MessageContent(Protocol):
+    """What a renderer returns for one message."""
+
+    @property
+    def subject(self) -> str: ...
+    @property
+    def text(self) -> str: ...
+    @property
+    def html(self) -> str: ...
+    @property
+    def inline_images(self) -> Sequence[tuple[str, bytes, str]]: ...
+
+
+@dataclass(frozen=True)
+class MailContent:
+    """The neutral content of one message (a :class:`MessageContent`)."""
+
+    subject: str
+    text: str
+    html: str
+    inline_images: Sequence[InlineImage] = ()
+
+
+Renderer = Callable[[str, tuple[str, ...]], MessageContent]
+"""``render(recipient, models)``: the content of one recipient's message for a pass."""
+
+# --------------------------------------------------------------------------- headers
+
+# Headers build_message sets itself; callers' extra headers may not replace them.
+_OWN_HEADERS = frozenset({
+    "from", "to", "cc", "bcc", "subject", "date", "message-id", "mime-version",
+    "auto-submitted", "content-type", "content-transfer-encoding", "content-disposition",
+    "content-id", "reply-to", "sender",
+})  # fmt: skip
+_HEADER_NAME = re.compile(r"^[!-9;-~]+$")  # RFC 5322 field name: printable ASCII but ':'
+_CID = re.compile(r"^[A-Za-z0-9!#$&'*+/=?^_`{|}~.-]+(@[A-Za-z0-9.-]+)?$")
+_CID_REFERENCE = re.compile(r"""cid:([^"'\s<>)]+)""")
+_PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+
+
+def _check_header_value(header: str, value: str) -> None:
+    if not isinstance(value, str):
+        raise TypeError(f"e-mail header {header}: expected text, got {type(value).__name__}")
+    # Padding makes a trailing line break count too ("a\n".splitlines() is one line).
+    if len(f"x{value}x".splitlines()) > 1 or "\x00" in value:
+        raise ValueError(
+            f"e-mail header {header}: {value!r} contains a line break or NUL, which could start "
+            "a new header; header values must be one line (see header_text())"
+        )
+
+
+def header_text(value: str) -> str:
+    """``value`` as one line for a header: control characters and line breaks become spaces,
+    runs of white space one space. Use it for any header text made from data (series names)."""
+    spaced = "".join(" " if unicodedata.category(char) == "Cc" else char for char in value)
+    return " ".join(spaced.split())
+
+
+def _parse_address(header: str, value: str) -> Address:
+    """One mailbox (``name@example.org`` or ``Name <name@example.org>``), or ValueError."""
+    _check_header_value(header, value)
+    try:
+        parsed = SMTP.header_factory(header, value)
+        addresses = parsed.addresses
+        defects = parsed.defects
+    except Exception as exc:  # the header parser raises IndexError etc. on some inputs
+        raise ValueError(f"e-mail header {header}: {value!r} is not an address") from exc
+    if len(addresses) != 1 or defects or not addresses[0].username or not addresses[0].domain:
+        raise ValueError(
+            f"e-mail header {header}: {value!r} is not one address like name@example.org"
+        )
+    address: Address = addresses[0]
+    if not address.addr_spec.isascii():
+        raise ValueError(
+            f"e-mail header {header}: {value!r}: addresses with non-ASCII characters need "
+            "SMTPUTF8, which Plumbline does not use"
+        )
+    return address
+
+
+def recipient_key(address: str) -> str:
+    """The form of an address used to group and name messages: the domain in lower case (the
+    local part is kept as written, since RFC 5321 lets a server tell its cases apart)."""
+    parsed = _parse_address("To", address)
+    return f"{parsed.username}@{parsed.domain.lower()}"
+
+
+def _message_id(sender: Address, dedupe_key: str | None) -> str:
+    if dedupe_key is None:
+        return make_msgid(domain=sender.domain)
+    # Stable for a given sender and key: a message composed again after a crash, or sent
+    # twice in the one unavoidable case, carries the same id.
+    digest = hashlib.sha256(f"plumbline\0{sender.addr_spec}\0{dedupe_key}".encode()).hexdigest()
+    return f"<{digest[:40]}@{sender.domain}>"
+
+
+def build_message(
+    *,
+    sender: str,
+    recipients: Sequence[str],
+    subject: str,
+    text: str,
+    html: str,
+    inline_images: Iterable[tuple[str, bytes, str]] = (),
+    headers: Mapping[str, str] | None = None,
+    dedupe_key: str | None = None,
+    date: datetime | None = None,
+) -> bytes:
+    """The whole message as bytes (CRLF line ends), ready for the outbox or a ``.eml`` file.
+
+    Structure: ``multipart/alternative`` of a ``text/plain`` part and the HTML, which becomes
+    ``multipart/related`` with each PNG as an inline part whose ``Content-ID`` is ``<cid>``.
+    Headers: From, To (all ``recipients``), Subject, Date (``date``, default now), Message-ID
+    (derived from ``dedupe_key`` when given, else random), ``Auto-Submitted: auto-generated``
+    (RFC 3834, so auto-responders stay quiet), then ``headers``. Raises ValueError for a line
+    break in any header value, a malformed address, a non-PNG image, a bad or repeated
+    Content-ID, or a ``cid:`` in the HTML with no image behind it.
+    """
+    from_address = _parse_address("From", sender)
+    if isinstance(recipients, str):
+        raise TypeError("recipients is a sequence of addresses, not one string")
+    to_addresses = [_parse_address("To", recipient) for recipient in recipients]
+    if not to_addresses:
+        raise ValueError("a message needs at least one recipient")
+    _check_header_value("Subject", subject)
+    moment = datetime.now(UTC) if date is None else date
+    if moment.tzinfo is None or moment.utcoffset() is None:
+        raise ValueError("the Date of a message needs a time zone")
+    if dedupe_key is not None:
+        _check_header_value("Message-ID", dedupe_key)
+    extra = dict(headers or {})
+    for name, value in extra.items():
+        if not _HEADER_NAME.match(name) or name.lower() in _OWN_HEADERS:
+            raise ValueError(f"e-mail header name {name!r} is not allowed here")
+        _check_header_value(name, value)
+
+    message = EmailMessage(policy=SMTP)
+    message["From"] = from_address
+    message["To"] = to_addresses
+    message["Subject"] = subject
+    message["Date"] = format_datetime(moment)
+    message["Message-ID"] = _message_id(from_address, dedupe_key)
+    message["Auto-Submitted"] = "auto-generated"
+    for name, value in extra.items():
+        message[name] = value
+    message["MIME-Version"] = "1.0"
+    message.make_alternative()
+
+    # Parts are MIMEPart, not EmailMessage, so they carry no MIME-Version header of their own.
+    # Quoted-printable keeps the body 7-bit clean for servers without 8BITMIME.
+    text_part = MIMEPart(policy=SMTP)
+    text_part.set_content(text, subtype="plain", cte="quoted-printable")
+    html_part = MIMEPart(policy=SMTP)
+    html_part.set_content(html, subtype="html", cte="quoted-printable")
+    cids: set[str] = set()
+    for cid, png, filename in inline_images:
+        if not isinstance(cid, str) or not _CID.match(cid):
+            raise ValueError(f"inline image Content-ID {cid!r} is not like chart-1@plumbline")
+        if cid in cids:
+            raise ValueError(f"inline image Content-ID {cid!r} is used twice")
+        _check_header_value("Content-Disposition filename", filename)
+        if not bytes(png).startswith(_PNG_SIGNATURE):
+            raise ValueError(f"inline image {cid!r} is not a PNG")
+        cids.add(cid)
+        html_part.add_related(
+            bytes(png), maintype="image", subtype="png", cid=f"<{cid}>", filename=filename,
+            disposition="inline",
+        )
+    if cids:
+        html_part.set_param("type", "text/html")  # RFC 2387: the root part's type
+    missing = sorted(set(_CID_REFERENCE.findall(html)) - cids)
+    if missing:
+        raise ValueError(f"the HTML refers to cid:{missing[0]} but no inline image has that id")
+    # typeshed wants an EmailMessage here; the library itself attaches MIMEParts.
+    message.attach(text_part)  # type: ignore[arg-type]
+    message.attach(html_part)  # type: ignore[arg-type]
+
+    data = message.as_bytes()
+    _verify_header_names(data, [*_BASE_HEADERS, *(name.lower() for name in extra)])
+    return data
+
+
+_BASE_HEADERS = (
+    "from", "to", "subject", "date", "message-id", "auto-submitted", "mime-version",
+    "content-type",
+)  # fmt: skip
+
+
+def _verify_header_names(data: bytes, expected: Sequence[str]) -> None:
+    parsed = BytesHeaderParser(policy=default_policy).parsebytes(data)
+    found = sorted(name.lower() for name in parsed)
+    if found != sorted(expected):
+        raise ValueError(
+            f"the message's headers came out as {found}, not {sorted(expected)}; not sending it"
+        )
+
+
+# --------------------------------------------------------------------------- composing
+
+
+@dataclass(frozen=True)
+class ComposedMessage:
+    """One built message, before it is queued (or written to a ``.eml`` file)."""
+
+    kind: str  # pass | digest
+    dedupe_key: str
+    recipients: tuple[str, ...]  # envelope addresses (addr-spec form)
+    subject: str
+    body: bytes
+    created_at: datetime
+    pass_id: int | None
+    models: tuple[str, ...]  # the models it covers (empty for the digest)
+
+    @property
+    def eml_name(self) -> str:
+        """A file name for ``write_eml``: the dedupe key with ``:`` as ``-``."""
+        return self.dedupe_key.replace(":", "-")
+
+
+@dataclass(frozen=True)
+class QueuedMessage:
+    outbox_id: int
+    dedupe_key: str
+    recipients: tuple[str, ...]
+    models: tuple[str, ...]
+    newly_queued: bool  # False when a message with this dedupe key was queued before
+
+
+def model_owners(config: PlumblineConfig) -> dict[str, tuple[str, ...]]:
+    """Each model's ``owners`` (the loader fills in ``notify.email.to`` for a model naming none)."""
+    return {name: tuple(model.owners or ()) for name, model in config.models.items()}
+
+
+def models_to_notify(store: Store, config: PlumblineConfig, pass_id: int) -> frozenset[str]:
+    """Models with findings raised or cleared in ``pass_id``, not acknowledged.
+
+    A feed-level finding (``stale_feed``, ``rejected_input``) counts for every model that reads
+    the feed. Ongoing findings do not count: they were reported when they were new.
+    """
+    findings = [
+        *store.list_findings(raised_in_pass=pass_id),
+        *store.list_findings(cleared_in_pass=pass_id),
+    ]
+    models: set[str] = set()
+    for finding in findings:
+        if finding.acknowledged_at is not None:
+            continue
+        if finding.model is not None:
+            models.add(finding.model)
+        elif finding.feed is not None:
+            models.update(models_of_feed(config, finding.feed))
+    return frozenset(models)
+
+
+def group_by_recipient(
+    owners_by_model: Mapping[str, Sequence[str]], models: Iterable[str]
+) -> dict[str, tuple[str, ...]]:
+    """Recipient → the sorted models among ``models`` that it owns; recipients in key order.
+
+    Addresses that differ only in the case of the domain are one recipient (the first spelling
+    seen is kept). A model missing from ``owners_by_model``, or with no owners, reaches nobody.
+    """
+    spelling: dict[str, str] = {}
+    owned: dict[str, set[str]] = {}
+    for model in sorted(set(models)):
+        for owner in owners_by_model.get(model, ()):
+            key = recipient_key(owner)
+            spelling.setdefault(key, _parse_address("To", owner).addr_spec)
+            owned.setdefault(key, set()).add(model)
+    return {spelling[key]: tuple(sorted(owned[key])) for key in sorted(owned)}
+
+
+def _compose(
+    email: Email,
+    content: MessageContent,
+    *,
+    kind: str,
+    dedupe_key: str,
+    recipients: Sequence[str],
+    created_at: datetime,
+    pass_id: int | None,
+    models: tuple[str, ...],
+) -> ComposedMessage:
+    subject = header_text(content.subject) or "Plumbline"
+    envelope = tuple(_parse_address("To", recipient).addr_spec for recipient in recipients)
+    body = build_message(
+        sender=email.sender, recipients=recipients, subject=subject, text=content.text,
+        html=content.html, inline_images=content.inline_images, dedupe_key=dedupe_key,
+        date=created_at,
+    )
+    return ComposedMessage(kind, dedupe_key, envelope, subject, body, created_at, pass_id, models)
+
+
+def compose_pass_messages(
+    email: Email,
+    *,
+    pass_id: int,
+    owners_by_model: Mapping[str, Sequence[str]],
+    changed_models: Iterable[str],
+    render: Renderer,
+    created_at: datetime,
+) -> list[ComposedMessage]:
+    """One message per recipient who owns a model in ``changed_models``; none when it is empty."""
+    messages = []
+    for recipient, models in group_by_recipient(owners_by_model, changed_models).items():
+        messages.append(
+            _compose(
+                email, render(recipient, models), kind="pass",
+                dedupe_key=f"pass:{pass_id}:{recipient_key(recipient)}", recipients=[recipient],
+                created_at=created_at, pass_id=pass_id, models=models,
+            )
+        )
+    return messages
+
+
+def compose_digest(
+    email: Email,
+    content: MessageContent,
+    *,
+    period_end: datetime,
+    created_at: datetime,
+    recipients: Sequence[str] | None = None,
+    pass_id: int | None = None,
+) -> ComposedMessage:
+    """The digest for the period ending ``period_end``, to ``recipients`` (default
+    ``notify.email.to``), all in one message with dedupe key ``digest:<period_end as UTC>``."""
+    return _compose(
+        email, content, kind="digest", dedupe_key=f"digest:{utc_text(period_end)}",
+        recipients=list(email.to if recipients is None else recipients), created_at=created_at,
+        pass_id=pass_id, models=(),
+    )
+
+
+def enqueue(store: Store, messages: Iterable[ComposedMessage]) -> list[QueuedMessage]:
+    """Put composed messages in the outbox; one already queued under its key is left as it was."""
+    queued = []
+    for message in messages:
+        row, created = store.enqueue_message(
+            kind=message.kind, dedupe_key=message.dedupe_key, recipients=message.recipients,
+            subject=message.subject, body=message.body, created_at=message.created_at,
+            pass_id=message.pass_id,
+        )
+        queued.append(
+            QueuedMessage(row.id, row.dedupe_key, row.recipients, message.models, created)
+        )
+    return queued
+
+
+def enqueue_pass_messages(
+    store: Store,
+    email: Email,
+    *,
+    pass_id: int,
+    owners_by_model: Mapping[str, Sequence[str]],
+    changed_models: Iterable[str],
+    render: Renderer,
+    created_at: datetime,
+) -> list[QueuedMessage]:
+    """Compose and queue a pass's messages (:func:`compose_pass_messages`, :func:`enqueue`)."""
+    return enqueue(
+        store,
+        compose_pass_messages(
+            email, pass_id=pass_id, owners_by_model=owners_by_model,
+            changed_models=changed_models, render=render, created_at=created_at,
+        ),
+    )
+
+
+def enqueue_digest(
+    store: Store,
+    email: Email,
+    content: MessageContent,
+    *,
+    period_end: datetime,
+    created_at: datetime,
+    recipients: Sequence[str] | None = None,
+    pass_id: int | None = None,
+) -> QueuedMessage:
+    """Compose and queue the digest (:func:`compose_digest`); queued at most once per period."""
+    message = compose_digest(
+        email, content, period_end=period_end, created_at=created_at, recipients=recipients,
+        pass_id=pass_id,
+    )
+    return enqueue(store, [message])[0]
+
+
+_UNSAFE_FILE_CHARS = re.compile(r"[^A-Za-z0-9@+=._-]+")
+
+
+def write_eml(message_bytes: bytes, out_dir: str | Path, name: str) -> Path:
+    """Write a message to ``out_dir/<name>.eml`` (for ``--dry-run``) and return the path.
+
+    ``name`` is reduced to letters, digits and ``@+=._-``; the file is written beside its final
+    name and renamed, so a reader never sees half a message.
+    """
+    stem = _UNSAFE_FILE_CHARS.sub("_", name.removesuffix(".eml")).strip("._") or "message"
+    folder = Path(out_dir)
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{stem}.eml"
+    partial = folder / f".{stem}.eml.part"
+    partial.write_bytes(message_bytes)
+    os.replace(partial, path)
+    return path
+
+
+# --------------------------------------------------------------------------- delivery
+
+
+@dataclass(frozen=True)
+class DeliveryFailure:
+    outbox_id: int
+    error: str  # one line, as stored in the outbox's last_error; never holds a secret
+    next_attempt_at: datetime
+
+
+@dataclass(frozen=True)
+class DeliveryReport:
+    sent: tuple[int, ...] = ()  # outbox ids the server accepted, in sending order
+    failed: tuple[DeliveryFailure, ...] = ()
+    refused_recipients: tuple[tuple[int, str], ...] = ()  # (outbox id, address) of sent ones
+    connections: int = 0  # SMTP connections opened (0 when nothing was due)
+    notes: tuple[str, ...] = ()  # e.g. credentials configured but not in the environment
+
+
+class _NoPlainPassword(Exception):
+    pass
+
+
+_Credentials = tuple[str, str]
+
+
+def _credentials(email: Email) -> tuple[_Credentials | None, tuple[str, ...]]:
+    if email.username_env is None or email.password_env is None:
+        return None, ()
+    user = os.environ.get(email.username_env)
+    password = os.environ.get(email.password_env)
+    missing = [
+        name for name, value in ((email.username_env, user), (email.password_env, password))
+        if not value
+    ]
+    if missing or user is None or password is None:
+        return None, (
+            f"{' and '.join(missing)} not set in the environment: connecting without login",
+        )
+    return (user, password), ()
+
+
+def _connect(
+    email: Email, timeout: float, context: ssl.SSLContext, credentials: _Credentials | None
+) -> smtplib.SMTP:
+    if credentials is not None and email.security == "none":
+        raise _NoPlainPassword(
+            "refusing to send the SMTP password over an unencrypted connection "
+            "(security: none); use starttls or tls"
+        )
+    session: smtplib.SMTP
+    if email.security == "tls":
+        session = smtplib.SMTP_SSL(
+            email.smtp_host, email.smtp_port, timeout=timeout, context=context
+        )
+    else:
+        session = smtplib.SMTP(email.smtp_host, email.smtp_port, timeout=timeout)
+    try:
+        session.ehlo()
+        if email.security == "starttls":
+            # Raises SMTPNotSupportedError when the server does not offer STARTTLS: never
+            # carry on in plain text.
+            session.starttls(context=context)
+            session.ehlo()
+        if credentials is not None:
+            session.login(*credentials)
+    except BaseException:
+        session.close()
+        raise
+    return session
+
+
+def _describe(stage: str, exc: BaseException) -> str:
+    if isinstance(exc, smtplib.SMTPRecipientsRefused):
+        detail = "; ".join(
+            f"{address}: {code} {reply.decode(errors='replace')}"
+            for address, (code, reply) in exc.recipients.items()
+        )
+        text = f"recipients refused: {detail}"
+    elif isinstance(exc, smtplib.SMTPResponseException):
+        reply = exc.smtp_error
+        reply_text = reply.decode(errors="replace") if isinstance(reply, bytes) else str(reply)
+        text = f"{type(exc).__name__}: {exc.smtp_code} {reply_text}"
+    else:
+        text = f"{type(exc).__name__}: {exc}" if str(exc) else type(exc).__name__
+    return header_text(f"{stage}: {text}")[:500]
+
+
+def _quit(session: smtplib.SMTP) -> None:
+    try:
+        session.quit()
+    except OSError:
+        session.close()
+
+
+def deliver_outbox(
+    store: Store,
+    email: Email,
+    *,
+    now: datetime,
+    connect_timeout: float | None = None,
+    ssl_context: ssl.SSLContext | None = None,
+    batch_size: int = 100,
+) -> DeliveryReport:
+    """Send every outbox message due at ``now`` (the real clock, normally) over one connection.
+
+    Nothing due: no connection is made. Each accepted message is marked sent at once; each
+    failure is recorded with its back-off, and when the server cannot be reached every due
+    message is marked failed without trying again in this run. ``connect_timeout`` (seconds)
+    overrides ``notify.email.timeout``; ``ssl_context`` replaces the default verifying context.
+    """
+    timeout = email.timeout.total_seconds() if connect_timeout is None else connect_timeout
+    context = ssl.create_default_context() if ssl_context is None else ssl_context
+    credentials, notes = _credentials(email)
+    sent: list[int] = []
+    failed: list[DeliveryFailure] = []
+    refused: list[tuple[int, str]] = []
+    connections = 0
+    unreachable: str | None = None
+    session: smtplib.SMTP | None = None
+    handled: set[int] = set()
+
+    def fail(message: OutboxMessage, error: str) -> None:
+        next_at = store.mark_failed(message.id, at=now, error=error)
+        failed.append(DeliveryFailure(message.id, error, next_at))
+
+    try:
+        while True:
+            batch = [m for m in store.due_messages(now, limit=batch_size) if m.id not in handled]
+            if not batch:
+                break
+            for message in batch:
+                handled.add(message.id)
+                if unreachable is not None:
+                    fail(message, unreachable)
+                    continue
+                if session is None:
+                    try:
+                        session = _connect(email, timeout, context, credentials)
+                        connections += 1
+                    except (OSError, _NoPlainPassword) as exc:  # SMTPException is an OSError
+                        unreachable = _describe("connect", exc)
+                        fail(message, unreachable)
+                        continue
+                try:
+                    rejected = session.sendmail(
+                        email.sender, list(message.recipients), message.body
+                    )
+                except OSError as exc:  # smtplib.SMTPException is an OSError too
+                    # A refusal leaves the connection usable (smtplib sends RSET); a lost
+                    # connection or a 421 reply does not, and the next message opens a new one.
+                    usable = (
+                        isinstance(exc, smtplib.SMTPException)
+                        and not isinstance(exc, smtplib.SMTPServerDisconnected)
+                        and session.sock is not None
+                    )
+                    if not usable:
+                        session.close()
+                        session = None
+                    fail(message, _describe("send", exc))
+                    continue
+                store.mark_sent(message.id, at=now)
+                sent.append(message.id)
+                refused.extend((message.id, address) for address in sorted(rejected))
+    finally:
+        if session is not None:
+            _quit(session)
+    return DeliveryReport(tuple(sent), tuple(failed), tuple(refused), connections, notes)
+
+
+__all__ = [
+    "ComposedMessage",
+    "DeliveryFailure",
+    "DeliveryReport",
+    "InlineImage",
+    "MailContent",
+    "MessageContent",
+    "QueuedMessage",
+    "Renderer",
+    "build_message",
+    "compose_digest",
+    "compose_pass_messages",
+    "deliver_outbox",
+    "enqueue",
+    "enqueue_digest",
+    "enqueue_pass_messages",
+    "group_by_recipient",
+    "header_text",
+    "model_owners",
+    "models_to_notify",
+    "recipient_key",
+    "write_eml",
+]
