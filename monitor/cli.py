@@ -22,6 +22,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "fit",
     "breaks",
     "schema",
+    "backup",
 )
 
 
