@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import socket
 import ssl
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from datetime import timedelta
 from typing import Any
@@ -48,6 +48,7 @@ class RecordingHandler:
         self.received: list[Received] = []
         self.refuse: set[str] = set()
         self.defer_data = 0
+        self.after_storing: Callable[[], None] | None = None  # runs before the 250 reply
 
     async def handle_RCPT(
         self, server: SMTP, session: Session, envelope: Envelope, address: str,
@@ -73,6 +74,8 @@ class RecordingHandler:
                 session.auth_data if session.authenticated else None,
             )
         )
+        if self.after_storing is not None:
+            self.after_storing()
         return "250 Message accepted for delivery"
 
 
