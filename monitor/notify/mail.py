@@ -29,6 +29,9 @@ What the digest command calls::
     enqueue_digest(store, email, content, period_end=..., created_at=now)   # key digest:<end>
     deliver_outbox(store, email, now=now)                                   # with --send
 
+Clocks: give ``created_at`` and ``now`` from the real clock. The outbox is about delivery, not
+the business clock: a message created at a future ``--as-of`` would not be due until then.
+
 ``--dry-run``: ``compose_pass_messages`` / ``compose_digest`` build the same
 :class:`ComposedMessage` without touching the database; ``write_eml(m.body, out_dir,
 m.eml_name)`` writes each one to a ``.eml`` file instead of queueing and sending it.
@@ -672,25 +675,9 @@ def deliver_outbox(
 
 
 __all__ = [
-    "ComposedMessage",
-    "DeliveryFailure",
-    "DeliveryReport",
-    "InlineImage",
-    "MailContent",
-    "MessageContent",
-    "QueuedMessage",
-    "Renderer",
-    "build_message",
-    "compose_digest",
-    "compose_pass_messages",
-    "deliver_outbox",
-    "enqueue",
-    "enqueue_digest",
-    "enqueue_pass_messages",
-    "group_by_recipient",
-    "header_text",
-    "model_owners",
-    "models_to_notify",
-    "recipient_key",
-    "write_eml",
-]
+    "ComposedMessage", "DeliveryFailure", "DeliveryReport", "InlineImage", "MailContent",
+    "MessageContent", "QueuedMessage", "Renderer", "build_message", "compose_digest",
+    "compose_pass_messages", "deliver_outbox", "enqueue", "enqueue_digest",
+    "enqueue_pass_messages", "group_by_recipient", "header_text", "model_owners",
+    "models_to_notify", "recipient_key", "write_eml",
+]  # fmt: skip

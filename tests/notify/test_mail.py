@@ -342,6 +342,21 @@ def test_starttls_checks_the_certificate_by_default(
     assert starttls_server.received == []
 
 
+def test_a_private_authority_through_ssl_cert_file(
+    tmp_path: Path, starttls_server: SmtpServer, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """What the README tells users with a company CA: OpenSSL's SSL_CERT_FILE, no code change."""
+    ca_file = tmp_path / "company-ca.pem"
+    starttls_server.certificates.ca.cert_pem.write_to_path(str(ca_file))
+    monkeypatch.setenv("SSL_CERT_FILE", str(ca_file))
+    email = starttls_server.email_config()
+    with open_store(tmp_path) as store:
+        enqueue_digest(store, email, digest_content(), period_end=PERIOD_END, created_at=NOW)
+        assert deliver_outbox(store, email, now=NOW).failed == ()
+    (received,) = starttls_server.received
+    assert received.tls and received.login == USER
+
+
 def test_starttls_is_never_skipped(tmp_path: Path, smtp_server: SmtpServer) -> None:
     """A server that does not offer STARTTLS gets nothing, not a plain-text session."""
     email = smtp_server.email_config(security="starttls")
