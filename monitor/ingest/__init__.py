@@ -61,7 +61,17 @@ from monitor.vocabulary import Finding, FindingKind, Severity
 
 log = logging.getLogger(__name__)
 
-RealClock = Callable[[], float]  # POSIX seconds, like time.time
+# The real clock (never the business clock): POSIX seconds like time.time, or an aware datetime.
+RealClock = Callable[[], float | datetime]
+
+
+def _seconds(real_clock: RealClock) -> float:
+    now = real_clock()
+    if isinstance(now, datetime):
+        if now.tzinfo is None:
+            raise ValueError("the real clock must give an aware datetime (or POSIX seconds)")
+        return now.timestamp()
+    return float(now)
 
 
 @dataclass(frozen=True)
@@ -135,6 +145,23 @@ class FileReport:
     duplicate_of: str | None  # the earlier file's name, for a duplicate
     findings: tuple[Finding, ...] = ()
 
+    @property
+    def whole_file_rejected(self) -> bool:
+        return self.outcome == FileOutcome.REJECTED
+
+    @property
+    def duplicate(self) -> bool:
+        return self.outcome == FileOutcome.DUPLICATE
+
+    @property
+    def raises_finding(self) -> bool:
+        return bool(self.findings)
+
+    @property
+    def reason(self) -> str:
+        """One line: why the file was refused, why it brought no rows, or ''."""
+        return self.note
+
 
 @dataclass(frozen=True)
 class FeedIngest:
@@ -169,7 +196,7 @@ def inspect_inbox(spec: IngestSpec, *, real_clock: RealClock = time.time) -> Inb
     return survey_inbox(
         spec.inbox,
         settle_seconds=spec.settle.total_seconds(),
-        real_clock=real_clock,
+        real_clock=lambda: _seconds(real_clock),
         detect_rename=spec.detect_rename,
     )
 
@@ -243,7 +270,7 @@ def commit_file(
     if data is None:
         return None
     sha = hashlib.sha256(data).hexdigest()
-    received = datetime.fromtimestamp(real_clock(), UTC)
+    received = datetime.fromtimestamp(_seconds(real_clock), UTC)
     for pending in store.files_awaiting_move(spec.feed):
         if pending.sha256 == sha:  # this very file, recorded before a crash
             return _committed_from_store(store, spec, pending, item.path)
@@ -295,6 +322,8 @@ def complete_move(
     record = committed.record
     target = record.stored_path
     source = committed.source
+    for folder in (target.parent, spec.rejected):
+        folder.mkdir(parents=True, exist_ok=True)
     if target.exists() and source.exists() and same_file(source, target):
         source.unlink()  # a move cut short between its link and its unlink
     elif not (target.exists() and _holds(target, record.sha256)):
@@ -318,7 +347,7 @@ def complete_move(
         if marker_target.exists():
             marker_target = target.parent / free_name(marker_target.name, [(target.parent, "")])
         move_no_clobber(marker, marker_target)
-    moved_at = datetime.fromtimestamp(real_clock(), UTC)
+    moved_at = datetime.fromtimestamp(_seconds(real_clock), UTC)
     record = store.mark_file_moved(
         record.id, at=moved_at, stored_path=None if target == record.stored_path else target
     )

@@ -75,7 +75,10 @@ def check_header(plan: ColumnPlan, header: Sequence[str], *, csv_text: bool = Tr
     missing = [name for name in plan.declared if name not in seen]
     if not missing:
         return None
-    if csv_text and header and all(_looks_like_a_value(cell) for cell in header):
+    # Real headers hold no numbers or dates; a first line of values does, and names none of
+    # the declared columns.
+    values_first = any(cell.strip() and _looks_like_a_value(cell) for cell in header)
+    if csv_text and values_first and not any(name in seen for name in plan.declared):
         return (
             "the first line holds values, not column names: the file has no header. "
             f"Add a header line naming the columns ({', '.join(plan.declared)})"
