@@ -2,14 +2,16 @@
 
 Standard library only (``email`` with ``policy.SMTP``, ``smtplib``, ``ssl``).
 
-What the renderer hands over (the neutral content)::
+What the renderer hands over is matched by shape, not by class (``monitor.notify.message``
+defines the classes; any object with these attributes will do)::
 
-    MailContent(subject: str, text: str, html: str, inline_images: Sequence[InlineImage] = ())
-    InlineImage(cid: str, png: bytes, filename: str)     # a NamedTuple: a plain 3-tuple works
+    content:       subject: str, text: str, html: str, images: Sequence[image]   (ContentLike)
+    image:         cid: str, png: bytes, filename: str  (ImageLike; a 3-tuple works too)
+    owner message: recipient: str, models: tuple[str, ...], dedupe_key: str, content
+                                                                              (OwnerMessageLike)
 
-Any object with the attributes ``subject``, ``text``, ``html`` and ``inline_images`` will do
-(:class:`MessageContent`). The HTML refers to each image as ``src="cid:<cid>"``; ``cid`` is a
-dot-atom such as ``chart-3@plumbline``.
+The HTML refers to each image as ``src="cid:<cid>"``; ``cid`` is a dot-atom such as
+``chart-3@plumbline``.
 
 What a pass calls (DESIGN.md section 5, step 7), when ``notify.email`` is configured::
 
@@ -19,10 +21,13 @@ What a pass calls (DESIGN.md section 5, step 7), when ``notify.email`` is config
                           render=render, created_at=now)      # render(recipient, models)
     report = deliver_outbox(store, config.notify.email, now=now)
 
-``render(recipient, models) -> MessageContent`` is called once per recipient with the sorted
-names of that recipient's models that have news, so an owner of two models gets one message
-covering both, and a pass with no new or cleared findings sends nothing. The dedupe key
-``pass:<pass id>:<recipient>`` makes a re-run of the same pass queue nothing new.
+``render(recipient, models) -> content`` is called once per recipient with the sorted names
+of that recipient's models that have news, so an owner of two models gets one message covering
+both, and a pass with no new or cleared findings sends nothing. The dedupe key
+``pass:<pass id>:<recipient>`` makes a re-run of the same pass queue nothing new. A renderer
+that groups by owner itself hands over owner messages instead:
+``enqueue(store, compose_owner_messages(email, messages, pass_id=..., created_at=now))`` keeps
+their dedupe keys and refuses two messages to one recipient.
 
 What the digest command calls::
 
@@ -83,7 +88,7 @@ from email.policy import SMTP
 from email.policy import default as default_policy
 from email.utils import format_datetime, make_msgid
 from pathlib import Path
-from typing import NamedTuple, Protocol
+from typing import Protocol
 
 from monitor.config import Email, PlumblineConfig, models_of_feed
 from monitor.store import OutboxMessage, Store, utc_text
@@ -91,15 +96,21 @@ from monitor.store import OutboxMessage, Store, utc_text
 # --------------------------------------------------------------------------- content
 
 
-class InlineImage(NamedTuple):
+class ImageLike(Protocol):
     """A PNG shown inside the HTML part, referred to there as ``cid:<cid>``."""
 
-    cid: str
-    png: bytes
-    filename: str
+    @property
+    def cid(self) -> str: ...
+    @property
+    def png(self) -> bytes: ...
+    @property
+    def filename(self) -> str: ...
 
 
-class MessageContent(Protocol):
+Image = ImageLike | tuple[str, bytes, str]
+
+
+class ContentLike(Protocol):
     """What a renderer returns for one message."""
 
     @property
@@ -109,21 +120,32 @@ class MessageContent(Protocol):
     @property
     def html(self) -> str: ...
     @property
-    def inline_images(self) -> Sequence[tuple[str, bytes, str]]: ...
+    def images(self) -> Sequence[Image]: ...
 
 
-@dataclass(frozen=True)
-class MailContent:
-    """The neutral content of one message (a :class:`MessageContent`)."""
+class OwnerMessageLike(Protocol):
+    """One pass message for one recipient, grouped by the renderer."""
 
-    subject: str
-    text: str
-    html: str
-    inline_images: Sequence[InlineImage] = ()
+    @property
+    def recipient(self) -> str: ...
+    @property
+    def models(self) -> tuple[str, ...]: ...
+    @property
+    def dedupe_key(self) -> str: ...
+    @property
+    def content(self) -> ContentLike: ...
 
 
-Renderer = Callable[[str, tuple[str, ...]], MessageContent]
+Renderer = Callable[[str, tuple[str, ...]], ContentLike]
 """``render(recipient, models)``: the content of one recipient's message for a pass."""
+
+
+def _image_fields(image: Image) -> tuple[str, bytes, str]:
+    if isinstance(image, tuple):
+        cid, png, filename = image
+        return cid, png, filename
+    return image.cid, image.png, image.filename
+
 
 # --------------------------------------------------------------------------- headers
 
@@ -202,7 +224,7 @@ def build_message(
     subject: str,
     text: str,
     html: str,
-    inline_images: Iterable[tuple[str, bytes, str]] = (),
+    inline_images: Iterable[Image] = (),
     headers: Mapping[str, str] | None = None,
     dedupe_key: str | None = None,
     date: datetime | None = None,
@@ -254,7 +276,7 @@ def build_message(
     html_part = MIMEPart(policy=SMTP)
     html_part.set_content(html, subtype="html", cte="quoted-printable")
     cids: set[str] = set()
-    for cid, png, filename in inline_images:
+    for cid, png, filename in map(_image_fields, inline_images):
         if not isinstance(cid, str) or not _CID.match(cid):
             raise ValueError(f"inline image Content-ID {cid!r} is not like chart-1@plumbline")
         if cid in cids:
@@ -373,7 +395,7 @@ def group_by_recipient(
 
 def _compose(
     email: Email,
-    content: MessageContent,
+    content: ContentLike,
     *,
     kind: str,
     dedupe_key: str,
@@ -386,7 +408,7 @@ def _compose(
     envelope = tuple(_parse_address("To", recipient).addr_spec for recipient in recipients)
     body = build_message(
         sender=email.sender, recipients=recipients, subject=subject, text=content.text,
-        html=content.html, inline_images=content.inline_images, dedupe_key=dedupe_key,
+        html=content.html, inline_images=content.images, dedupe_key=dedupe_key,
         date=created_at,
     )
     return ComposedMessage(kind, dedupe_key, envelope, subject, body, created_at, pass_id, models)
@@ -414,9 +436,38 @@ def compose_pass_messages(
     return messages
 
 
+def compose_owner_messages(
+    email: Email,
+    messages: Iterable[OwnerMessageLike],
+    *,
+    pass_id: int,
+    created_at: datetime,
+) -> list[ComposedMessage]:
+    """A pass's messages as grouped by the renderer, with their own dedupe keys. Two messages to
+    one recipient (by :func:`recipient_key`) are refused: each recipient gets one per pass."""
+    composed: list[ComposedMessage] = []
+    seen: dict[str, str] = {}
+    for message in messages:
+        key = recipient_key(message.recipient)
+        if key in seen:
+            raise ValueError(
+                f"two messages for {message.recipient} in pass {pass_id} ({seen[key]} and "
+                f"{message.dedupe_key}); a recipient gets one message covering all their models"
+            )
+        seen[key] = message.dedupe_key
+        composed.append(
+            _compose(
+                email, message.content, kind="pass", dedupe_key=message.dedupe_key,
+                recipients=[message.recipient], created_at=created_at, pass_id=pass_id,
+                models=tuple(message.models),
+            )
+        )
+    return composed
+
+
 def compose_digest(
     email: Email,
-    content: MessageContent,
+    content: ContentLike,
     *,
     period_end: datetime,
     created_at: datetime,
@@ -470,7 +521,7 @@ def enqueue_pass_messages(
 def enqueue_digest(
     store: Store,
     email: Email,
-    content: MessageContent,
+    content: ContentLike,
     *,
     period_end: datetime,
     created_at: datetime,
@@ -675,9 +726,9 @@ def deliver_outbox(
 
 
 __all__ = [
-    "ComposedMessage", "DeliveryFailure", "DeliveryReport", "InlineImage", "MailContent",
-    "MessageContent", "QueuedMessage", "Renderer", "build_message", "compose_digest",
-    "compose_pass_messages", "deliver_outbox", "enqueue", "enqueue_digest",
-    "enqueue_pass_messages", "group_by_recipient", "header_text", "model_owners",
-    "models_to_notify", "recipient_key", "write_eml",
+    "ComposedMessage", "ContentLike", "DeliveryFailure", "DeliveryReport", "Image", "ImageLike",
+    "OwnerMessageLike", "QueuedMessage", "Renderer", "build_message", "compose_digest",
+    "compose_owner_messages", "compose_pass_messages", "deliver_outbox", "enqueue",
+    "enqueue_digest", "enqueue_pass_messages", "group_by_recipient", "header_text",
+    "model_owners", "models_to_notify", "recipient_key", "write_eml",
 ]  # fmt: skip

@@ -10,6 +10,8 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Sequence
+from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from email.message import EmailMessage
 from email.parser import BytesParser
@@ -22,11 +24,11 @@ from PIL import Image
 
 from monitor.config import PlumblineConfig, parse_config
 from monitor.notify.mail import (
-    InlineImage,
-    MailContent,
     build_message,
     compose_digest,
+    compose_owner_messages,
     deliver_outbox,
+    enqueue,
     enqueue_digest,
     enqueue_pass_messages,
     group_by_recipient,
@@ -89,6 +91,33 @@ notify:
 """
 
 
+# The renderer's structures are matched by shape; these have the shape monitor.notify.message
+# gives them (a content with ``images``, an image with cid/png/filename, an owner message).
+
+
+@dataclass(frozen=True)
+class InlineImage:
+    cid: str
+    png: bytes
+    filename: str
+
+
+@dataclass(frozen=True)
+class MailContent:
+    subject: str
+    text: str
+    html: str
+    images: Sequence[InlineImage | tuple[str, bytes, str]] = ()
+
+
+@dataclass(frozen=True)
+class OwnerMessage:
+    recipient: str
+    models: tuple[str, ...]
+    dedupe_key: str
+    content: MailContent
+
+
 def png(colour: tuple[int, int, int]) -> bytes:
     buffer = io.BytesIO()
     Image.new("RGB", (8, 6), colour).save(buffer, format="PNG")
@@ -111,7 +140,7 @@ def digest_content() -> MailContent:
             '<img src="cid:intervals-1@plumbline" alt="Actuals against intervals">'
             "<img src='cid:slope-1@plumbline' alt='Slope across refits'></body></html>"
         ),
-        inline_images=CHARTS,
+        images=CHARTS,
     )
 
 
@@ -219,7 +248,8 @@ def test_message_id_follows_the_dedupe_key() -> None:
     [
         ({"html": '<img src="cid:missing@plumbline">'}, "cid:missing@plumbline"),
         ({"inline_images": [("a b", png((0, 0, 0)), "a.png")]}, "Content-ID"),
-        ({"inline_images": [CHARTS[0], CHARTS[0]]}, "used twice"),
+        ({"inline_images": [CHARTS[0], ("intervals-1@plumbline", png((9, 9, 9)), "b.png")]},
+         "used twice"),
         ({"inline_images": [("x@plumbline", b"<svg/>", "x.svg")]}, "not a PNG"),
         ({"recipients": []}, "at least one recipient"),
         ({"recipients": ["a@example.org, b@example.org"]}, "not one address"),
@@ -684,6 +714,39 @@ def test_addresses_differing_in_domain_case_are_one_recipient() -> None:
         "OPS@example.org": ("b",),
         "ops@example.org": ("a",),
     }
+
+
+def test_owner_messages_grouped_by_the_renderer(tmp_path: Path, smtp_server: SmtpServer) -> None:
+    email = smtp_server.email_config()
+    content = MailContent(
+        subject="Plumbline: pick_hours and receiving_hours",
+        text="Both models have news.",
+        html='<p>Both models.</p><img src="cid:c@plumbline">',
+        images=[("c@plumbline", png((5, 5, 5)), "c.png")],  # a plain 3-tuple image
+    )
+    messages = [
+        OwnerMessage("ops-lead@example.org", ("pick_hours", "receiving_hours"),
+                     "pass:4:ops-lead@example.org", content),
+        OwnerMessage("picking@example.org", ("pick_hours",), "pass:4:picking@example.org",
+                     content),
+    ]
+    with open_store(tmp_path) as store:
+        pass_id = new_pass(store)
+        queued = enqueue(
+            store, compose_owner_messages(email, messages, pass_id=pass_id, created_at=NOW)
+        )
+        assert [(q.dedupe_key, q.models, q.newly_queued) for q in queued] == [
+            ("pass:4:ops-lead@example.org", ("pick_hours", "receiving_hours"), True),
+            ("pass:4:picking@example.org", ("pick_hours",), True),
+        ]
+        assert len(deliver_outbox(store, email, now=NOW).sent) == 2
+    assert sorted(r.rcpt_tos for r in smtp_server.received) == [
+        ("ops-lead@example.org",), ("picking@example.org",)
+    ]
+
+    twice = [*messages, OwnerMessage("ops-lead@EXAMPLE.org", ("yard_hours",), "pass:4:x", content)]
+    with pytest.raises(ValueError, match="one message covering all their models"):
+        compose_owner_messages(email, twice, pass_id=4, created_at=NOW)
 
 
 # --------------------------------------------------------------------------- dry run
