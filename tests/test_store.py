@@ -590,7 +590,8 @@ def test_outbox_dedupes_retries_with_backoff_and_never_drops(store: Store) -> No
 # ----------------------------------------------------------------------------- backup
 
 
-def test_backup_of_a_live_database_is_a_consistent_copy(tmp_path: Path) -> None:
+@pytest.mark.parametrize("readonly", [False, True], ids=["read-write", "read-only"])
+def test_backup_of_a_live_database_is_a_consistent_copy(tmp_path: Path, readonly: bool) -> None:
     path = tmp_path / "live.sqlite"
     with Store.open(path) as store:
         rows = [actual(f"s{i:03d}", n, float(n), float(i)) for i in range(300) for n in range(150)]
@@ -617,7 +618,7 @@ def test_backup_of_a_live_database_is_a_consistent_copy(tmp_path: Path) -> None:
     try:
         while len(written) < 20:
             time.sleep(0.005)
-        with Store.open(path) as store:
+        with Store.open(path, readonly=readonly) as store:
             result = store.backup(tmp_path / "copies" / "copy.sqlite")
         before_stop = len(written)
         while len(written) < before_stop + 20:
