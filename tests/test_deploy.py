@@ -233,8 +233,8 @@ def test_sandbox_lets_the_example_config_write_where_it_must(name: str) -> None:
     unit = SYSTEMD / f"{name}.service"
     config = load_config(SYSTEMD / "plumbline.yaml.example")
     writable = [Path("/var/lib") / unit_value(unit, "Service", "StateDirectory")]
-    writable += [Path(p.lstrip("-")) for v in unit_values(unit, "Service", "ReadWritePaths")
-                 for p in v.split()]  # fmt: skip
+    for entry in unit_values(unit, "Service", "ReadWritePaths"):
+        writable += [Path(path.lstrip("-")) for path in entry.split()]
     for path in config_write_paths(config):
         assert is_under(path, writable), f"{name}: {path} is not writable in the sandbox"
     # The lock file and the -wal/-shm files sit beside the database, in the state folder.
@@ -411,8 +411,10 @@ def test_container_file_shape() -> None:
 
 def test_container_config_writes_only_to_the_volume() -> None:
     config = load_config(CONTAINER / "plumbline.yaml.example")
-    volumes = [Path(v) for word, a in containerfile_instructions() if word == "VOLUME"
-               for v in json.loads(a)]  # fmt: skip
+    volumes: list[Path] = []
+    for word, args in containerfile_instructions():
+        if word == "VOLUME":
+            volumes += [Path(path) for path in json.loads(args)]
     for path in config_write_paths(config):
         assert is_under(path, volumes), f"{path} is outside the image's volumes"
 
