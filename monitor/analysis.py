@@ -88,6 +88,8 @@ class BatchOutput:
     prediction: BatchPrediction  # (s, M)
     outside_range: BoolArray  # (s, M)
     above_leverage: BoolArray  # (s, M)
+    range_excess: FloatArray  # (s, M) distance beyond the fitted range / the range, 0 inside
+    leverage_ratio: FloatArray  # (s, M) leverage / the window's largest leverage
 
     @property
     def extrapolation(self) -> BoolArray:
@@ -177,12 +179,23 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
         empty = np.full(batch.plan_mask.shape, np.nan)
         prediction = BatchPrediction(empty, empty, empty, empty, empty, empty, batch.level)
     if k:
-        outside = (plan_x < fit.x_min[:, None, :]) | (plan_x > fit.x_max[:, None, :])
+        low, high = fit.x_min[:, None, :], fit.x_max[:, None, :]
+        outside = (plan_x < low) | (plan_x > high)
         outside_range = outside.any(axis=2) & batch.plan_mask
+        with np.errstate(all="ignore"):
+            beyond = np.maximum(np.maximum(low - plan_x, plan_x - high), 0.0)
+            span = np.where(high > low, high - low, np.inf)
+            range_excess = np.where(batch.plan_mask, np.nanmax(beyond / span, axis=2), 0.0)
     else:
         outside_range = np.zeros(batch.plan_mask.shape, dtype=bool)
-    max_leverage = np.nanmax(np.where(fit_rows, fit.leverage, -np.inf), axis=1)
+        range_excess = np.zeros(batch.plan_mask.shape)
+    max_leverage = np.max(np.where(fit_rows, np.nan_to_num(fit.leverage), -np.inf), axis=1)
     above_leverage = batch.plan_mask & (prediction.leverage > max_leverage[:, None])
+    with np.errstate(all="ignore"):
+        leverage_ratio = np.where(batch.plan_mask & (max_leverage[:, None] > 0),
+                                  prediction.leverage / max_leverage[:, None], 0.0)
+    range_excess = np.nan_to_num(range_excess, nan=0.0, posinf=0.0)
+    leverage_ratio = np.nan_to_num(leverage_ratio, nan=0.0, posinf=0.0)
     return BatchOutput(
         window_mask=fit_rows,
         fit=fit,
@@ -200,6 +213,8 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
         prediction=prediction,
         outside_range=outside_range,
         above_leverage=above_leverage,
+        range_excess=range_excess,
+        leverage_ratio=leverage_ratio,
     )
 
 

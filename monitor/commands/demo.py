@@ -1,0 +1,81 @@
+"""``plumbline demo [--dir DIR]``: build a workspace from the demo scenario and replay it.
+
+Writes the invented scenario (DESIGN.md section 10) into DIR (a new temporary folder by
+default), replays its weeks in order in this process — drop the week's files, run a pass with
+the business clock at that week — renders the digest once at the end, and prints its path and
+the findings at a glance.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from monitor.commands.one_pass import pass_notifier
+from monitor.config import PlumblineConfig
+from monitor.demo import WEEK_COUNT, ScenarioWeek
+from monitor.demo.replay import replay_scenario
+from monitor.errors import UsageError
+from monitor.notify.digest import write_digest
+from monitor.passes import PassReport
+from monitor.store import Store
+from monitor.vocabulary import FindingState
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "demo", help="build the demo workspace and replay it",
+        description="Write the invented demo scenario into a workspace, replay its weeks in "
+        "order, render the digest and show the findings.",
+    )
+    parser.add_argument("--dir", type=Path, help="the workspace (default: a new temporary "
+                        "folder); must be empty or not exist")
+    parser.set_defaults(handler=handle)
+
+
+def handle(args: argparse.Namespace) -> int:
+    if args.dir is None:
+        root = Path(tempfile.mkdtemp(prefix="plumbline-demo-"))
+    else:
+        root = args.dir.resolve()
+        if root.exists() and any(root.iterdir()):
+            raise UsageError(f"{root} is not empty; give a new or empty folder for the demo")
+    started = time.perf_counter()
+    tty = sys.stdout.isatty()
+
+    def progress(week: ScenarioWeek, report: PassReport) -> None:
+        line = (f"replaying week {week.number:3d} of {WEEK_COUNT} ({week.week_ending}): "
+                f"{len(report.findings_raised)} finding(s) raised")
+        if tty:
+            print("\r" + line.ljust(78), end="", flush=True)
+        elif week.number % 25 == 0 or week.number == WEEK_COUNT:
+            print(line, flush=True)
+
+    result = replay_scenario(root, progress=progress, notifier=pass_notifier())
+    if tty:
+        print()
+    digest_path = render_digest(result.config)
+    elapsed = time.perf_counter() - started
+    with Store.open(result.config.database, readonly=True) as store:
+        findings = store.list_findings(state="all")
+    open_findings = [f for f in findings if f.state is not FindingState.CLEARED]
+    print(f"Replayed {len(result.passes)} weeks in {elapsed:.1f} s into {root}.")
+    print(f"Digest: {digest_path}")
+    print(f"{len(open_findings)} finding(s) open, {len(findings) - len(open_findings)} cleared:")
+    rank = {"critical": 0, "warning": 1, "notice": 2}
+    for f in sorted(open_findings, key=lambda f: (rank[f.severity.value], f.kind.value)):
+        where = f.model or f.feed or ""
+        if f.series is not None:
+            where += f" / {f.series}"
+        print(f"  {f.severity.value:<8} {f.kind.value:<19} {where:<32} since {f.since_period}")
+    print(f"Look closer: plumbline status -c {root / 'plumbline.yaml'}")
+    return 0
+
+
+def render_digest(config: PlumblineConfig) -> Path:
+    """Write the digest of the replayed database (its period ends at the latest pass)."""
+    with Store.open(config.database) as store:
+        return Path(write_digest(store, config))

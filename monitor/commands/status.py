@@ -1,0 +1,91 @@
+"""``plumbline status [--all] [--format table|json]``: open findings (all with ``--all``), the
+latest passes and the next scheduled runs. Reads the database only."""
+
+from __future__ import annotations
+
+import argparse
+import json
+from datetime import UTC, datetime
+from typing import Any
+
+from monitor.commands._common import add_config_argument, config_from, open_existing_store
+from monitor.config import PlumblineConfig
+from monitor.daemon import upcoming_runs
+from monitor.store import FindingRecord, PassRecord
+from monitor.text import format_p_value
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "status", help="open findings, the latest passes and the next runs",
+        description="Show the open findings (every finding with --all), the latest passes and "
+        "the next scheduled scan and digest. Reads the database only.",
+    )
+    add_config_argument(parser)
+    parser.add_argument("--all", action="store_true", help="include cleared findings")
+    parser.add_argument("--format", choices=("table", "json"), default="table")
+    parser.set_defaults(handler=handle)
+
+
+def finding_record(f: FindingRecord) -> dict[str, Any]:
+    return {
+        "id": f.id, "model": f.model, "series": f.series, "feed": f.feed,
+        "kind": f.kind.value, "severity": f.severity.value, "state": f.state.value,
+        "since_period": f.since_period, "statistic": f.statistic, "p_value": f.p_value,
+        "message": f.message, "action": f.action,
+        "acknowledged": f.acknowledged_at is not None,
+    }
+
+
+def pass_record(p: PassRecord) -> dict[str, Any]:
+    return {
+        "id": p.id, "as_of": p.as_of.isoformat(), "started_at": p.started_at.isoformat(),
+        "finished_at": None if p.finished_at is None else p.finished_at.isoformat(),
+        "status": p.status,
+        "files": p.counts.get("files"), "forecasts": p.counts.get("forecasts"),
+        "findings_raised": p.counts.get("findings_raised"),
+        "findings_cleared": p.counts.get("findings_cleared"),
+    }
+
+
+def next_runs(config: PlumblineConfig, now: datetime) -> dict[str, str]:
+    runs = {}
+    for name, text in (("scan", config.schedule.scan), ("digest", config.schedule.digest)):
+        (when,) = upcoming_runs(text, config.zone, now, 1)
+        runs[name] = when.astimezone(config.zone).isoformat()
+    return runs
+
+
+def handle(args: argparse.Namespace) -> int:
+    config = config_from(args)
+    with open_existing_store(config, readonly=True) as store:
+        findings = store.list_findings(state="all" if args.all else "open")
+        passes = store.list_passes(10)
+    rank = {"critical": 0, "warning": 1, "notice": 2}
+    findings.sort(key=lambda f: (rank[f.severity.value], f.model or "", f.series or "", f.id))
+    document = {
+        "findings": [finding_record(f) for f in findings],
+        "passes": [pass_record(p) for p in passes],
+        "next_runs": next_runs(config, datetime.now(UTC)),
+    }
+    if args.format == "json":
+        print(json.dumps(document, indent=2))
+        return 0
+    open_count = sum(1 for f in findings if f.state.value != "cleared")
+    latest = passes[0] if passes else None
+    clock = latest.as_of.astimezone(config.zone).isoformat() if latest else "never"
+    print(f"{open_count} open finding(s); latest pass {latest.id if latest else '-'} at "
+          f"business clock {clock}.")
+    for f in findings:
+        where = f.model or f.feed or ""
+        if f.series is not None:
+            where += f" / {f.series}"
+        ack = ", acknowledged" if f.acknowledged_at is not None else ""
+        p_text = f", p {format_p_value(f.p_value)}" if f.p_value is not None else ""
+        print(f"  #{f.id:<5} {f.severity.value:<8} {f.kind.value:<19} {where} (since "
+              f"{f.since_period or '-'}, {f.state.value}{ack}{p_text})")
+        print(f"         {f.message}")
+    runs = document["next_runs"]
+    assert isinstance(runs, dict)
+    print(f"Next scan {runs['scan']}; next digest {runs['digest']}.")
+    return 0

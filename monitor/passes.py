@@ -1,0 +1,930 @@
+"""One monitoring pass (DESIGN.md section 5): ingest → score → refit → check → forecast →
+findings → notify.
+
+``run_pass(config, as_of=…)`` opens the database, refuses a business clock earlier than the
+latest pass's (exit 2), and runs the stages in order, one transaction per file and per stage, so
+a crash at any point leaves a database the next pass continues from:
+
+- ingest writes a file's rows and its record in one transaction, then moves the file;
+- scoring only scores forecasts that have no outcome yet;
+- forecasts answer plan rows the model has not forecast yet (one forecast per plan row);
+- the pass remembers, in its counts, the last observation id it analysed (``observation_mark``);
+  a later pass re-analyses every series with rows after the last *finished* pass's mark, so work
+  a crashed pass did not finish is picked up, and work it did finish is not duplicated.
+
+A pass is idempotent: at the same ``as_of`` with no new complete files it writes nothing at all
+(not even a pass record) and sends nothing; at a later ``as_of`` with no new files only
+``stale_feed`` can be raised or cleared, because checks run only for series whose data changed.
+
+Which series are analysed: every series of a model whose feed received rows since the mark, or
+that gained its baseline. The analysis itself is ``monitor.analysis.analyse_batch``, a pure
+function over one model's arrays (DESIGN.md section 14). One model or feed that fails is
+reported in ``PassReport.skipped`` and the others go on.
+
+Decisions beyond DESIGN.md, documented in the README:
+
+- Baseline length: ``window`` rows (``window: all`` → ``max(min_rows, recent)``); the baseline is
+  the first that many rows of the series, or the declared ``baseline`` once the business clock
+  has passed its end. The monitoring horizon (default twice the baseline's rows) starts right
+  after it; when it passes with no alarm the baseline rolls forward to the latest full window.
+- The recent window for the slope-shift test is the latest complete block of ``recent`` rows
+  after the baseline (``monitor.analysis``), with the significance split over the blocks the
+  horizon allows.
+- The coverage finding audits the latest ``recent`` scored forecasts of a series (the current
+  coverage), so a fall in coverage is seen within weeks rather than diluted by years of history;
+  ``plumbline audit`` reports any window the user asks for.
+- Audited intervals (``interval:`` models) are read from plan rows: the interval must arrive
+  before its actual, as a forecast does.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from datetime import UTC, date, datetime, timedelta
+from typing import Any, Protocol
+
+import numpy as np
+
+from monitor.analysis import BatchInput, BatchOutput, analyse_batch, looks_per_horizon
+from monitor.config import Feed, Model, PlumblineConfig, model_signature, models_of_feed
+from monitor.errors import ClockRefusedError
+from monitor.findings import (
+    Condition,
+    RejectedInput,
+    autocorrelation_conditions,
+    clustered_miss_conditions,
+    coverage_conditions,
+    extrapolation_conditions,
+    heteroscedasticity_conditions,
+    not_estimable_conditions,
+    rejected_input_conditions,
+    should_notify,
+    significance_conditions,
+    slope_shift_conditions,
+    stale_feed_condition,
+    structural_break_conditions,
+    weak_fit_conditions,
+)
+from monitor.ingest import FileReport, IngestSpec, ingest_feed, inspect_inbox
+from monitor.stats.coverage import audit_batch
+from monitor.store import (
+    BaselineRow,
+    FitRow,
+    ForecastRow,
+    Store,
+    date_period_key,
+    period_key_date,
+)
+from monitor.vocabulary import Finding, Outcome, classify_outcome
+
+# The extrapolation *finding* asks for a plan row well outside what the model knows: beyond the
+# fitted range by more than this share of the range, or at more than this multiple of the
+# window's largest leverage. (Each forecast's own flag follows DESIGN.md section 4 exactly: any
+# step outside the range, any leverage above the largest.) Marginal cases happen to a few per
+# cent of plan rows by chance and would raise and clear a notice every few weeks.
+EXTRAPOLATION_RANGE_SHARE = 0.25
+EXTRAPOLATION_LEVERAGE_RATIO = 3.0
+
+# Series of a model with at most this many series get their monitoring path stored with the fit
+# (for charts); larger models store it for series that raised an alarm only (DESIGN.md 11).
+PATH_SERIES_LIMIT = 25
+
+
+def utc_now() -> datetime:
+    return datetime.now(UTC)
+
+
+@dataclass(frozen=True)
+class PassReport:
+    """What one pass did."""
+
+    pass_id: int | None  # None when there was nothing to do (no pass recorded)
+    as_of: datetime
+    files: tuple[FileReport, ...] = ()
+    outcomes_scored: int = 0
+    scored_series: dict[str, set[str | None]] = field(default_factory=dict)
+    series_analysed: int = 0
+    fits_recorded: int = 0
+    forecasts_issued: int = 0
+    findings_raised: tuple[int, ...] = ()
+    findings_cleared: tuple[int, ...] = ()
+    findings_to_notify: tuple[int, ...] = ()
+    skipped: tuple[str, ...] = ()
+    timings: dict[str, float] = field(default_factory=dict)
+    stopped_early: str | None = None
+
+    @property
+    def nothing_to_do(self) -> bool:
+        return self.pass_id is None
+
+
+class PassNotifier(Protocol):
+    """Renders the pass's pages and queues its messages (``monitor.notify``)."""
+
+    def __call__(
+        self, store: Store, config: PlumblineConfig, report: PassReport, *, now: datetime
+    ) -> None: ...
+
+
+# --------------------------------------------------------------------------- periods and clocks
+
+
+def period_key_of(feed: Feed, value: date | int, zone: Any = None) -> int:
+    """The store's sort key for a declared period (a date or an integer)."""
+    if feed.period_type == "integer":
+        return int(value)  # type: ignore[arg-type]
+    assert isinstance(value, date)
+    return date_period_key(value)
+
+
+def business_key(feed: Feed, as_of: datetime, config: PlumblineConfig) -> int | None:
+    """The latest period key a pass at ``as_of`` may use (None: no limit, integer periods)."""
+    if feed.period_type == "integer":
+        return None
+    return date_period_key(as_of.astimezone(config.zone).date())
+
+
+def cadence_steps(feed: Feed, from_key: int, to_key: int) -> int:
+    """Lead: the number of cadence steps from ``from_key`` to ``to_key`` (at least 1)."""
+    if feed.period_type == "integer":
+        step = int(feed.cadence) if isinstance(feed.cadence, int) else 1
+    else:
+        cadence = feed.cadence
+        step_days = cadence.total_seconds() / 86400 if isinstance(cadence, timedelta) else 1.0
+        return max(1, round((to_key - from_key) / max(step_days, 1e-9)))
+    return max(1, round((to_key - from_key) / max(step, 1)))
+
+
+def baseline_rows(model: Model) -> int:
+    """How many rows the automatic baseline takes (see the module docstring)."""
+    if isinstance(model.window, int):
+        return model.window
+    return max(model.min_rows, model.recent)
+
+
+# --------------------------------------------------------------------------- the pass
+
+
+class _Stopped(Exception):
+    def __init__(self, stage: str) -> None:
+        super().__init__(stage)
+        self.stage = stage
+
+
+@dataclass
+class _PassState:
+    store: Store
+    config: PlumblineConfig
+    as_of: datetime
+    pass_id: int
+    mark: int
+    stop: threading.Event | None
+    skipped: list[str] = field(default_factory=list)
+    timings: dict[str, float] = field(default_factory=dict)
+    conditions: list[tuple[Condition, int]] = field(default_factory=list)  # (condition, clear)
+    outcomes_scored: int = 0
+    scored_series: dict[str, set[str | None]] = field(default_factory=dict)
+    series_analysed: int = 0
+    fits_recorded: int = 0
+    forecasts_issued: int = 0
+
+    def check_stop(self, stage: str) -> None:
+        if self.stop is not None and self.stop.is_set():
+            raise _Stopped(stage)
+
+    def add(self, conditions: Sequence[Condition], clear_after: int) -> None:
+        self.conditions.extend((c, clear_after) for c in conditions)
+
+
+def run_pass(
+    config: PlumblineConfig,
+    *,
+    as_of: datetime | None = None,
+    stop_requested: threading.Event | None = None,
+    real_clock: Callable[[], datetime] = utc_now,
+    notifier: PassNotifier | None = None,
+    store: Store | None = None,
+) -> PassReport:
+    """Run one pass at business clock ``as_of`` (default: the real clock). The caller holds the
+    writer lock (``monitor.lock.DatabaseLock``)."""
+    own_store = store is None
+    db = Store.open(config.database) if store is None else store
+    try:
+        return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier)
+    finally:
+        if own_store:
+            db.close()
+
+
+def _run(
+    store: Store,
+    config: PlumblineConfig,
+    as_of: datetime,
+    stop: threading.Event | None,
+    real_clock: Callable[[], datetime],
+    notifier: PassNotifier | None,
+) -> PassReport:
+    if as_of.tzinfo is None:
+        raise ValueError("as_of must carry a time zone")
+    as_of = as_of.astimezone(UTC)
+    latest = store.latest_pass()
+    if latest is not None and as_of < latest.as_of:
+        raise ClockRefusedError(
+            f"the business clock {as_of.isoformat()} is earlier than the latest pass's "
+            f"({latest.as_of.isoformat()}); passes must move forward in time"
+        )
+    finished = store.latest_pass(finished_only=True)
+    mark = int(finished.counts.get("observation_mark", 0)) if finished else 0
+    started = time.perf_counter()
+    # Idempotence: same clock, no complete file waiting, nothing left over -> nothing to do.
+    if (
+        latest is not None
+        and as_of == latest.as_of
+        and latest.status == "finished"
+        and not files_waiting(store, config, real_clock)
+    ):
+        return PassReport(None, as_of, timings={"total": time.perf_counter() - started})
+
+    record = store.record_pass(as_of=as_of, started_at=real_clock())
+    state = _PassState(store, config, as_of, record.id, mark, stop)
+    files: list[FileReport] = []
+    stopped: str | None = None
+    new_mark = mark
+    try:
+        files = _stage(state, "ingest", lambda: _ingest_all(state, real_clock))
+        state.check_stop("score")
+        _stage(state, "score", lambda: _score_all(state))
+        state.check_stop("refit")
+        _stage(state, "refit_check_forecast", lambda: _analyse_all(state))
+        new_mark = store.last_observation_id()
+        _stage(state, "feeds", lambda: _feed_conditions(state, files))
+        state.check_stop("findings")
+        raised, cleared, notify = _stage(state, "findings", lambda: _record_findings(state))
+    except _Stopped as stop_at:
+        stopped = stop_at.stage
+        raised, cleared, notify = (), (), ()
+    report = PassReport(
+        pass_id=record.id,
+        as_of=as_of,
+        files=tuple(files),
+        outcomes_scored=state.outcomes_scored,
+        series_analysed=state.series_analysed,
+        fits_recorded=state.fits_recorded,
+        forecasts_issued=state.forecasts_issued,
+        findings_raised=tuple(raised),
+        findings_cleared=tuple(cleared),
+        findings_to_notify=tuple(notify),
+        skipped=tuple(state.skipped),
+        timings=state.timings,
+        stopped_early=stopped,
+    )
+    if notifier is not None and stopped is None:
+        try:
+            _stage(state, "notify", lambda: notifier(store, config, report, now=real_clock()))
+        except Exception as exc:  # reports and mail never undo a pass's results
+            state.skipped.append(f"notify: {type(exc).__name__}: {exc}")
+    state.timings["total"] = time.perf_counter() - started
+    counts = {
+        "observation_mark": new_mark,
+        "files": len(files),
+        "outcomes_scored": report.outcomes_scored,
+        "series_analysed": report.series_analysed,
+        "fits": report.fits_recorded,
+        "forecasts": report.forecasts_issued,
+        "findings_raised": len(report.findings_raised),
+        "findings_cleared": len(report.findings_cleared),
+        "skipped": list(state.skipped),
+        "timings": {k: round(v, 4) for k, v in state.timings.items()},
+        "stopped_early": stopped,
+    }
+    store.finish_pass(record.id, finished_at=real_clock(), counts=counts)
+    return PassReport(
+        **{**report.__dict__, "skipped": tuple(state.skipped), "timings": dict(state.timings)}
+    )
+
+
+def _stage(state: _PassState, name: str, work: Callable[[], Any]) -> Any:
+    begun = time.perf_counter()
+    try:
+        return work()
+    finally:
+        state.timings[name] = state.timings.get(name, 0.0) + time.perf_counter() - begun
+
+
+# --------------------------------------------------------------------------- 1. ingest
+
+
+def ingest_spec(name: str, feed: Feed, config: PlumblineConfig) -> IngestSpec:
+    """The ingest's view of one feed: which columns play which role for its models."""
+    models = models_of_feed(config, name).values()
+    per = sorted({m.per for m in models if m.per})
+    responses = tuple(sorted({m.response for m in models}))
+    required = sorted({p for m in models for p in (m.predictors or ())} - set(responses))
+    optional = sorted(
+        {c for m in models if m.interval is not None
+         for c in (m.interval.point, m.interval.lower, m.interval.upper)}
+        - set(responses) - set(required)
+    )
+    return IngestSpec(
+        feed=name,
+        inbox=feed.inbox,
+        archive=feed.archive,
+        rejected=feed.rejected,
+        period_column=feed.period,
+        format=feed.format,
+        period_type=feed.period_type,
+        per_column=per[0] if per else None,
+        responses=responses,
+        required=tuple(required),
+        optional=tuple(optional),
+        settle=feed.settle,
+    )
+
+
+def files_waiting(
+    store: Store, config: PlumblineConfig, real_clock: Callable[[], datetime] = utc_now
+) -> bool:
+    """True when some inbox holds a complete file, or a crash left a move to finish."""
+    for name, feed in config.feeds.items():
+        spec = ingest_spec(name, feed, config)
+        if store.files_awaiting_move(name) or inspect_inbox(spec, real_clock=real_clock).complete:
+            return True
+    return False
+
+
+def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[FileReport]:
+    reports: list[FileReport] = []
+    for name, feed in state.config.feeds.items():
+        try:
+            spec = ingest_spec(name, feed, state.config)
+            result = ingest_feed(state.store, spec, pass_id=state.pass_id, real_clock=real_clock)
+            reports.extend(result.reports)
+            state.skipped.extend(f"feed {name}: {problem}" for problem in result.problems)
+        except Exception as exc:  # one bad feed never stops the others
+            state.skipped.append(f"feed {name}: ingest failed: {type(exc).__name__}: {exc}")
+    return reports
+
+
+# --------------------------------------------------------------------------- 2. score
+
+
+def _score_all(state: _PassState) -> None:
+    for name, model in state.config.models.items():
+        try:
+            awaiting = state.store.forecasts_awaiting_outcome(name, model.response)
+            outcomes = [
+                Outcome(a.forecast_id, a.actual, classify_outcome(a.actual, a.lower, a.upper))
+                for a in awaiting
+            ]
+            if outcomes:
+                state.outcomes_scored += state.store.record_outcomes(state.pass_id, outcomes)
+                state.scored_series[name] = {a.series for a in awaiting}
+        except Exception as exc:
+            state.skipped.append(f"model {name}: scoring failed: {type(exc).__name__}: {exc}")
+
+
+# --------------------------------------------------------------------------- 3-5. analyse
+
+
+def _analyse_all(state: _PassState) -> None:
+    for name, model in state.config.models.items():
+        state.check_stop("refit")
+        try:
+            version = _model_version(state, name, model)
+            if model.fitted:
+                _analyse_model(state, name, model, version)
+            else:
+                _audit_only_model(state, name, model, version)
+            _coverage_conditions(state, name, model)
+        except _Stopped:
+            raise
+        except Exception as exc:
+            state.skipped.append(f"model {name}: {type(exc).__name__}: {exc}")
+
+
+def _model_version(state: _PassState, name: str, model: Model) -> int:
+    record, created = state.store.record_model_version(
+        name,
+        signature=model_signature(model),
+        config=model.model_dump(mode="json"),
+        created_at=state.as_of,
+    )
+    if created and record.version > 1:
+        # a new version starts afresh: the old version's open findings no longer apply
+        for finding in state.store.open_findings(model=name):
+            state.store.clear_finding(finding.id, pass_id=state.pass_id, at=state.as_of)
+    return record.version
+
+
+def _changed_series(state: _PassState, feed: str) -> set[str | None]:
+    return set(state.store.series_with_rows_after(feed, state.mark))
+
+
+def _analyse_model(state: _PassState, name: str, model: Model, version: int) -> None:
+    feed = state.config.feeds[model.feed]
+    predictors = tuple(model.predictors or ())
+    columns = (model.response, *predictors)
+    up_to = business_key(feed, state.as_of, state.config)
+    changed = _changed_series(state, model.feed)
+    baselines = state.store.baselines(name, version)
+    windows = state.store.windows(model.feed, columns, up_to_key=up_to)
+    index = [i for i, s in enumerate(windows.series) if s in changed or s not in baselines]
+    if not index and not changed:
+        return
+    values, mask, keys = windows.stack()
+    if not index:
+        return
+    values, mask, keys = values[index], mask[index], keys[index]
+    series = [windows.series[i] for i in index]
+    counts = mask.sum(axis=1)
+    warm = counts >= max(model.min_rows, model.parameter_count + 2)
+    if not warm.any():
+        return
+    pick = np.flatnonzero(warm)
+    values, mask, keys, counts = values[pick], mask[pick], keys[pick], counts[pick]
+    series = [series[i] for i in pick]
+    labels = windows.period_labels
+
+    # Baselines: existing ones as positions; new ones set now.
+    rows_needed = baseline_rows(model)
+    start = np.full(len(series), -1, dtype=np.int64)
+    end = np.full(len(series), -1, dtype=np.int64)
+    new_baselines: list[BaselineRow] = []
+    for i, s in enumerate(series):
+        key_row = keys[i, : counts[i]]
+        record = baselines.get(s)
+        if record is not None:
+            start[i] = int(np.searchsorted(key_row, record.start_key, side="left"))
+            end[i] = int(np.searchsorted(key_row, record.end_key, side="right"))
+            continue
+        if model.baseline is not None:
+            b0 = period_key_of(feed, model.baseline.start)
+            b1 = period_key_of(feed, model.baseline.end)
+            if up_to is not None and up_to < b1:
+                continue
+            lo = int(np.searchsorted(key_row, b0, side="left"))
+            hi = int(np.searchsorted(key_row, b1, side="right"))
+            set_by = "declared"
+        elif counts[i] >= rows_needed:
+            lo, hi, set_by = 0, rows_needed, "auto"
+        else:
+            continue
+        if hi - lo < model.parameter_count + 2:
+            continue
+        start[i], end[i] = lo, hi
+        new_baselines.append(_baseline_row(name, version, s, key_row, lo, hi, set_by, labels))
+    if new_baselines:
+        state.store.set_baselines(new_baselines, created_at=state.as_of, pass_id=state.pass_id)
+
+    horizon = np.where(end > start, (end - start) * 2, 1) if model.horizon is None else np.full(
+        len(series), model.horizon)
+    horizon = np.maximum(horizon.astype(np.int64), 1)
+
+    plans = state.store.plan_rows_awaiting_forecast(model.feed, name, predictors)
+    plan_index: dict[str | None, list[int]] = {}
+    for row, s in enumerate(plans.series):
+        plan_index.setdefault(s, []).append(row)
+    m = max((len(v) for s, v in plan_index.items() if s in set(series)), default=0)
+    k = len(predictors)
+    plan_x = np.zeros((len(series), m, k))
+    plan_mask = np.zeros((len(series), m), dtype=bool)
+    plan_rows: list[list[int]] = []
+    for i, s in enumerate(series):
+        rows = plan_index.get(s, [])
+        plan_rows.append(rows)
+        if rows:
+            plan_x[i, : len(rows)] = plans.values[rows]
+            plan_mask[i, : len(rows)] = True
+
+    batch = BatchInput(
+        predictors=predictors,
+        intercept=model.intercept,
+        level=model.level,
+        significance=model.thresholds.significance,
+        x=values[:, :, 1:],
+        y=values[:, :, 0],
+        mask=mask,
+        window=model.window if isinstance(model.window, int) else None,
+        baseline_start=start,
+        baseline_end=end,
+        horizon=horizon,
+        recent=model.recent,
+        plan_x=plan_x,
+        plan_mask=plan_mask,
+    )
+    state.check_stop("refit")
+    out = analyse_batch(batch)
+    state.series_analysed += len(series)
+
+    previous = state.store.latest_fits(name, version=version)
+    fit_rows = [
+        _fit_row(name, version, model, out, i, s, keys[i], labels, len(series))
+        for i, s in enumerate(series)
+    ]
+    fit_ids = state.store.record_fits(state.pass_id, fit_rows)
+    state.fits_recorded += len(fit_ids)
+
+    # Roll the baseline forward when the horizon passed with no alarm.
+    rolled = [
+        _baseline_row(name, version, s, keys[i, : counts[i]], int(counts[i]) - rows_needed,
+                      int(counts[i]), "rolled", labels)
+        for i, s in enumerate(series)
+        if out.monitoring.horizon_exhausted[i] and not out.monitoring.crossed[i]
+        and counts[i] >= rows_needed
+    ]
+    if rolled:
+        state.store.set_baselines(rolled, created_at=state.as_of, pass_id=state.pass_id)
+
+    state.check_stop("forecast")
+    forecasts: list[ForecastRow] = []
+    extrapolated_first: list[str | None] = [None] * len(series)
+    worst_leverage = np.full(len(series), np.nan)
+    for i, s in enumerate(series):
+        if not out.fit.estimable[i]:
+            continue
+        latest_key = int(keys[i, counts[i] - 1])
+        for j, row in enumerate(plan_rows[i]):
+            flag = bool(out.extrapolation[i, j])
+            far = (out.range_excess[i, j] > EXTRAPOLATION_RANGE_SHARE
+                   or out.leverage_ratio[i, j] > EXTRAPOLATION_LEVERAGE_RATIO)
+            if far and extrapolated_first[i] is None:
+                extrapolated_first[i] = plans.period[row]
+            worst_leverage[i] = np.fmax(worst_leverage[i], out.prediction.leverage[i, j])
+            forecasts.append(ForecastRow(
+                model=name, feed=model.feed, series=s,
+                target_period=plans.period[row],
+                target_period_key=int(plans.period_key[row]),
+                issued_at=state.as_of,
+                lead=cadence_steps(feed, latest_key, int(plans.period_key[row])),
+                point=float(out.prediction.point[i, j]),
+                lower=float(out.prediction.lower[i, j]),
+                upper=float(out.prediction.upper[i, j]),
+                level=model.level,
+                mean_lower=float(out.prediction.mean_lower[i, j]),
+                mean_upper=float(out.prediction.mean_upper[i, j]),
+                leverage=float(out.prediction.leverage[i, j]),
+                extrapolation=flag,
+                fit_id=fit_ids[i],
+                version=version,
+                observation_id=int(plans.observation_id[row]),
+                inputs={p: float(plans.values[row, c]) for c, p in enumerate(predictors)},
+            ))
+    if forecasts:
+        state.forecasts_issued += state.store.record_forecasts(state.pass_id, forecasts).inserted
+
+    _model_conditions(state, name, model, out, series, keys, counts, start, end, labels,
+                      previous, plan_rows, extrapolated_first, worst_leverage, horizon)
+
+
+def _baseline_row(
+    model: str, version: int, series: str | None, key_row: np.ndarray, lo: int, hi: int,
+    set_by: str, labels: dict[int, str],
+) -> BaselineRow:
+    start_key, end_key = int(key_row[lo]), int(key_row[hi - 1])
+    after = int(key_row[hi]) if hi < key_row.size else None
+    return BaselineRow(
+        model=model, version=version, series=series,
+        start_period=labels.get(start_key, str(start_key)), start_key=start_key,
+        end_period=labels.get(end_key, str(end_key)), end_key=end_key, set_by=set_by,
+        monitoring_start=None if after is None else labels.get(after, str(after)),
+        monitoring_start_key=after,
+    )
+
+
+def _label(labels: dict[int, str], key: int) -> str:
+    return labels.get(key, str(key))
+
+
+def _finite(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def _fit_row(
+    name: str, version: int, model: Model, out: BatchOutput, i: int, series: str | None,
+    key_row: np.ndarray, labels: dict[int, str], series_count: int,
+) -> FitRow:
+    fit = out.fit
+    rows = np.flatnonzero(out.window_mask[i])
+    estimable = bool(fit.estimable[i])
+    coefficients = {
+        term: {
+            "estimate": _finite(fit.coef[i, j]),
+            "standard_error": _finite(fit.standard_error[i, j]),
+            "t": _finite(fit.t[i, j]),
+            "p_value": _finite(fit.p_value[i, j]),
+            "lower": _finite(fit.lower[i, j]),
+            "upper": _finite(fit.upper[i, j]),
+        }
+        for j, term in enumerate(fit.terms)
+    } if estimable else {}
+    inference = {
+        "n": int(fit.n[i]),
+        "residual_df": int(fit.residual_df[i]),
+        "r_squared": _finite(fit.r_squared[i]),
+        "adj_r_squared": _finite(fit.adj_r_squared[i]),
+        "residual_std_error": _finite(fit.residual_std_error[i]),
+        "f_statistic": _finite(fit.f_statistic[i]),
+        "f_p_value": _finite(fit.f_p_value[i]),
+        "exact_fit": bool(fit.exact_fit[i]),
+        "level": model.level,
+    } if estimable else {}
+    monitoring = out.monitoring
+    diagnostics: dict[str, Any] = {
+        "durbin_watson": _finite(out.durbin_watson.statistic[i]),
+        "breusch_pagan": {"statistic": _finite(out.breusch_pagan.statistic[i]),
+                          "p_value": _finite(out.breusch_pagan.p_value[i])},
+        "jarque_bera": {"statistic": _finite(out.jarque_bera.statistic[i]),
+                        "p_value": _finite(out.jarque_bera.p_value[i])},
+    }
+    if out.has_baseline[i]:
+        base = out.baseline_fit
+        diagnostics["baseline"] = {
+            "r_squared": _finite(base.r_squared[i]),
+            "coefficients": {
+                term: {"estimate": _finite(base.coef[i, j]),
+                       "lower": _finite(base.lower[i, j]),
+                       "upper": _finite(base.upper[i, j]),
+                       "p_value": _finite(base.p_value[i, j])}
+                for j, term in enumerate(base.terms)
+            } if base.estimable[i] else {},
+        }
+    if monitoring.monitorable[i]:
+        monitored = np.flatnonzero(out.monitor_mask[i])
+        entry: dict[str, Any] = {
+            "statistic": float(monitoring.statistic[i]),
+            "max_ratio": float(monitoring.max_ratio[i]),
+            "crossed": bool(monitoring.crossed[i]),
+            "periods_monitored": int(monitoring.periods_monitored[i]),
+            "horizon": int(monitoring.horizon[i]),
+            "critical_value": float(monitoring.critical_value[i]),
+            "break_period": (
+                _label(labels, int(key_row[monitoring.break_index[i]]))
+                if monitoring.break_index[i] >= 0 else None
+            ),
+        }
+        if series_count <= PATH_SERIES_LIMIT or monitoring.crossed[i]:
+            entry["path"] = {
+                "periods": [_label(labels, int(key_row[r])) for r in monitored],
+                "cusum": [float(v) for v in monitoring.cusum_path[i, monitored]],
+                "boundary": [float(v) for v in monitoring.boundary_path[i, monitored]],
+            }
+        diagnostics["monitoring"] = entry
+    if out.recent_tested[i]:
+        recent_rows = np.flatnonzero(out.recent_mask[i])
+        diagnostics["slope_shift"] = {
+            "recent_first": _label(labels, int(key_row[recent_rows[0]])),
+            "recent_last": _label(labels, int(key_row[recent_rows[-1]])),
+            "t": [_finite(v) for v in out.slope_shift.t[i]],
+            "p_value": [_finite(v) for v in out.slope_shift.p_value[i]],
+        }
+    return FitRow(
+        model=name, version=version, series=series, n=int(fit.n[i]), estimable=estimable,
+        reason=fit.reason[i],
+        window_first=_label(labels, int(key_row[rows[0]])) if rows.size else None,
+        window_first_key=int(key_row[rows[0]]) if rows.size else None,
+        window_last=_label(labels, int(key_row[rows[-1]])) if rows.size else None,
+        window_last_key=int(key_row[rows[-1]]) if rows.size else None,
+        coefficients=coefficients, inference=inference, diagnostics=diagnostics,
+    )
+
+
+def _model_conditions(
+    state: _PassState, name: str, model: Model, out: BatchOutput, series: list[str | None],
+    keys: np.ndarray, counts: np.ndarray, start: np.ndarray, end: np.ndarray,
+    labels: dict[int, str], previous: dict[str | None, Any], plan_rows: list[list[int]],
+    extrapolated_first: list[str | None], worst_leverage: np.ndarray, horizon: np.ndarray,
+) -> None:
+    t = model.thresholds
+    clear = t.clear_after
+    predictors = list(model.predictors or ())
+    slopes = slice(1, None) if model.intercept else slice(None)
+    fit = out.fit
+    ok = fit.estimable
+    s = len(series)
+
+    def period(i: int, position: int) -> str | None:
+        if position < 0 or position >= counts[i]:
+            return None
+        return _label(labels, int(keys[i, position]))
+
+    # The fit's own diagnostics become findings once per block of ``recent`` rows (and at the
+    # first fit), not at every weekly step of an overlapping window: a rule of thumb or a 5 %
+    # test re-read every week on nearly the same rows raises and clears notices at random.
+    block = max(model.recent, 1)
+    fresh = np.ones(s, dtype=bool)
+    for i, sr in enumerate(series):
+        prev = previous.get(sr)
+        if prev is not None and prev.window_last_key is not None:
+            before = int(np.searchsorted(keys[i, : counts[i]], prev.window_last_key, "right"))
+            fresh[i] = counts[i] // block > before // block
+    ok_fresh = ok & fresh
+    window_first = [period(i, int(np.argmax(out.window_mask[i]))) for i in range(s)]
+    window_last = [period(i, int(counts[i]) - 1) for i in range(s)]
+    recent_first = [
+        period(i, int(np.argmax(out.recent_mask[i]))) if out.recent_tested[i] else None
+        for i in range(s)
+    ]
+    nan_if = np.where
+
+    # structural break (sequential monitoring)
+    monitoring = out.monitoring
+    break_period = [
+        period(i, int(monitoring.break_index[i])) if monitoring.break_index[i] >= 0 else None
+        for i in range(s)
+    ]
+    state.add(structural_break_conditions(
+        name, series, monitoring.crossed, monitoring.max_ratio, break_period,
+        monitoring.monitorable & (monitoring.periods_monitored > 0) & ok,
+    ), clear)
+
+    # slope shift over the latest complete recent block
+    if predictors:
+        looks = looks_per_horizon(int(np.median(horizon)) if s else 1, model.recent)
+        state.add(slope_shift_conditions(
+            name, series, predictors, out.slope_shift.t, out.slope_shift.p_value, t,
+            recent_first, looks=looks,
+        ), clear)
+        base = out.baseline_fit
+        comparable = (out.has_baseline & base.estimable & ok_fresh)[:, None]
+        state.add(significance_conditions(
+            name, series, predictors,
+            nan_if(comparable, base.coef[:, slopes], np.nan),
+            nan_if(comparable, base.p_value[:, slopes], np.nan),
+            nan_if(comparable, fit.coef[:, slopes], np.nan),
+            nan_if(comparable, fit.p_value[:, slopes], np.nan),
+            t, window_last,
+        ), clear)
+        state.add(heteroscedasticity_conditions(
+            name, series, out.breusch_pagan.statistic,
+            nan_if(ok_fresh, out.breusch_pagan.p_value, np.nan), t, window_first,
+        ), clear)
+    state.add(weak_fit_conditions(
+        name, series, nan_if(ok_fresh, fit.r_squared, np.nan),
+        nan_if(out.has_baseline & out.baseline_fit.estimable, out.baseline_fit.r_squared, np.nan),
+        t, window_last,
+    ), clear)
+    state.add(autocorrelation_conditions(
+        name, series, nan_if(ok_fresh, out.durbin_watson.statistic, np.nan), window_first,
+    ), clear)
+    has_plans = np.array([bool(rows) for rows in plan_rows]) & ok
+    state.add(extrapolation_conditions(
+        name, series, [first is not None for first in extrapolated_first], has_plans,
+        extrapolated_first, worst_leverage,
+    ), clear)
+    fitted_before = np.array([
+        (prev := previous.get(sr)) is not None and prev.estimable for sr in series
+    ], dtype=bool)
+    state.add(not_estimable_conditions(
+        name, series, ok, fitted_before, fit.reason, window_last,
+    ), clear)
+
+
+def _audit_only_model(state: _PassState, name: str, model: Model, version: int) -> None:
+    """An ``interval:`` model: record the intervals made elsewhere as forecasts to score."""
+    assert model.interval is not None
+    feed = state.config.feeds[model.feed]
+    cols = (model.interval.point, model.interval.lower, model.interval.upper)
+    plans = state.store.plan_rows_awaiting_forecast(model.feed, name, cols)
+    rows: list[ForecastRow] = []
+    for r, s in enumerate(plans.series):
+        point, lower, upper = (float(v) for v in plans.values[r])
+        if lower > upper:
+            state.skipped.append(
+                f"model {name}: plan row {plans.period[r]}{'' if s is None else ' of ' + s} "
+                "has its lower bound above its upper bound; not audited"
+            )
+            continue
+        rows.append(ForecastRow(
+            model=name, feed=model.feed, series=s, target_period=plans.period[r],
+            target_period_key=int(plans.period_key[r]), issued_at=state.as_of, lead=1,
+            point=point, lower=lower, upper=upper, level=model.interval.level,
+            version=version, observation_id=int(plans.observation_id[r]),
+        ))
+    del feed
+    if rows:
+        state.forecasts_issued += state.store.record_forecasts(state.pass_id, rows).inserted
+
+
+def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
+    """Coverage and clustered misses over each series' latest ``recent`` scored forecasts,
+    for the series that had forecasts scored in this pass."""
+    fresh = state.scored_series.get(name)
+    if not fresh:
+        return
+    scored = state.store.scored_forecasts(name, last=model.recent)
+    names = sorted(set(scored.series) & fresh, key=lambda v: "" if v is None else v)
+    if not names:
+        return
+    position = {n: i for i, n in enumerate(names)}
+    keep = np.array([sr in position for sr in scored.series], dtype=bool)
+    group = np.array([position.get(sr, -1) for sr in scored.series])[keep]
+    audit = audit_batch(group, scored.actual[keep], scored.lower[keep], scored.upper[keep],
+                        model.nominal_level)
+    ordered = [names[int(g)] for g in audit.group]
+    periods = np.array(scored.target_period, dtype=object)[keep]
+    misses = np.array([o.value != "hit" for o in scored.outcome])[keep]
+    since: list[str | None] = []
+    for g in audit.group:
+        missed = periods[(group == g) & misses]
+        since.append(str(missed[0]) if missed.size else None)
+    t = model.thresholds
+    state.add(coverage_conditions(name, ordered, audit, t, since), t.clear_after)
+    state.add(clustered_miss_conditions(name, ordered, audit, t, since), t.clear_after)
+
+
+# --------------------------------------------------------------------------- feeds
+
+
+def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
+    rejections = [
+        RejectedInput(r.feed, r.name, r.whole_file_rejected, r.duplicate, r.rows_rejected,
+                      _rejection_reason(r))
+        for r in files if r.raises_finding
+    ]
+    clear_default = 2
+    touched = sorted({r.feed for r in files})
+    state.add(rejected_input_conditions(touched, rejections), clear_default)
+    for name, feed in state.config.feeds.items():
+        if feed.period_type == "integer" or not isinstance(feed.cadence, timedelta):
+            continue  # integer periods have no calendar to be late against
+        summary = state.store.feed_summary(name)
+        if summary.latest_period_key is None:
+            continue
+        latest = period_key_date(summary.latest_period_key)
+        latest_moment = datetime(latest.year, latest.month, latest.day, tzinfo=state.config.zone)
+        condition = stale_feed_condition(
+            name, latest_moment, summary.latest_period, state.as_of, feed.cadence
+        )
+        if condition is not None:
+            state.add([condition], clear_default)
+
+
+def _rejection_reason(report: FileReport) -> str:
+    if report.duplicate:
+        return f"the same bytes as {report.duplicate_of}"
+    if report.whole_file_rejected:
+        return report.errors.strip().splitlines()[0] if report.errors.strip() else report.note
+    first = report.rejected[0] if report.rejected else None
+    where = f"first at line {first.line}: {first.reason}" if first else report.note
+    return f"{where}; see {report.name}.rejected.csv"
+
+
+# --------------------------------------------------------------------------- 6. findings
+
+
+def _record_findings(state: _PassState) -> tuple[list[int], list[int], list[int]]:
+    raised: list[int] = []
+    cleared: list[int] = []
+    notify: list[int] = []
+    store = state.store
+    store.mark_new_findings_ongoing(state.pass_id)
+    open_ids = {
+        (f.model, f.series, f.feed, f.kind): f.id for f in store.open_findings()
+    }
+    with store.transaction():
+        for condition, clear_after in state.conditions:
+            key = condition.key
+            if condition.holds:
+                upsert = store.upsert_finding(
+                    Finding(key.model, key.series, key.feed, key.kind, condition.severity,
+                            condition.since_period, condition.statistic, condition.p_value,
+                            condition.message, condition.action),
+                    pass_id=state.pass_id, at=state.as_of,
+                )
+                record = upsert.finding
+                if upsert.created:
+                    raised.append(record.id)
+                    if should_notify("raised", acknowledged=record.acknowledged_at is not None):
+                        notify.append(record.id)
+                elif should_notify("continued", acknowledged=record.acknowledged_at is not None,
+                                   severity=record.severity,
+                                   previous_severity=upsert.previous_severity):
+                    notify.append(record.id)
+            else:
+                finding_id = open_ids.get((key.model, key.series, key.feed, key.kind))
+                if finding_id is None:
+                    continue
+                after = store.mark_finding_absent(finding_id, pass_id=state.pass_id,
+                                                  at=state.as_of, clear_after=clear_after)
+                if after.cleared_pass_id == state.pass_id:
+                    cleared.append(after.id)
+                    if should_notify("cleared", acknowledged=after.acknowledged_at is not None):
+                        notify.append(after.id)
+    return raised, cleared, notify
+
+
+__all__ = [
+    "PATH_SERIES_LIMIT",
+    "PassNotifier",
+    "PassReport",
+    "baseline_rows",
+    "business_key",
+    "cadence_steps",
+    "files_waiting",
+    "ingest_spec",
+    "run_pass",
+]
