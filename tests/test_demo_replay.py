@@ -1,0 +1,133 @@
+"""The demo replayed end to end: every planted change is found, the healthy models stay quiet,
+the digest renders, and ``plumbline status`` lists what was found (DESIGN.md section 10).
+
+The planted changes are the oracle (``monitor.demo.planted_changes``): for each, a finding of
+an accepted kind on the right model and series (or feed), raised by a pass between the first
+week that could show it and its detection deadline, whose stated period lies within the
+planted week's tolerance.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import date, datetime
+from pathlib import Path
+
+import pytest
+
+from monitor.cli import main
+from monitor.commands.demo import render_digest
+from monitor.demo import healthy_series, planted_changes
+from monitor.demo.replay import ReplayResult, replay_scenario
+from monitor.store import FindingRecord, Store
+
+
+@pytest.fixture(scope="module")
+def replayed(tmp_path_factory: pytest.TempPathFactory) -> ReplayResult:
+    return replay_scenario(tmp_path_factory.mktemp("demo"))
+
+
+@pytest.fixture(scope="module")
+def findings(replayed: ReplayResult) -> list[FindingRecord]:
+    with Store.open(replayed.config.database, readonly=True) as store:
+        return store.list_findings(state="all")
+
+
+def _pass_clock(replayed: ReplayResult, pass_id: int) -> str:
+    with Store.open(replayed.config.database, readonly=True) as store:
+        record = store.get_pass(pass_id)
+    assert record is not None
+    return record.as_of.isoformat()
+
+
+@pytest.mark.parametrize("change", planted_changes(), ids=lambda c: f"{c.kind.value}-{c.model}")
+def test_every_planted_change_is_found_in_time(
+    change, replayed: ReplayResult, findings: list[FindingRecord]
+) -> None:
+    record = change.as_record()
+    feed_level = change.kind.value == "stale_feed"
+    candidates = [
+        f for f in findings
+        if f.kind.value in record["accepted_kinds"]
+        and (f.feed == change.feed if feed_level else
+             (f.model == change.model and f.series == change.series))
+    ]
+    assert candidates, f"no {record['accepted_kinds']} finding for {change.model}/{change.series}"
+    in_time = [
+        f for f in candidates
+        if datetime.fromisoformat(record["earliest_pass"])
+        <= _pass_moment(replayed, f.first_pass_id)
+        <= datetime.fromisoformat(record["latest_pass"])
+    ]
+    assert in_time, (
+        f"{change.kind.value} on {change.model}/{change.series} raised only at "
+        f"{[_pass_clock(replayed, f.first_pass_id) for f in candidates]}, expected between "
+        f"{record['earliest_pass']} and {record['latest_pass']}"
+    )
+    tolerance = change.period_tolerance_weeks
+    if tolerance is not None:
+        planted = change.week
+        near = [
+            f for f in in_time
+            if f.since_period is not None
+            and abs((date.fromisoformat(f.since_period) - planted).days)
+            <= tolerance * 7
+        ]
+        assert near, (
+            f"stated periods {[f.since_period for f in in_time]} are not within {tolerance} "
+            f"week(s) of the planted week {planted}"
+        )
+
+
+def _pass_moment(replayed: ReplayResult, pass_id: int) -> datetime:
+    with Store.open(replayed.config.database, readonly=True) as store:
+        record = store.get_pass(pass_id)
+    assert record is not None
+    return record.as_of
+
+
+def test_healthy_models_raise_no_relationship_finding(findings: list[FindingRecord]) -> None:
+    for healthy in healthy_series():
+        if not healthy.strict:
+            continue
+        wrong = [
+            (f.kind.value, f.since_period) for f in findings
+            if f.model == healthy.model and f.series == healthy.series
+            and f.kind in healthy.absent_kinds
+        ]
+        assert wrong == [], f"{healthy.model} is healthy but raised {wrong}"
+
+
+def test_the_quiet_feed_is_the_only_stale_one(findings: list[FindingRecord]) -> None:
+    stale = {f.feed for f in findings if f.kind.value == "stale_feed"}
+    quiet = {c.feed for c in planted_changes() if c.kind.value == "stale_feed"}
+    assert stale == quiet
+
+
+def test_the_digest_renders_and_status_lists_the_findings(
+    replayed: ReplayResult, findings: list[FindingRecord], capsys: pytest.CaptureFixture[str]
+) -> None:
+    digest = render_digest(replayed.config)
+    text = Path(digest).read_text(encoding="utf-8")
+    for change in planted_changes():
+        assert change.model in text or change.feed in text
+    capsys.readouterr()
+    assert main(["status", "--all", "--format", "json",
+                 "-c", str(replayed.root / "plumbline.yaml")]) == 0
+    listed = json.loads(capsys.readouterr().out)
+    assert {f["id"] for f in listed["findings"]} == {f.id for f in findings}
+    for change in planted_changes():
+        assert any(
+            f["kind"] in change.as_record()["accepted_kinds"]
+            and (f["model"] == change.model or f["feed"] == change.feed)
+            for f in listed["findings"]
+        )
+
+
+def test_forecasts_answer_each_plan_row_once(replayed: ReplayResult) -> None:
+    with Store.open(replayed.config.database, readonly=True) as store:
+        forecasts = store.list_forecasts()
+    keys = [(f.model, f.series, f.target_period) for f in forecasts]
+    assert len(keys) == len(set(keys))
+    # weekly plans: each forecast targets the week after the latest actual (lead 1)
+    assert {f.lead for f in forecasts} == {1}
