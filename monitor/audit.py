@@ -1,0 +1,160 @@
+"""The coverage audit over the database: every scored forecast of every model, per series.
+
+One function makes the records of DESIGN.md section 9 (``plumbline audit --format json``), and
+every report that shows coverage (the digest, the model pages) takes its numbers from it, so the
+figures a reader sees in an e-mail are the figures the command prints for the same database.
+
+    audit_models(store, config, *, model=None, last=None, by_lead=False) -> list[dict]
+        One record per (model, series), or per (model, series, lead) with ``by_lead``; keys in
+        ``AUDIT_COLUMNS`` order, plus ``window`` with ``last`` and ``lead`` with ``by_lead``.
+    summarise_coverage(records) -> dict | None
+        The records of one model pooled: counts summed, hit rate with its Clopper–Pearson
+        interval, the zone of the pooled miss count, and how many series sit in each zone.
+
+What is scored (DESIGN.md section 6): by default, per (series, target period) the last forecast
+issued before the actual arrived; with ``by_lead`` every issue, split by lead. ``last=N`` keeps
+each entry's latest N scored forecasts (with the default audit: the latest N scored periods of each
+series). ``nominal`` is the model's level from the config (``interval.level`` for an audited
+interval forecast). Models come in config order, series sorted with the single series of a model
+without ``per:`` (``null``) first, leads increasing. A model with nothing scored yet has no record.
+
+The audit only reads what passes have scored, so it stands at the latest pass's business clock
+(DESIGN.md section 6) without being told.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from monitor.config import PlumblineConfig, lookup_model
+from monitor.stats.coverage import audit_batch, clopper_pearson_interval, traffic_light_zone
+from monitor.store import Store
+
+# The keys of each record, in the order of DESIGN.md section 9 (``window``/``lead`` may follow).
+AUDIT_COLUMNS: tuple[str, ...] = (
+    "model",
+    "series",
+    "scored",
+    "hits",
+    "hit_rate",
+    "hit_rate_lower",
+    "hit_rate_upper",
+    "misses_high",
+    "misses_low",
+    "nominal",
+    "kupiec_p_value",
+    "independence_p_value",
+    "christoffersen_p_value",
+    "zone",
+    "mean_width",
+    "interval_score",
+)
+
+# Confidence of the Clopper–Pearson interval around each hit rate (not the intervals' level).
+HIT_RATE_CONFIDENCE = 0.95
+
+
+def audit_models(
+    store: Store,
+    config: PlumblineConfig,
+    *,
+    model: str | None = None,
+    last: int | None = None,
+    by_lead: bool = False,
+) -> list[dict[str, Any]]:
+    """The coverage audit records of every model in the config (or of ``model``).
+
+    An unknown ``model`` raises ``UsageError`` with the nearest name. ``last`` must be a positive
+    whole number. See the module docstring for what is scored and in which order.
+    """
+    if last is not None and (isinstance(last, bool) or last < 1):
+        raise ValueError(f"last must be a positive whole number of periods, not {last!r}")
+    names = [model] if model is not None else list(config.models)
+    records: list[dict[str, Any]] = []
+    for name in names:
+        declared = lookup_model(config, name)
+        scored = store.scored_forecasts(name, latest_only=not by_lead)
+        if len(scored) == 0:
+            continue
+        series_names = sorted(set(scored.series), key=_series_order)
+        index = {series: i for i, series in enumerate(series_names)}
+        group = np.fromiter((index[s] for s in scored.series), np.int64, len(scored))
+        batch = audit_batch(
+            group,
+            scored.actual,
+            scored.lower,
+            scored.upper,
+            declared.nominal_level,
+            lead=scored.lead if by_lead else None,
+            last=last,
+            confidence=HIT_RATE_CONFIDENCE,
+        )
+        for i in range(len(batch)):
+            audit = batch.audit(i)
+            if audit.scored == 0:
+                continue
+            record: dict[str, Any] = {
+                "model": name,
+                "series": series_names[int(batch.group[i])],
+            }
+            record.update(audit.as_record())
+            records.append(record)
+    return records
+
+
+def summarise_coverage(records: list[dict[str, Any]]) -> dict[str, Any] | None:
+    """Pool the audit records of one model (one window, no ``by_lead``) into one summary.
+
+    Keys: ``model``, ``series_count``, ``scored``, ``hits``, ``misses_high``, ``misses_low``,
+    ``hit_rate`` (pooled hits / pooled scored), ``hit_rate_lower``/``hit_rate_upper`` (Clopper &
+    Pearson 1934 on the pooled counts), ``nominal``, ``zone`` (traffic light of the pooled miss
+    count, Basel Committee 1996), ``zones`` (series per zone), ``mean_width`` (weighted by
+    forecasts scored), ``window``. Pooling treats the series' forecasts as one sample; it is a
+    summary for reading, not a test, and no finding is raised from it. None for no records.
+    """
+    if not records:
+        return None
+    models = {record["model"] for record in records}
+    if len(models) != 1:
+        raise ValueError(f"summarise one model's records at a time, not {sorted(models)}")
+    if any("lead" in record for record in records):
+        raise ValueError("summarise records without by_lead: each forecast must count once")
+    scored = sum(int(r["scored"]) for r in records)
+    hits = sum(int(r["hits"]) for r in records)
+    high = sum(int(r["misses_high"]) for r in records)
+    low = sum(int(r["misses_low"]) for r in records)
+    nominal = float(records[0]["nominal"])
+    lower, upper = clopper_pearson_interval(hits, scored, HIT_RATE_CONFIDENCE)
+    zones = {"green": 0, "yellow": 0, "red": 0}
+    for record in records:
+        if record["zone"] is not None:
+            zones[record["zone"]] += 1
+    zone = traffic_light_zone(high + low, scored, nominal)
+    width_total = sum(
+        float(r["mean_width"]) * int(r["scored"]) for r in records if r["mean_width"] is not None
+    )
+    return {
+        "model": records[0]["model"],
+        "series_count": len(records),
+        "scored": scored,
+        "hits": hits,
+        "misses_high": high,
+        "misses_low": low,
+        "hit_rate": hits / scored if scored else None,
+        "hit_rate_lower": float(lower) if scored else None,
+        "hit_rate_upper": float(upper) if scored else None,
+        "nominal": nominal,
+        "zone": None if zone is None else zone.value,
+        "zones": zones,
+        "mean_width": width_total / scored if scored else None,
+        "window": records[0].get("window"),
+    }
+
+
+def _series_order(series: str | None) -> tuple[int, str]:
+    return (0, "") if series is None else (1, series)
+
+
+__all__ = ["AUDIT_COLUMNS", "HIT_RATE_CONFIDENCE", "audit_models", "summarise_coverage"]

@@ -1,0 +1,490 @@
+"""HTML pages written to ``notify.html_dir``: one per model, one per pass, the digest, an index.
+
+Rendering uses jinja2 with the templates inside the package (``monitor/notify/templates``,
+partials start with ``_``) and autoescaping on for every ``.html`` template: series names,
+period labels, file names and messages come from files people drop, and are always escaped.
+The only markup a page takes as is, is chart SVG made by matplotlib and checked by
+``charts.check_svg``. Pages carry their style inline and a Content-Security-Policy that forbids
+scripts and outside fetches, so they work from a file with no network.
+
+Files are written atomically (a temporary file, then a rename): a reader never sees half a page.
+File names: ``model-<name>.html``, ``pass-<id>.html``, ``digest-<YYYY-MM-DD>.html``,
+``index.html``.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import tempfile
+from collections.abc import Iterable
+from dataclasses import dataclass
+from datetime import datetime
+from functools import cache
+from pathlib import Path
+from typing import Any
+from urllib.parse import quote
+
+import jinja2
+
+from monitor import __version__
+from monitor.audit import audit_models, summarise_coverage
+from monitor.config import PlumblineConfig
+from monitor.notify.charts import Chart, ChartData, draw
+from monitor.notify.fits import FitView, read_fit
+from monitor.notify.series import (
+    KIND_CHART,
+    ModelHistory,
+    actuals_data,
+    coefficient_data,
+    hit_rate_data,
+    load_model,
+    monitoring_data,
+    scatter_data,
+    series_label,
+)
+from monitor.notify.views import (
+    ChartView,
+    CoverageRow,
+    FindingView,
+    ForecastView,
+    chart_view,
+    coverage_row,
+    forecast_view,
+    ordered_findings,
+    severity_counts,
+)
+from monitor.notify.words import (
+    CAUTION,
+    hit_rate_sentence,
+    join_words,
+    level_text,
+    local_time,
+    number,
+    percent,
+    plural,
+)
+from monitor.store import Store
+
+# Charts drawn per model on a page or in a digest (DESIGN.md section 11: about 30 ms each).
+CHART_CAP = 25
+# Series whose newest fit a model page shows in full when the model has many.
+DETAIL_CAP = 25
+
+
+@cache
+def environment() -> jinja2.Environment:
+    env = jinja2.Environment(
+        loader=jinja2.PackageLoader("monitor.notify", "templates"),
+        autoescape=jinja2.select_autoescape(
+            enabled_extensions=("html",), disabled_extensions=("txt", "css"),
+            default_for_string=True, default=True,
+        ),
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+        keep_trailing_newline=True,
+    )
+    env.globals["model_page"] = model_page_name
+    env.globals["version"] = __version__
+    return env
+
+
+def render(template: str, **context: Any) -> str:
+    """Render one of the package's templates (autoescaped when it is ``.html``)."""
+    context.setdefault("email", False)
+    context.setdefault("clock", None)
+    context.setdefault("masthead", "")
+    return environment().get_template(template).render(**context)
+
+
+def model_page_name(model: str) -> str:
+    return f"model-{quote(model, safe='')}.html"
+
+
+def pass_page_name(pass_id: int) -> str:
+    return f"pass-{int(pass_id)}.html"
+
+
+def digest_page_name(day: str) -> str:
+    if not re.fullmatch(r"\d{4}-\d{2}-\d{2}", day):
+        raise ValueError(f"digest day {day!r} is not YYYY-MM-DD")
+    return f"digest-{day}.html"
+
+
+def write_page(folder: Path, name: str, text: str) -> Path:
+    """Write ``folder/name`` atomically (temporary file, fsync, rename)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    target = folder / name
+    handle, temp = tempfile.mkstemp(prefix=f".{name}.", suffix=".part", dir=folder)
+    try:
+        with os.fdopen(handle, "w", encoding="utf-8", newline="\n") as out:
+            out.write(text)
+            out.flush()
+            os.fsync(out.fileno())
+        os.chmod(temp, 0o644)
+        os.replace(temp, target)
+    except BaseException:
+        Path(temp).unlink(missing_ok=True)
+        raise
+    return target
+
+
+# ------------------------------------------------------------------------------ shared pieces
+
+
+def attention_sentence(findings: list[FindingView], *, model_count: int) -> str:
+    """The opening sentence of a page: what needs attention, most urgent first."""
+    if not findings:
+        return (
+            f"Nothing needs attention: no open findings across {plural(model_count, 'model')}."
+        )
+    counts = severity_counts(findings)
+    parts = [plural(n, word) for word, n in counts.items() if n]
+    top = findings[0]
+    verb = "needs" if len(findings) == 1 else "need"
+    return (
+        f"{plural(len(findings), 'open finding')} {verb} attention ({join_words(parts)}); "
+        f"the most urgent is {top.kind_words} in {top.scope} ({top.severity})."
+    )
+
+
+def coverage_sentence(summary: dict[str, Any] | None, what: str) -> str:
+    """One model's pooled coverage over a window, as a sentence (the pooled zone is shown beside
+    it, as a word with its colour)."""
+    if summary is None:
+        return f"Nothing scored {what} yet."
+    series = "" if summary["series_count"] == 1 else f" across {summary['series_count']} series"
+    zones = summary["zones"]
+    spread = ""
+    if summary["series_count"] > 1 and (zones["yellow"] or zones["red"]):
+        spread = f"; series in the yellow zone: {zones['yellow']}, red: {zones['red']}"
+    return (
+        f"{what[:1].upper()}{what[1:]}: "
+        f"{hit_rate_sentence(summary['hits'], summary['scored'], summary['nominal'])}{series} "
+        f"(hit rate {percent(summary['hit_rate'], 1)}, interval "
+        f"{percent(summary['hit_rate_lower'], 1)} to {percent(summary['hit_rate_upper'], 1)}"
+        f"{spread})."
+    )
+
+
+class ChartBudget:
+    """Charts drawn for one model, up to ``cap`` (DESIGN.md section 11)."""
+
+    def __init__(self, prefix: str, cap: int, *, svg: bool, png: bool) -> None:
+        self.prefix, self.cap, self.svg, self.png = prefix, cap, svg, png
+        self.drawn: list[Chart] = []
+        self.skipped = 0
+
+    def add(self, data: ChartData | None) -> Chart | None:
+        if data is None:
+            return None
+        if len(self.drawn) >= self.cap:
+            self.skipped += 1
+            return None
+        key = f"{self.prefix}-{len(self.drawn) + 1}"
+        chart = draw(data, key=key, svg=self.svg, png=self.png)
+        self.drawn.append(chart)
+        return chart
+
+
+def series_chart_data(
+    store: Store, history: ModelHistory, series: str | None, *, full: bool
+) -> list[ChartData]:
+    """Charts for one series: its actuals against intervals, then the chart each open finding's
+    kind calls for; ``full`` (a model's only series) adds the scatter, the first slope and the
+    monitoring path."""
+    wanted: list[str] = ["actuals"]
+    for finding in history.findings_of(series):
+        kind_chart = KIND_CHART.get(finding.kind)
+        if kind_chart is not None and kind_chart not in wanted:
+            wanted.append(kind_chart)
+    if full:
+        wanted += [k for k in ("scatter", "coefficient", "monitoring") if k not in wanted]
+    slopes = list(history.model.predictors or ())
+    out: list[ChartData] = []
+    for kind in wanted:
+        data: ChartData | None
+        if kind == "actuals":
+            data = actuals_data(history, series) if len(history.scored_rows(series)) else None
+        elif kind == "coefficient":
+            data = coefficient_data(store, history, series, slopes[0]) if slopes else None
+        elif kind == "monitoring":
+            data = monitoring_data(history, series)
+        else:
+            data = scatter_data(store, history, series)
+        if data is not None:
+            out.append(data)
+    return out
+
+
+# ------------------------------------------------------------------------------ model pages
+
+
+@dataclass(frozen=True)
+class CoverageLine:
+    sentence: str
+    zone: str | None  # the pooled zone, shown beside the sentence
+
+
+@dataclass(frozen=True)
+class SeriesDetail:
+    label: str
+    fit: FitView | None
+    findings: list[FindingView]
+    charts: list[ChartView]
+
+
+@dataclass(frozen=True)
+class SeriesRow:
+    series: str
+    window: str
+    n: str
+    r_squared: str
+    slope: str
+    interval: str
+    open_findings: int
+
+
+@dataclass(frozen=True)
+class ModelPage:
+    name: str
+    sentence: str
+    facts: str
+    findings: list[FindingView]
+    coverage_sentences: list[CoverageLine]
+    coverage_rows: list[CoverageRow]
+    coverage_chart: ChartView | None
+    series_rows: list[SeriesRow]
+    details: list[SeriesDetail]
+    details_note: str
+    forecasts: list[ForecastView]
+    charts_note: str
+
+
+def build_model_page(
+    store: Store,
+    config: PlumblineConfig,
+    name: str,
+    *,
+    history: ModelHistory | None = None,
+    chart_cap: int = CHART_CAP,
+) -> ModelPage:
+    """Everything a model's page shows, with its charts drawn (SVG)."""
+    history = history or load_model(store, config, name)
+    model = history.model
+    findings = ordered_findings(history.open_findings)
+    windows = {
+        13: audit_models(store, config, model=name, last=13),
+        52: audit_models(store, config, model=name, last=52),
+        None: audit_models(store, config, model=name),
+    }
+    sentences = []
+    spans = ((13, "over the latest 13 scored periods"), (52, "over the latest 52 scored periods"),
+             (None, "over every scored period"))
+    for key, what in spans:
+        summary = summarise_coverage(windows[key])
+        sentences.append(CoverageLine(coverage_sentence(summary, what),
+                                      None if summary is None else summary["zone"]))
+    budget = ChartBudget(f"m-{_css_key(name)}", chart_cap, svg=True, png=False)
+    coverage_chart = None
+    if len(history.scored):
+        pooled = hit_rate_data(history, pooled=True)
+        chart = budget.add(pooled)
+        coverage_chart = None if chart is None else chart_view(chart)
+    single = history.series == [None] or model.per is None
+    featured = [None] if single else history.flagged[:DETAIL_CAP]
+    details = []
+    for series in featured:
+        fit = history.latest_fits.get(series)
+        charts = [budget.add(d) for d in series_chart_data(store, history, series, full=single)]
+        details.append(SeriesDetail(
+            label=series_label(series),
+            fit=None if fit is None else read_fit(fit, response=model.response,
+                                                  significance=model.thresholds.significance),
+            findings=ordered_findings(history.findings_of(series)),
+            charts=[chart_view(c) for c in charts if c is not None],
+        ))
+    flagged_count = len(history.flagged)
+    if single:
+        details_note = ""
+    elif not flagged_count:
+        details_note = ("No series has an open finding; the table above lists each series' "
+                        "newest fit.")  # fmt: skip
+    elif flagged_count > DETAIL_CAP:
+        details_note = (f"Shown in full: the {DETAIL_CAP} most urgent of the {flagged_count} "
+                        "series with open findings.")  # fmt: skip
+    else:
+        details_note = (f"Shown in full: the {plural(flagged_count, 'series', 'series')} with "
+                        "open findings.")  # fmt: skip
+    predictors = ", ".join(model.predictors or ()) or "none (an interval forecast made elsewhere)"
+    version = store.current_model_version(name)
+    facts = (
+        f"Feed {model.feed}; response {model.response}; predictors {predictors}"
+        + (f"; one series per {model.per}" if model.per else "")
+        + f"; intervals at {level_text(model.nominal_level)}; window {model.window}"
+        + (f"; version {version.version}" if version else "")
+        + (f"; owners {', '.join(model.owners)}" if model.owners else "")
+        + "."
+    )
+    return ModelPage(
+        name=name,
+        sentence=_model_sentence(name, history, findings, windows[13]),
+        facts=facts,
+        findings=findings,
+        coverage_sentences=sentences,
+        coverage_rows=[coverage_row(r) for r in windows[52]],
+        coverage_chart=coverage_chart,
+        series_rows=_series_rows(history),
+        details=details,
+        details_note=details_note,
+        forecasts=[forecast_view(f) for f in history.open_forecasts()],
+        charts_note=(
+            "" if not budget.skipped else
+            f"{plural(budget.skipped, 'further chart')} not drawn (at most {chart_cap} per model)."
+        ),
+    )
+
+
+def _css_key(name: str) -> str:
+    return re.sub(r"[^A-Za-z0-9-]", "-", name)
+
+
+def _model_sentence(
+    name: str, history: ModelHistory, findings: list[FindingView], last13: list[dict[str, Any]]
+) -> str:
+    count = len(history.series)
+    opening = f"{plural(count, 'series', 'series')}" if history.model.per else "One series"
+    summary = summarise_coverage(last13)
+    coverage = (
+        "Nothing scored yet." if summary is None else
+        f"{summary['hits']} of the latest {summary['scored']} actuals inside their "
+        f"{level_text(summary['nominal'])} prediction intervals (pooled zone {summary['zone']})."
+    )
+    if not findings:
+        return f"{opening}, no open findings. {coverage}"
+    counts = severity_counts(findings)
+    parts = join_words([plural(n, word) for word, n in counts.items() if n])
+    top = findings[0]
+    where = "" if top.series is None else f" in series {top.series}"
+    return (
+        f"{opening}; {plural(len(findings), 'open finding')} ({parts}), the most urgent a "
+        f"{top.kind_words}{where}. {coverage}"
+    )
+
+
+def _series_rows(history: ModelHistory) -> list[SeriesRow]:
+    rows = []
+    counts: dict[str | None, int] = {}
+    for finding in history.open_findings:
+        counts[finding.series] = counts.get(finding.series, 0) + 1
+    for series in history.series:
+        fit = history.latest_fits.get(series)
+        view = None if fit is None else read_fit(fit, response=history.model.response)
+        slope = None if view is None else view.slope()
+        rows.append(SeriesRow(
+            series="whole model" if series is None else series,
+            window="no fit yet" if fit is None else f"{fit.window_first} to {fit.window_last}",
+            n="" if fit is None else str(fit.n),
+            r_squared="" if view is None or view.r_squared is None else f"{view.r_squared:.2f}",
+            slope="" if slope is None else number(slope.estimate),
+            interval="" if slope is None else f"{number(slope.lower)} to {number(slope.upper)}",
+            open_findings=counts.get(series, 0),
+        ))
+    return rows
+
+
+def render_model_page(page: ModelPage, *, clock: str | None) -> str:
+    return render("model.html", page=page, page_title=f"Model {page.name}",
+                  masthead=f"model {page.name}", clock=clock, caution=CAUTION)
+
+
+def write_model_pages(
+    store: Store,
+    config: PlumblineConfig,
+    out_dir: Path | None = None,
+    *,
+    models: Iterable[str] | None = None,
+    chart_cap: int = CHART_CAP,
+) -> list[Path]:
+    """Write ``model-<name>.html`` for each model (or those named); returns the paths."""
+    folder = Path(out_dir or config.notify.html_dir)
+    clock = business_clock_text(store, config)
+    paths = []
+    for name in models if models is not None else config.models:
+        page = build_model_page(store, config, name, chart_cap=chart_cap)
+        paths.append(write_page(folder, model_page_name(name),
+                                render_model_page(page, clock=clock)))
+    return paths
+
+
+def business_clock_text(store: Store, config: PlumblineConfig) -> str | None:
+    latest = store.latest_pass()
+    return None if latest is None else local_time(latest.as_of, config.zone)
+
+
+# ------------------------------------------------------------------------------ index
+
+
+@dataclass(frozen=True)
+class IndexEntry:
+    href: str
+    label: str
+    note: str
+
+
+def write_index(store: Store, config: PlumblineConfig, out_dir: Path | None = None) -> Path:
+    """``index.html``: the digests, the models and the passes whose pages are in the folder."""
+    folder = Path(out_dir or config.notify.html_dir)
+    folder.mkdir(parents=True, exist_ok=True)
+    present = {p.name for p in folder.glob("*.html")}
+    digests = sorted((n for n in present if re.fullmatch(r"digest-\d{4}-\d{2}-\d{2}\.html", n)),
+                     reverse=True)
+    models = []
+    for name in config.models:
+        count = len(store.open_findings(model=name))
+        note = "no open findings" if not count else f"{plural(count, 'open finding')}"
+        if model_page_name(name) in present:
+            models.append(IndexEntry(model_page_name(name), name, note))
+    passes = []
+    for record in store.list_passes(limit=60):
+        if pass_page_name(record.id) in present:
+            passes.append(IndexEntry(pass_page_name(record.id), f"Pass {record.id}",
+                                     f"business clock {local_time(record.as_of, config.zone)}, "
+                                     f"{record.status}"))
+    text = render(
+        "index.html",
+        page_title="Reports",
+        masthead="reports",
+        clock=business_clock_text(store, config),
+        digests=[IndexEntry(n, n[len("digest-"):-len(".html")], "") for n in digests],
+        models=models,
+        passes=passes,
+    )
+    return write_page(folder, "index.html", text)
+
+
+def generated_at(moment: datetime, config: PlumblineConfig) -> str:
+    return local_time(moment, config.zone)
+
+
+__all__ = [
+    "CHART_CAP",
+    "DETAIL_CAP",
+    "ChartBudget",
+    "ModelPage",
+    "attention_sentence",
+    "build_model_page",
+    "business_clock_text",
+    "coverage_sentence",
+    "digest_page_name",
+    "environment",
+    "model_page_name",
+    "pass_page_name",
+    "render",
+    "render_model_page",
+    "series_chart_data",
+    "write_index",
+    "write_model_pages",
+    "write_page",
+]

@@ -1,0 +1,273 @@
+"""What a pass tells people: its page, and one message per recipient with new or cleared findings.
+
+    render_pass_report(store, config, pass_id, *, out_dir=None, escalated=(),
+                       write_models=True) -> PassReport
+
+writes ``pass-<id>.html`` (with ``write_models``, every model's page and the index too) and
+returns the pass's new and cleared findings and, for each recipient, one ``OwnerMessage``
+covering all their models (DESIGN.md section 5 step 7): a finding on a model goes to its
+``owners``, a finding on a feed to the owners of every model that reads the feed. Acknowledged
+findings are never sent; ``escalated`` names open findings whose severity rose in this pass (the
+pass knows; the database keeps only the new severity), which are sent again. A recipient with
+nothing to hear about gets no message, and a pass with nothing new sends nothing.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass
+from datetime import datetime
+from pathlib import Path
+
+from monitor.audit import audit_models, summarise_coverage
+from monitor.config import PlumblineConfig
+from monitor.notify.charts import Chart
+from monitor.notify.html import (
+    CHART_CAP,
+    ChartBudget,
+    attention_sentence,
+    coverage_sentence,
+    pass_page_name,
+    render,
+    series_chart_data,
+    write_index,
+    write_model_pages,
+    write_page,
+)
+from monitor.notify.mail import DeliveryReport, compose_owner_messages, deliver_outbox, enqueue
+from monitor.notify.message import InlineImage, MessageContent, OwnerMessage
+from monitor.notify.series import ModelHistory, load_model
+from monitor.notify.views import (
+    ChartView,
+    FindingView,
+    ForecastView,
+    chart_view,
+    forecast_view,
+    ordered_findings,
+    severity_counts,
+)
+from monitor.notify.words import CAUTION, join_words, local_date, local_time, plural
+from monitor.store import FindingRecord, PassRecord, Store, StoreError
+
+FORECASTS_CAP = 25  # forecasts listed per model on a pass page
+EMAIL_CHART_CAP = 6  # PNG charts in one pass message
+
+
+@dataclass(frozen=True)
+class PassReport:
+    pass_id: int
+    path: Path
+    new: tuple[FindingRecord, ...]
+    cleared: tuple[FindingRecord, ...]
+    escalated: tuple[FindingRecord, ...]
+    messages: tuple[OwnerMessage, ...]
+
+
+@dataclass(frozen=True)
+class ModelSection:
+    model: str
+    sentence: str
+    zone: str | None
+    charts: list[ChartView]
+
+
+def _recipients(config: PlumblineConfig, record: FindingRecord) -> set[str]:
+    if record.model is not None:
+        model = config.models.get(record.model)
+        return set(model.owners or ()) if model is not None else set()
+    return {owner for model in config.models.values() if model.feed == record.feed
+            for owner in (model.owners or ())}  # fmt: skip
+
+
+def _sentence(record: PassRecord, new: list[FindingView], cleared: list[FindingView],
+              issued: int, clock: str) -> str:
+    parts = []
+    if new:
+        counts = severity_counts(new)
+        detail = join_words([plural(n, w) for w, n in counts.items() if n])
+        top = new[0]
+        parts.append(f"raised {plural(len(new), 'finding')} ({detail}), the most urgent "
+                     f"{top.kind_words} in {top.scope}")  # fmt: skip
+    else:
+        parts.append("raised no new finding")
+    parts.append(f"cleared {len(cleared)}")
+    parts.append(f"issued {plural(issued, 'forecast')}")
+    return f"Pass {record.id} (business clock {clock}, {record.status}) " + join_words(parts) + "."
+
+
+def _model_sections(
+    store: Store, config: PlumblineConfig, histories: dict[str, ModelHistory],
+    new: list[FindingRecord], *, svg: bool, png: bool, total_cap: int | None,
+) -> tuple[list[ModelSection], list[Chart]]:
+    sections: list[ModelSection] = []
+    drawn: list[Chart] = []
+    models = [name for name in config.models if any(f.model == name for f in new)]
+    for index, name in enumerate(models):
+        history = histories[name]
+        budget = ChartBudget(f"p{index + 1}", CHART_CAP, svg=svg, png=png)
+        seen: set[str | None] = set()
+        for finding in ordered_findings(f for f in new if f.model == name):
+            if finding.series in seen:
+                continue
+            seen.add(finding.series)
+            for data in series_chart_data(store, history, finding.series, full=False):
+                if total_cap is not None and len(drawn) + len(budget.drawn) >= total_cap:
+                    break
+                budget.add(data)
+        summary = summarise_coverage(audit_models(store, config, model=name, last=13))
+        sections.append(ModelSection(
+            name, coverage_sentence(summary, "over the latest 13 scored periods"),
+            None if summary is None else summary["zone"],
+            [chart_view(c, email=png and not svg) for c in budget.drawn],
+        ))
+        drawn += budget.drawn
+    return sections, drawn
+
+
+def _render(
+    template: str, store: Store, config: PlumblineConfig, record: PassRecord,
+    histories: dict[str, ModelHistory], new: list[FindingRecord], cleared: list[FindingRecord],
+    escalated: list[FindingRecord], *, email: bool, with_charts: bool = True,
+) -> tuple[str, list[Chart]]:
+    clock = local_time(record.as_of, config.zone)
+    new_views = ordered_findings(new, new_ids=[f.id for f in new])
+    cleared_views = ordered_findings(cleared)
+    escalated_views = ordered_findings(escalated)
+    issued = store.list_forecasts(pass_id=record.id)
+    forecasts: list[ForecastView] = []
+    notes: list[str] = []
+    for name in config.models:
+        rows = [f for f in issued if f.model == name]
+        forecasts += [forecast_view(f) for f in rows[:FORECASTS_CAP]]
+        if len(rows) > FORECASTS_CAP:
+            notes.append(f"{name}: {len(rows) - FORECASTS_CAP} more forecasts on its page.")
+    sections, charts = _model_sections(
+        store, config, histories, new + escalated, svg=not email, png=email,
+        total_cap=(EMAIL_CHART_CAP if email else None) if with_charts else 0,
+    )
+    open_views = ordered_findings(store.open_findings())
+    text = render(
+        template,
+        record=record,
+        sentence=_sentence(record, new_views, cleared_views, len(issued), clock),
+        attention=attention_sentence(open_views, model_count=len(config.models)),
+        new=new_views,
+        cleared=cleared_views,
+        escalated=escalated_views,
+        sections=sections,
+        forecasts=forecasts,
+        forecast_notes=notes,
+        counts=sorted(record.counts.items()) if isinstance(record.counts, dict) else [],
+        caution=CAUTION,
+        email=email,
+        page_title=f"Pass {record.id}",
+        masthead=f"pass {record.id}",
+        clock=clock,
+    )
+    return text, charts
+
+
+def render_pass_report(
+    store: Store,
+    config: PlumblineConfig,
+    pass_id: int,
+    *,
+    out_dir: Path | None = None,
+    escalated: Iterable[int] = (),
+    notify: Iterable[int] | None = None,
+    write_models: bool = True,
+) -> PassReport:
+    """Write the pass's page (and the model pages and index) and build its messages.
+
+    ``notify``, when given, is the pass's own list of findings to send (``findings_to_notify``:
+    raised, more severe, cleared; acknowledged ones left out): the messages cover exactly those,
+    and any among them neither raised nor cleared in this pass counts as more severe.
+    """
+    record = store.get_pass(pass_id)
+    if record is None:
+        raise StoreError(f"no pass with id {pass_id}")
+    folder = Path(out_dir or config.notify.html_dir)
+    new = store.list_findings(raised_in_pass=pass_id)
+    cleared = store.list_findings(cleared_in_pass=pass_id)
+    raised = {f.id for f in new}
+    closed = {f.id for f in cleared}
+    wanted = None if notify is None else set(notify)
+    rising = set(escalated) | ((wanted or set()) - raised - closed)
+    rose = [f for f in (store.get_finding(i) for i in sorted(rising))
+            if f is not None and f.id not in raised and f.state.value != "cleared"]
+    histories = {name: load_model(store, config, name) for name in config.models}
+    html, _ = _render("pass.html", store, config, record, histories, new, cleared, rose,
+                      email=False)
+    path = write_page(folder, pass_page_name(pass_id), html)
+    if write_models:
+        write_model_pages(store, config, folder)
+    write_index(store, config, folder)
+
+    messages = []
+    recipients: dict[str, list[FindingRecord]] = {}
+    for finding in (*new, *cleared, *rose):
+        if finding.acknowledged_at is not None or (wanted is not None and finding.id not in wanted):
+            continue
+        for address in _recipients(config, finding):
+            recipients.setdefault(address, []).append(finding)
+    for address in sorted(recipients):
+        mine = {f.id for f in recipients[address]}
+        mine_new = [f for f in new if f.id in mine]
+        mine_cleared = [f for f in cleared if f.id in mine]
+        mine_rose = [f for f in rose if f.id in mine]
+        html_part, charts = _render("pass.html", store, config, record, histories, mine_new,
+                                    mine_cleared, mine_rose, email=True)
+        text_part, _ = _render("pass.txt", store, config, record, histories, mine_new,
+                               mine_cleared, mine_rose, email=True, with_charts=False)
+        models = sorted({f.model for f in recipients[address] if f.model is not None})
+        content = MessageContent(
+            subject=_subject(record, config, mine_new, mine_cleared, mine_rose),
+            text=text_part,
+            html=html_part,
+            images=tuple(InlineImage(c.cid, c.png, c.filename) for c in charts
+                         if c.png is not None),
+        )
+        messages.append(OwnerMessage(address, tuple(models), f"pass:{pass_id}:{address}",
+                                     content))
+    return PassReport(pass_id, path, tuple(new), tuple(cleared), tuple(rose), tuple(messages))
+
+
+def _subject(record: PassRecord, config: PlumblineConfig, new: list[FindingRecord],
+             cleared: list[FindingRecord], rose: list[FindingRecord]) -> str:
+    parts = []
+    if new:
+        worst = max(f.severity.rank for f in new)
+        word = next(f.severity.value for f in new if f.severity.rank == worst)
+        parts.append(f"{plural(len(new), 'new finding')} (most severe: {word})")
+    if rose:
+        parts.append(f"{len(rose)} more severe")
+    if cleared:
+        parts.append(f"{len(cleared)} cleared")
+    return (f"Plumbline: {', '.join(parts) or 'no change'}; pass {record.id}, "
+            f"{local_date(record.as_of, config.zone)}")  # fmt: skip
+
+
+def notify_pass(
+    store: Store,
+    config: PlumblineConfig,
+    pass_id: int,
+    *,
+    now: datetime,
+    notify: Iterable[int] | None = None,
+    deliver: bool = True,
+) -> tuple[PassReport, DeliveryReport | None]:
+    """DESIGN.md section 5 step 7 in one call: write the pass's pages; with ``notify.email``,
+    queue one message per recipient in the outbox (dedupe key ``pass:<id>:<recipient>``, so a
+    re-run queues nothing new) and, with ``deliver``, send what is due. ``now`` is the real
+    clock (the outbox's), ``notify`` the pass's ``findings_to_notify``."""
+    report = render_pass_report(store, config, pass_id, notify=notify)
+    email = config.notify.email
+    if email is None:
+        return report, None
+    if report.messages:
+        enqueue(store, compose_owner_messages(email, report.messages, pass_id=pass_id,
+                                              created_at=now))
+    return report, deliver_outbox(store, email, now=now) if deliver else None
+
+
+__all__ = ["EMAIL_CHART_CAP", "FORECASTS_CAP", "PassReport", "notify_pass", "render_pass_report"]

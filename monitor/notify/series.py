@@ -1,0 +1,363 @@
+"""What reports read from the database about one model: its scored and open forecasts, fits and
+findings, and the chart data of its series.
+
+``load_model`` reads a model's history in a few queries (not one per series), so a page or a
+digest for a model with a thousand series costs a handful of reads plus the charts it draws for
+the flagged series only.
+"""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from dataclasses import dataclass, field
+from datetime import datetime
+
+import numpy as np
+from numpy.typing import NDArray
+
+from monitor.config import Model, PlumblineConfig
+from monitor.notify.charts import (
+    ActualsData,
+    CoefficientData,
+    HitRateData,
+    MonitoringData,
+    ScatterData,
+)
+from monitor.notify.fits import monitoring_arrays
+from monitor.stats.ols import fit_ols
+from monitor.store import (
+    FindingRecord,
+    FitRecord,
+    ForecastRecord,
+    ScoredForecasts,
+    Store,
+    date_period_key,
+)
+from monitor.vocabulary import FindingKind, OutcomeKind
+
+GRID_POINTS = 60
+
+
+@dataclass(eq=False)
+class ModelHistory:
+    """One model's records, as reports need them."""
+
+    name: str
+    model: Model
+    feed_period_type: str
+    scored: ScoredForecasts  # the default audit's rows: the last issue per target period
+    forecasts: list[ForecastRecord]
+    latest_fits: dict[str | None, FitRecord]
+    open_findings: list[FindingRecord]
+    _rows: dict[str | None, NDArray[np.int64]] = field(default_factory=dict)
+    _scored_ids: set[int] = field(default_factory=set)
+
+    def scored_rows(self, series: str | None) -> NDArray[np.int64]:
+        """Indexes into ``scored`` of one series' rows, in target-period order."""
+        return self._rows.get(series, np.zeros(0, np.int64))
+
+    @property
+    def series(self) -> list[str | None]:
+        """Every series with a fit, a forecast or a finding, sorted (None first)."""
+        names: set[str | None] = set(self.latest_fits)
+        names.update(f.series for f in self.forecasts)
+        names.update(f.series for f in self.open_findings)
+        return sorted(names, key=lambda s: (0, "") if s is None else (1, s))
+
+    @property
+    def flagged(self) -> list[str | None]:
+        """Series with an open finding, most severe first, then by name."""
+        worst: dict[str | None, int] = {}
+        for finding in self.open_findings:
+            rank = finding.severity.rank
+            worst[finding.series] = max(worst.get(finding.series, -1), rank)
+        return sorted(worst, key=lambda s: (-worst[s], (0, "") if s is None else (1, s)))
+
+    def findings_of(self, series: str | None) -> list[FindingRecord]:
+        return [f for f in self.open_findings if f.series == series]
+
+    def open_forecasts(self, period_end: datetime | None = None) -> list[ForecastRecord]:
+        """Forecasts still awaiting their actuals, the latest issue per (series, target period).
+
+        With date periods and ``period_end``, only targets after the period end's date (the
+        coming periods); an older target without its actual is overdue, not coming.
+        """
+        latest: dict[tuple[str | None, int], ForecastRecord] = {}
+        for record in self.forecasts:
+            if record.id in self._scored_ids:
+                continue
+            key = (record.series, record.target_period_key)
+            if key not in latest or record.id > latest[key].id:
+                latest[key] = record
+        rows = list(latest.values())
+        if period_end is not None and self.feed_period_type == "date":
+            limit = date_period_key(period_end.date())
+            rows = [r for r in rows if r.target_period_key > limit]
+        rows.sort(key=lambda r: ((0, "") if r.series is None else (1, r.series),
+                                 r.target_period_key))
+        return rows
+
+
+def load_model(store: Store, config: PlumblineConfig, name: str) -> ModelHistory:
+    """Read one model's scored forecasts, forecasts, latest fits and open findings."""
+    model = config.models[name]
+    scored = store.scored_forecasts(name)
+    every_scored = store.scored_forecasts(name, latest_only=False)
+    history = ModelHistory(
+        name=name,
+        model=model,
+        feed_period_type=config.feeds[model.feed].period_type,
+        scored=scored,
+        forecasts=store.list_forecasts(model=name),
+        latest_fits=store.latest_fits(name),
+        open_findings=store.open_findings(model=name),
+    )
+    grouped: dict[str | None, list[int]] = defaultdict(list)
+    for i, series in enumerate(scored.series):
+        grouped[series].append(i)
+    history._rows = {s: np.asarray(rows, dtype=np.int64) for s, rows in grouped.items()}
+    history._scored_ids = {int(i) for i in every_scored.forecast_id}
+    return history
+
+
+def series_label(series: str | None) -> str:
+    return "the whole model" if series is None else f"series {series}"
+
+
+def actuals_data(
+    history: ModelHistory, series: str | None, *, last: int | None = 52
+) -> ActualsData:
+    """The latest ``last`` scored periods of a series against their intervals, and what is open."""
+    rows = history.scored_rows(series)
+    if last is not None:
+        rows = rows[-last:]
+    scored = history.scored
+    upcoming = [f for f in history.open_forecasts() if f.series == series]
+    return ActualsData(
+        title=f"Actuals against the intervals issued for them, {series_label(series)}",
+        periods=tuple(scored.target_period[i] for i in rows),
+        actual=scored.actual[rows],
+        lower=scored.lower[rows],
+        upper=scored.upper[rows],
+        point=scored.point[rows],
+        level=history.model.nominal_level,
+        upcoming_periods=tuple(f.target_period for f in upcoming),
+        upcoming_point=np.array([f.point for f in upcoming], dtype=np.float64),
+        upcoming_lower=np.array([f.lower for f in upcoming], dtype=np.float64),
+        upcoming_upper=np.array([f.upper for f in upcoming], dtype=np.float64),
+    )
+
+
+def hit_rate_data(
+    history: ModelHistory, series: str | None = None, *, pooled: bool = True, window: int = 13
+) -> HitRateData:
+    """Hits per target period, of one series or (``pooled``) of every series of the model."""
+    scored = history.scored
+    rows = (
+        np.arange(len(scored), dtype=np.int64) if pooled else history.scored_rows(series)
+    )
+    keys = scored.target_period_key[rows]
+    order = np.unique(keys)
+    position = np.searchsorted(order, keys)
+    hit = np.array([scored.outcome[i] is OutcomeKind.HIT for i in rows], dtype=np.int64)
+    hits = np.bincount(position, weights=hit, minlength=order.size).astype(np.int64)
+    counts = np.bincount(position, minlength=order.size).astype(np.int64)
+    labels: dict[int, str] = {}
+    for i in rows:
+        labels.setdefault(int(scored.target_period_key[i]), scored.target_period[i])
+    what = "every series" if pooled else series_label(series)
+    return HitRateData(
+        title=f"Rolling hit rate over {window} periods, {what}",
+        periods=tuple(labels[int(k)] for k in order),
+        hits=hits,
+        scored=counts,
+        nominal=history.model.nominal_level,
+        window=window,
+    )
+
+
+def fit_history(store: Store, history: ModelHistory, series: str | None) -> list[FitRecord]:
+    """The series' refits that issued forecasts, and its latest fit, oldest first."""
+    ids = {f.fit_id for f in history.forecasts if f.series == series and f.fit_id is not None}
+    latest = history.latest_fits.get(series)
+    if latest is not None:
+        ids.add(latest.id)
+    fits = [store.get_fit(i) for i in sorted(ids)]
+    return [f for f in fits if f is not None and f.estimable]
+
+
+def _term_row(fit: FitRecord, term: str) -> tuple[float, float, float] | None:
+    raw = fit.coefficients
+    entry = raw.get(term) if isinstance(raw, dict) else None
+    if entry is None and isinstance(raw.get("coefficients"), list):
+        entry = next((c for c in raw["coefficients"] if c.get("term") == term), None)
+    if not isinstance(entry, dict):
+        return None
+    values = (entry.get("estimate"), entry.get("lower"), entry.get("upper"))
+    if any(not isinstance(v, int | float) for v in values):
+        return None
+    return float(values[0]), float(values[1]), float(values[2])  # type: ignore[arg-type]
+
+
+def _window_rows(
+    store: Store, history: ModelHistory, series: str | None, *, first_key: int | None,
+    last_key: int | None, last: int | None,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]] | None:
+    model = history.model
+    predictors = list(model.predictors or ())
+    columns = [*predictors, model.response]
+    windows = store.windows(model.feed, columns, series=[series], up_to_key=last_key, last=last)
+    if series not in windows.series:
+        return None
+    span = windows.rows_of(windows.series.index(series))
+    values = windows.values[span]
+    if first_key is not None:
+        values = values[windows.period_key[span] >= first_key]
+    return values[:, :-1], values[:, -1]
+
+
+def baseline_coefficient(
+    store: Store, history: ModelHistory, series: str | None, term: str
+) -> tuple[float, float, float] | None:
+    """(estimate, lower, upper) of ``term`` at the baseline: as the pass stored it with the latest
+    fit, else refitted on the baseline rows in force; None when there is no baseline."""
+    model = history.model
+    if not model.fitted:
+        return None
+    latest = history.latest_fits.get(series)
+    if latest is None:
+        return None
+    stored = latest.diagnostics.get("baseline")
+    if isinstance(stored, dict) and isinstance(stored.get("coefficients"), dict):
+        row = _term_row(FitRecord(**{**latest.__dict__, "coefficients": stored["coefficients"]}),
+                        term)
+        if row is not None:
+            return row
+    baseline = store.baseline(history.name, latest.version, series)
+    if baseline is None:
+        return None
+    rows = _window_rows(store, history, series, first_key=baseline.start_key,
+                        last_key=baseline.end_key, last=None)
+    if rows is None or rows[1].size <= model.parameter_count + 1:
+        return None
+    fit = fit_ols(rows[0], rows[1], intercept=model.intercept, level=model.level,
+                  names=list(model.predictors or ()))
+    if not fit.estimable or term not in fit.terms:
+        return None
+    j = fit.terms.index(term)
+    return float(fit.coef[j]), float(fit.lower[j]), float(fit.upper[j])
+
+
+def coefficient_data(
+    store: Store, history: ModelHistory, series: str | None, term: str
+) -> CoefficientData | None:
+    """``term`` across the series' refits, with the baseline's band; None with under 2 refits."""
+    fits = fit_history(store, history, series)
+    points = [(f.window_last or str(f.id), _term_row(f, term)) for f in fits]
+    kept = [(label, row) for label, row in points if row is not None]
+    if len(kept) < 2:
+        return None
+    array = np.array([row for _, row in kept], dtype=np.float64)
+    return CoefficientData(
+        title=f"Coefficient on {term} at each refit, {series_label(series)}",
+        term=term,
+        periods=tuple(label for label, _ in kept),
+        estimate=array[:, 0],
+        lower=array[:, 1],
+        upper=array[:, 2],
+        level=history.model.level,
+        baseline=baseline_coefficient(store, history, series, term),
+    )
+
+
+def monitoring_data(history: ModelHistory, series: str | None) -> MonitoringData | None:
+    """The monitoring path stored with the series' latest fit, or None when there is none."""
+    fit = history.latest_fits.get(series)
+    if fit is None:
+        return None
+    path = monitoring_arrays(fit.diagnostics)
+    if path is None:
+        return None
+    return MonitoringData(
+        title=f"Sequential monitoring since the baseline, {series_label(series)}",
+        periods=path.periods,
+        statistic=np.asarray(path.statistic, dtype=np.float64),
+        boundary=np.asarray(path.boundary, dtype=np.float64),
+        break_period=path.break_period,
+    )
+
+
+def scatter_data(store: Store, history: ModelHistory, series: str | None) -> ScatterData | None:
+    """The latest fit's window refitted (one predictor only) with its line and bands."""
+    model = history.model
+    if not model.fitted or len(model.predictors or ()) != 1:
+        return None
+    fit_record = history.latest_fits.get(series)
+    if fit_record is None or not fit_record.estimable:
+        return None
+    rows = _window_rows(store, history, series, first_key=fit_record.window_first_key,
+                        last_key=fit_record.window_last_key, last=fit_record.n)
+    if rows is None or rows[1].size <= model.parameter_count + 1:
+        return None
+    x, y = rows[0][:, 0], rows[1]
+    fit = fit_ols(x[:, None], y, intercept=model.intercept, level=model.level,
+                  names=list(model.predictors or ()))
+    if not fit.estimable:
+        return None
+    predictor = (model.predictors or [""])[0]
+    upcoming = [f for f in history.open_forecasts() if f.series == series and predictor in f.inputs]
+    plan_x = np.array([f.inputs[predictor] for f in upcoming], dtype=np.float64)
+    low = float(min(x.min(), plan_x.min() if plan_x.size else x.min()))
+    high = float(max(x.max(), plan_x.max() if plan_x.size else x.max()))
+    grid = np.linspace(low, high, GRID_POINTS)
+    band = fit.predict(grid[:, None])
+    own = fit.predict(x[:, None])
+    outside = int(((y < own.lower) | (y > own.upper)).sum())
+    return ScatterData(
+        title=f"Current window: {model.response} against {predictor}, {series_label(series)}",
+        predictor=predictor,
+        response=model.response,
+        x=x,
+        y=y,
+        grid=grid,
+        fitted=band.point,
+        lower=band.lower,
+        upper=band.upper,
+        mean_lower=band.mean_lower,
+        mean_upper=band.mean_upper,
+        level=model.level,
+        r_squared=float(fit.r_squared),
+        slope=float(fit.coef[-1]),
+        outside=outside,
+        plan_x=plan_x,
+        plan_point=np.array([f.point for f in upcoming], dtype=np.float64),
+        plan_lower=np.array([f.lower for f in upcoming], dtype=np.float64),
+        plan_upper=np.array([f.upper for f in upcoming], dtype=np.float64),
+    )
+
+
+# Which chart best shows each kind of finding (beyond the actuals chart every flagged series gets).
+KIND_CHART: dict[FindingKind, str] = {
+    FindingKind.SLOPE_SHIFT: "coefficient",
+    FindingKind.SIGNIFICANCE_LOST: "coefficient",
+    FindingKind.SIGN_FLIP: "coefficient",
+    FindingKind.STRUCTURAL_BREAK: "monitoring",
+    FindingKind.EXTRAPOLATION: "scatter",
+    FindingKind.WEAK_FIT: "scatter",
+    FindingKind.HETEROSCEDASTICITY: "scatter",
+}
+
+
+__all__ = [
+    "KIND_CHART",
+    "ModelHistory",
+    "actuals_data",
+    "baseline_coefficient",
+    "coefficient_data",
+    "fit_history",
+    "hit_rate_data",
+    "load_model",
+    "monitoring_data",
+    "scatter_data",
+    "series_label",
+]

@@ -1,0 +1,206 @@
+"""The things pages show, as small frozen views built from store records: findings in order of
+severity, coverage rows and summaries, forecasts, charts. Templates read these and nothing else.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from markupsafe import Markup
+
+from monitor.notify.charts import Chart
+from monitor.notify.words import (
+    KIND_WORDS,
+    SEVERITY_MARKS,
+    level_text,
+    number,
+    percent,
+    scope_text,
+    statistic_text,
+)
+from monitor.store import FindingRecord, ForecastRecord
+from monitor.text import format_p_value
+from monitor.vocabulary import FindingState, Severity
+
+
+@dataclass(frozen=True)
+class FindingView:
+    id: int
+    severity: str  # the word: notice, warning, critical
+    rank: int
+    mark: str  # plain-text shape for text and e-mail
+    kind: str
+    kind_words: str
+    model: str | None
+    series: str | None
+    feed: str | None
+    scope: str
+    since: str | None
+    statistic: str
+    message: str
+    action: str
+    state: str
+    is_new: bool  # raised in the window the report covers
+    acknowledged: bool
+
+
+def finding_view(record: FindingRecord, *, is_new: bool = False) -> FindingView:
+    return FindingView(
+        id=record.id,
+        severity=record.severity.value,
+        rank=record.severity.rank,
+        mark=SEVERITY_MARKS[record.severity],
+        kind=record.kind.value,
+        kind_words=KIND_WORDS.get(record.kind, record.kind.value.replace("_", " ")),
+        model=record.model,
+        series=record.series,
+        feed=record.feed,
+        scope=scope_text(record.model, record.series, record.feed),
+        since=record.since_period,
+        statistic=statistic_text(record.kind, record.statistic, record.p_value),
+        message=record.message,
+        action=record.action,
+        state=record.state.value,
+        is_new=is_new,
+        acknowledged=record.acknowledged_at is not None,
+    )
+
+
+def ordered_findings(
+    records: Iterable[FindingRecord], *, new_ids: Iterable[int] = ()
+) -> list[FindingView]:
+    """Most severe first; within a severity new ones first, then by model, series, kind, id."""
+    fresh = set(new_ids)
+    views = [finding_view(r, is_new=r.id in fresh) for r in records]
+    views.sort(key=lambda v: (-v.rank, not v.is_new, v.model or "", v.feed or "",
+                              v.series or "", v.kind, v.id))
+    return views
+
+
+def severity_counts(views: Sequence[FindingView]) -> dict[str, int]:
+    counts = {s.value: 0 for s in reversed(list(Severity))}
+    for view in views:
+        counts[view.severity] += 1
+    return counts
+
+
+def is_open(record: FindingRecord) -> bool:
+    return record.state is not FindingState.CLEARED
+
+
+@dataclass(frozen=True)
+class CoverageRow:
+    """One audit record (or a pooled summary) as a table row."""
+
+    model: str
+    series: str
+    window: str
+    scored: int
+    hits: int
+    misses_high: int
+    misses_low: int
+    hit_rate: str
+    interval: str
+    nominal: str
+    zone: str | None
+    kupiec: str
+    independence: str
+    conditional: str
+    mean_width: str
+    interval_score: str
+
+
+def coverage_row(record: dict[str, Any]) -> CoverageRow:
+    series = record.get("series")
+    window = record.get("window")
+    return CoverageRow(
+        model=str(record["model"]),
+        series="whole model" if series is None else str(series),
+        window="every scored period" if window is None else f"latest {window}",
+        scored=int(record["scored"]),
+        hits=int(record["hits"]),
+        misses_high=int(record["misses_high"]),
+        misses_low=int(record["misses_low"]),
+        hit_rate=percent(record["hit_rate"], 1),
+        interval=(f"{percent(record['hit_rate_lower'], 1)} to "
+                  f"{percent(record['hit_rate_upper'], 1)}"),
+        nominal=level_text(float(record["nominal"])),
+        zone=record["zone"],
+        kupiec=format_p_value(record.get("kupiec_p_value")),
+        independence=format_p_value(record.get("independence_p_value")),
+        conditional=format_p_value(record.get("christoffersen_p_value")),
+        mean_width=number(record.get("mean_width")),
+        interval_score=number(record.get("interval_score")),
+    )
+
+
+@dataclass(frozen=True)
+class ForecastView:
+    model: str
+    series: str
+    period: str
+    lead: int
+    point: str
+    lower: str
+    upper: str
+    mean_lower: str
+    mean_upper: str
+    level: str
+    leverage: str
+    extrapolation: bool
+    inputs: str
+
+
+def forecast_view(record: ForecastRecord) -> ForecastView:
+    return ForecastView(
+        model=record.model,
+        series="whole model" if record.series is None else record.series,
+        period=record.target_period,
+        lead=record.lead,
+        point=number(record.point),
+        lower=number(record.lower),
+        upper=number(record.upper),
+        mean_lower=number(record.mean_lower),
+        mean_upper=number(record.mean_upper),
+        level=level_text(record.level),
+        leverage=number(record.leverage, 3),
+        extrapolation=record.extrapolation,
+        inputs=", ".join(f"{k} {number(v)}" for k, v in record.inputs.items()),
+    )
+
+
+@dataclass(frozen=True)
+class ChartView:
+    """A chart on a page: inline SVG markup (made by matplotlib and checked by
+    ``charts.check_svg``; never user text) or, in e-mail, a ``cid:`` reference."""
+
+    title: str
+    alt: str
+    markup: Markup | None
+    cid: str | None
+
+
+def chart_view(chart: Chart, *, email: bool = False) -> ChartView:
+    if email:
+        return ChartView(chart.title, chart.alt, None, chart.cid)
+    if chart.svg is None:
+        raise ValueError("a page chart needs its SVG")
+    # The SVG text was produced by matplotlib (text escaped) and passed check_svg.
+    return ChartView(chart.title, chart.alt, Markup(chart.svg), None)
+
+
+__all__ = [
+    "ChartView",
+    "CoverageRow",
+    "FindingView",
+    "ForecastView",
+    "chart_view",
+    "coverage_row",
+    "finding_view",
+    "forecast_view",
+    "is_open",
+    "ordered_findings",
+    "severity_counts",
+]

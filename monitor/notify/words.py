@@ -1,0 +1,183 @@
+"""How reports say things: numbers, percentages, finding kinds, the statistic behind a finding,
+and the sentences shared by pages, the plain-text digest and ``plumbline audit``.
+
+Everything here returns plain text; escaping is the templates' job (autoescape is on). Nothing in
+this module marks text safe.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from datetime import datetime
+from zoneinfo import ZoneInfo
+
+from monitor.text import format_p_value
+from monitor.vocabulary import FindingKind, Severity
+
+# What each kind of finding is called in reports: a short phrase that says what it is.
+KIND_WORDS: dict[FindingKind, str] = {
+    FindingKind.COVERAGE: "coverage below nominal",
+    FindingKind.CLUSTERED_MISSES: "misses in runs",
+    FindingKind.SLOPE_SHIFT: "slope shift",
+    FindingKind.STRUCTURAL_BREAK: "structural break",
+    FindingKind.SIGNIFICANCE_LOST: "slope no longer significant",
+    FindingKind.SIGN_FLIP: "slope sign reversed",
+    FindingKind.WEAK_FIT: "weaker fit",
+    FindingKind.EXTRAPOLATION: "forecast outside the fitted range",
+    FindingKind.AUTOCORRELATION: "autocorrelated errors",
+    FindingKind.HETEROSCEDASTICITY: "error spread changes with the predictors",
+    FindingKind.STALE_FEED: "feed gone quiet",
+    FindingKind.REJECTED_INPUT: "input rejected",
+    FindingKind.NOT_ESTIMABLE: "can no longer be fitted",
+}
+
+# The shape drawn beside each severity word (pages) and its plain-text mark (text, e-mail).
+SEVERITY_SHAPES: dict[Severity, str] = {
+    Severity.CRITICAL: "filled triangle",
+    Severity.WARNING: "hollow diamond",
+    Severity.NOTICE: "small circle",
+}
+SEVERITY_MARKS: dict[Severity, str] = {
+    Severity.CRITICAL: "▲",
+    Severity.WARNING: "◇",
+    Severity.NOTICE: "•",
+}
+
+CAUTION = (
+    "A finding is a statistical signal, not proof that something is wrong: across many series "
+    "some signals are chance, which Plumbline keeps to the configured false-discovery rate per "
+    "model, not to zero. Every interval assumes the model's conditions hold: a straight-line "
+    "relationship, independent errors of constant variance, roughly normal. Decisions stay with "
+    "the model's owner."
+)
+
+
+def number(value: float | None, digits: int = 4) -> str:
+    """``digits`` significant digits, no exponent for everyday sizes; n/a for None or NaN."""
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return "n/a"
+    if value == 0:
+        return "0"
+    size = abs(value)
+    if size >= 1e9 or size < 1e-4:
+        text = f"{value:.{digits - 1}e}"
+    else:
+        decimals = max(0, digits - 1 - math.floor(math.log10(size)))
+        text = f"{value:.{decimals}f}"
+        if "." in text:
+            text = text.rstrip("0").rstrip(".")
+    return text
+
+
+def percent(share: float | None, decimals: int = 0) -> str:
+    """0.9512 → "95 %" (a thin space before the sign, as the reports write it)."""
+    if share is None or not math.isfinite(share):
+        return "n/a"
+    return f"{share * 100:.{decimals}f} %"
+
+
+def level_text(level: float) -> str:
+    """0.95 → "95 %", 0.975 → "97.5 %"."""
+    return f"{level * 100:g} %"
+
+
+def p_text(p_value: float | None) -> str:
+    """"p 0.0123" or "p < 0.0001" (DESIGN.md section 2)."""
+    return f"p {format_p_value(p_value)}"
+
+
+def plural(count: int, word: str, many: str | None = None) -> str:
+    """"1 finding", "3 findings"."""
+    return f"{count} {word if count == 1 else (many or word + 's')}"
+
+
+def join_words(items: Sequence[str]) -> str:
+    """"a", "a and b", "a, b and c"."""
+    if not items:
+        return ""
+    if len(items) == 1:
+        return items[0]
+    return ", ".join(items[:-1]) + " and " + items[-1]
+
+
+def local_time(moment: datetime, zone: ZoneInfo) -> str:
+    """A moment in the config's time zone, as people read it: "2025-03-02 08:00 Europe/Berlin"."""
+    return f"{moment.astimezone(zone):%Y-%m-%d %H:%M} {zone.key}"
+
+
+def local_date(moment: datetime, zone: ZoneInfo) -> str:
+    return f"{moment.astimezone(zone):%Y-%m-%d}"
+
+
+def scope_text(model: str | None, series: str | None, feed: str | None) -> str:
+    """What a finding is about: "pick_hours", "delivery_hours, series North", "feed copacker"."""
+    if model is None:
+        return f"feed {feed}"
+    if series is None:
+        return model
+    return f"{model}, series {series}"
+
+
+def statistic_text(
+    kind: FindingKind, statistic: float | None, p_value: float | None
+) -> str:
+    """The statistic behind a finding, named for its kind (what the findings layer stores)."""
+    p = "" if p_value is None else f", {p_text(p_value)}"
+    if kind is FindingKind.NOT_ESTIMABLE:
+        return "no statistic: the fit itself is impossible"
+    if statistic is None:
+        return "no statistic recorded" + p
+    named = {
+        FindingKind.COVERAGE: f"hit rate {percent(statistic)}; Kupiec test{p}",
+        FindingKind.CLUSTERED_MISSES: (
+            f"Christoffersen independence statistic {number(statistic, 3)}{p}"
+        ),
+        FindingKind.SLOPE_SHIFT: (
+            f"recent slope differs from the baseline's by {number(abs(statistic), 3)} combined "
+            f"standard errors{p}"
+        ),
+        FindingKind.STRUCTURAL_BREAK: (
+            f"monitoring statistic at {number(statistic, 3)} times its boundary{p}"
+        ),
+        FindingKind.SIGNIFICANCE_LOST: f"current slope {number(statistic)}{p}",
+        FindingKind.SIGN_FLIP: f"current slope {number(statistic)}{p}",
+        FindingKind.WEAK_FIT: f"R² {number(statistic, 2)}{p}",
+        FindingKind.EXTRAPOLATION: f"leverage {number(statistic, 3)}{p}",
+        FindingKind.AUTOCORRELATION: f"Durbin–Watson {number(statistic, 3)}{p}",
+        FindingKind.HETEROSCEDASTICITY: f"Breusch–Pagan statistic {number(statistic, 3)}{p}",
+        FindingKind.STALE_FEED: f"{statistic:.0f} days since the latest period{p}",
+        FindingKind.REJECTED_INPUT: (
+            "the whole file" if statistic == 0 else f"{plural(int(statistic), 'row')} rejected"
+        ),
+    }
+    return named.get(kind, f"{number(statistic)}{p}")
+
+
+def hit_rate_sentence(hits: int, scored: int, level: float, what: str = "actuals") -> str:
+    """"49 of 52 actuals inside their 95 % prediction intervals"."""
+    return f"{hits} of {scored} {what} inside their {level_text(level)} prediction intervals"
+
+
+def zone_word(zone: str | None) -> str:
+    return "no zone (nothing scored)" if zone is None else f"zone {zone}"
+
+
+__all__ = [
+    "CAUTION",
+    "KIND_WORDS",
+    "SEVERITY_MARKS",
+    "SEVERITY_SHAPES",
+    "hit_rate_sentence",
+    "join_words",
+    "level_text",
+    "local_date",
+    "local_time",
+    "number",
+    "p_text",
+    "percent",
+    "plural",
+    "scope_text",
+    "statistic_text",
+    "zone_word",
+]
