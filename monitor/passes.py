@@ -107,6 +107,7 @@ class PassReport:
     files: tuple[FileReport, ...] = ()
     outcomes_scored: int = 0
     scored_series: dict[str, set[str | None]] = field(default_factory=dict)
+    changed: dict[str, set[str | None]] = field(default_factory=dict)
     series_analysed: int = 0
     fits_recorded: int = 0
     forecasts_issued: int = 0
@@ -188,6 +189,7 @@ class _PassState:
     conditions: list[tuple[Condition, int]] = field(default_factory=list)  # (condition, clear)
     outcomes_scored: int = 0
     scored_series: dict[str, set[str | None]] = field(default_factory=dict)
+    changed: dict[str, set[str | None]] = field(default_factory=dict)
     series_analysed: int = 0
     fits_recorded: int = 0
     forecasts_issued: int = 0
@@ -394,9 +396,9 @@ def _analyse_all(state: _PassState) -> None:
     for name, model in state.config.models.items():
         state.check_stop("refit")
         try:
-            version = _model_version(state, name, model)
+            version, new_version = _model_version(state, name, model)
             if model.fitted:
-                _analyse_model(state, name, model, version)
+                _analyse_model(state, name, model, version, new_version)
             else:
                 _audit_only_model(state, name, model, version)
             _coverage_conditions(state, name, model)
@@ -406,7 +408,7 @@ def _analyse_all(state: _PassState) -> None:
             state.skipped.append(f"model {name}: {type(exc).__name__}: {exc}")
 
 
-def _model_version(state: _PassState, name: str, model: Model) -> int:
+def _model_version(state: _PassState, name: str, model: Model) -> tuple[int, bool]:
     record, created = state.store.record_model_version(
         name,
         signature=model_signature(model),
@@ -417,29 +419,34 @@ def _model_version(state: _PassState, name: str, model: Model) -> int:
         # a new version starts afresh: the old version's open findings no longer apply
         for finding in state.store.open_findings(model=name):
             state.store.clear_finding(finding.id, pass_id=state.pass_id, at=state.as_of)
-    return record.version
+    return record.version, created
 
 
 def _changed_series(state: _PassState, feed: str) -> set[str | None]:
-    return set(state.store.series_with_rows_after(feed, state.mark))
+    if feed not in state.changed:
+        state.changed[feed] = set(state.store.series_with_rows_after(feed, state.mark))
+    return state.changed[feed]
 
 
-def _analyse_model(state: _PassState, name: str, model: Model, version: int) -> None:
+def _analyse_model(
+    state: _PassState, name: str, model: Model, version: int, new_version: bool
+) -> None:
     feed = state.config.feeds[model.feed]
     predictors = tuple(model.predictors or ())
     columns = (model.response, *predictors)
     up_to = business_key(feed, state.as_of, state.config)
-    changed = _changed_series(state, model.feed)
     baselines = state.store.baselines(name, version)
-    windows = state.store.windows(model.feed, columns, up_to_key=up_to)
-    index = [i for i, s in enumerate(windows.series) if s in changed or s not in baselines]
-    if not index and not changed:
+    # Only series whose rows changed are analysed, so a pass with no new data re-tests nothing;
+    # a new model version (its baselines reset) analyses every series at once.
+    changed = None if new_version else sorted(
+        _changed_series(state, model.feed), key=lambda v: "" if v is None else v)
+    if changed is not None and not changed:
+        return
+    windows = state.store.windows(model.feed, columns, up_to_key=up_to, series=changed)
+    if not windows.series:
         return
     values, mask, keys = windows.stack()
-    if not index:
-        return
-    values, mask, keys = values[index], mask[index], keys[index]
-    series = [windows.series[i] for i in index]
+    series = list(windows.series)
     counts = mask.sum(axis=1)
     warm = counts >= max(model.min_rows, model.parameter_count + 2)
     if not warm.any():
