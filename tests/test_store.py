@@ -440,6 +440,45 @@ def test_scoring_and_the_audit_views(store: Store) -> None:
     assert last_one.level.tolist() == [0.9, 0.9]
 
 
+@pytest.mark.parametrize("latest_only", [True, False])
+@pytest.mark.parametrize("last", [None, 1, 3])
+def test_the_audit_views_agree_with_a_plain_selection(
+    store: Store, latest_only: bool, last: int | None
+) -> None:
+    rng = np.random.default_rng(7)
+    store.record_model_version("pick", signature="s", config={}, created_at=T0)
+    store.record_model_version("pack", signature="s", config={}, created_at=T0)
+    kept: list[tuple[str, str | None, int, int]] = []  # (model, series, target key, id)
+    for issue in range(4):
+        pass_id = store.record_pass(as_of=T0 + timedelta(days=7 * issue), started_at=T0).id
+        rows = [
+            ForecastRow(model=m, feed="depot", series=s, target_period=week(n)[0],
+                        target_period_key=week(n)[1], issued_at=T0, lead=n - issue + 1,
+                        point=1.0, lower=0.0, upper=2.0, level=0.95)
+            for m in ("pick", "pack") for s in ("b", None, "a") for n in range(issue, issue + 3)
+            if rng.random() < 0.8
+        ]
+        ids = store.record_forecasts(pass_id, rows).ids
+        scored = [i for i in ids if rng.random() < 0.7]
+        store.record_outcomes(pass_id, [Outcome(i, 1.0, OutcomeKind.HIT) for i in scored])
+        by_id = dict(zip(ids, rows, strict=True))
+        kept += [(by_id[i].model, by_id[i].series, by_id[i].target_period_key, i) for i in scored]
+    expected = []
+    for model in ("pack", "pick"):
+        for series in ("", "a", "b"):
+            mine = sorted(k for k in kept if k[0] == model and (k[1] or "") == series)
+            targets = sorted({k[2] for k in mine})[-last:] if last else None
+            for target in sorted({k[2] for k in mine}):
+                issues = [k[3] for k in mine if k[2] == target]
+                if targets is not None and target not in targets:
+                    continue
+                expected += [max(issues)] if latest_only else sorted(issues)
+    got = store.scored_forecasts(latest_only=latest_only, last=last)
+    assert got.forecast_id.tolist() == expected
+    only_a = store.scored_forecasts("pick", series="a", all_series=False, latest_only=latest_only)
+    assert set(only_a.series) <= {"a"} and set(only_a.model) <= {"pick"}
+
+
 # ----------------------------------------------------------------------------- findings
 
 
