@@ -6,8 +6,9 @@ import csv
 import hashlib
 import io
 import os
+import sqlite3
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
@@ -28,7 +29,7 @@ from monitor.ingest import (
 )
 from monitor.ingest.folders import move_no_clobber, read_stable
 from monitor.ingest.parse import parse_csv, parse_parquet
-from monitor.store import FileOutcome, Store
+from monitor.store import FileOutcome, ObservationCounts, ObservationRow, Store
 from monitor.vocabulary import FindingKind, Severity
 
 HEADER = "week_ending,depot,pick_hours,order_lines\n"
@@ -554,3 +555,32 @@ def test_every_row_is_either_ingested_or_rejected_once(cells: list[list[str]]) -
 def test_the_parquet_parser_never_crashes_on_arbitrary_bytes(data: bytes) -> None:
     parsed = parse_parquet(b"PAR1" + data + b"PAR1", PLAN)
     assert parsed.refusal is not None or parsed.is_empty or parsed.rows or parsed.rejected
+
+
+class StoreWithAFailingDisk(Store):
+    """The real store, whose row insert fails for one file as a full disk would."""
+
+    def insert_observations(
+        self, feed: str, file_id: int, columns: Sequence[str], rows: Iterable[ObservationRow]
+    ) -> ObservationCounts:
+        batch = list(rows)
+        if any(row.period == "2024-01-07" for row in batch):
+            raise sqlite3.OperationalError("database or disk is full")
+        return super().insert_observations(feed, file_id, columns, batch)
+
+
+def test_a_file_whose_rows_cannot_be_stored_is_rolled_back_and_the_others_go_on(
+    tmp_path: Path, feed: Feed
+) -> None:
+    store = StoreWithAFailingDisk.open(tmp_path / "failing.sqlite")
+    failing = Feed(feed.spec, store)
+    data = failing.drop("a.csv", HEADER + "2024-01-07,north,40,400\n")
+    failing.drop("b.csv", HEADER + "2024-01-14,north,41,410\n")
+    result = failing.scan()
+    assert [r.name for r in result.reports] == ["b.csv"]
+    assert len(result.problems) == 1 and "a.csv" in result.problems[0]
+    assert "database or disk is full" in result.problems[0]
+    assert [f.name for f in store.list_files()] == ["b.csv"]  # a.csv's record rolled back too
+    assert_kept(feed.spec.inbox / "a.csv", data)
+    assert failing.actuals() == [("2024-01-14", 41.0, 0)]
+    store.close()

@@ -226,6 +226,13 @@ def ingest_feed(
             problems.append(f"{item.name}: {exc.strerror or exc}; left in the inbox for now")
             log.warning("feed %s: %s could not be taken: %s", spec.feed, item.name, exc)
             continue
+        except Exception as exc:  # one file's failure must not stop the feed's other files
+            problems.append(
+                f"{item.name}: could not be taken ({type(exc).__name__}: {exc}); its "
+                "transaction was rolled back and the file left in the inbox"
+            )
+            log.exception("feed %s: %s could not be taken", spec.feed, item.name)
+            continue
         if report is None:
             waiting.append(item.name)
         else:
