@@ -18,11 +18,19 @@ from monitor.errors import PlumblineError
 
 # Module names under monitor.commands, in the order ``plumbline --help`` lists them.
 COMMAND_MODULES: tuple[str, ...] = (
+    "demo",
+    "one_pass",
+    "run",
+    "status",
+    "ack",
+    "rebaseline",
     "check",
     "fit",
     "breaks",
     "schema",
     "backup",
+    "audit",
+    "digest",
 )
 
 

@@ -1,0 +1,78 @@
+"""``plumbline run``: the daemon — scheduled passes and digests until SIGTERM or SIGINT.
+
+The scan job runs a pass when complete files wait in an inbox, or when no pass has run for a
+day on the real clock (so that a feed gone quiet is noticed: ``stale_feed`` needs a pass to be
+raised), and tries the outbox's unsent mail each time. The digest job builds and sends the
+digest on its cron schedule. Schedules, time zones, missed runs and signals: see
+``monitor.daemon`` and the README.
+"""
+
+from __future__ import annotations
+
+import argparse
+import threading
+from collections.abc import Mapping
+from datetime import UTC, datetime, timedelta
+
+from monitor.commands._common import add_config_argument, config_from
+from monitor.commands.one_pass import pass_notifier
+from monitor.config import PlumblineConfig
+from monitor.daemon import JobFunction, run_daemon
+from monitor.passes import files_waiting, run_pass
+from monitor.store import Store
+
+IDLE_PASS_AFTER = timedelta(days=1)
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "run", help="the daemon: scheduled passes and digests until stopped",
+        description="Run the daemon: a scan job that runs a pass when complete files wait (and "
+        "at least once a day), and the digest on its schedule, until SIGTERM or SIGINT.",
+    )
+    add_config_argument(parser)
+    parser.add_argument("--log-format", choices=("plain", "json"), default="plain")
+    parser.set_defaults(handler=handle)
+
+
+def scan_job(config: PlumblineConfig) -> JobFunction:
+    def scan(stop: threading.Event) -> Mapping[str, object] | None:
+        now = datetime.now(UTC)
+        with Store.open(config.database) as store:
+            latest = store.latest_pass()
+            idle = latest is None or now - latest.started_at >= IDLE_PASS_AFTER
+            if not idle and not files_waiting(store, config):
+                return None
+            report = run_pass(config, stop_requested=stop, notifier=pass_notifier(),
+                              store=store)
+        return {
+            "pass_id": report.pass_id, "files": len(report.files),
+            "forecasts": report.forecasts_issued, "raised": len(report.findings_raised),
+            "cleared": len(report.findings_cleared), "skipped": len(report.skipped),
+            "stopped_early": report.stopped_early,
+        }
+
+    return scan
+
+
+def digest_job(config: PlumblineConfig) -> JobFunction:
+    def digest(stop: threading.Event) -> Mapping[str, object] | None:
+        del stop
+        from monitor.commands.digest import send_scheduled_digest
+
+        return send_scheduled_digest(config)
+
+    return digest
+
+
+def handle(args: argparse.Namespace) -> int:
+    config = config_from(args)
+    return run_daemon(
+        database=config.database,
+        timezone=config.zone,
+        scan_schedule=config.schedule.scan,
+        scan=scan_job(config),
+        digest_schedule=config.schedule.digest,
+        digest=digest_job(config),
+        log_format=args.log_format,
+    )
