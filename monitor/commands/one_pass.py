@@ -8,17 +8,29 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from datetime import datetime
 
 from monitor.commands._common import add_config_argument, config_from, parse_as_of
+from monitor.config import PlumblineConfig
 from monitor.lock import DatabaseLock
+from monitor.notify import notify_pass
 from monitor.passes import PassNotifier, PassReport, run_pass
 from monitor.store import Store
 from monitor.vocabulary import Severity
 
 
-def pass_notifier() -> PassNotifier | None:
-    """The notifier that writes the pass's pages and queues its e-mail (``monitor.notify``)."""
-    return None
+def pass_notifier() -> PassNotifier:
+    """Step 7 of a pass: write its HTML pages; with ``notify.email``, queue one message per
+    owner with the pass's new, more severe and cleared findings, and deliver what the outbox
+    has due (retries included), on the real clock."""
+
+    def notify(store: Store, config: PlumblineConfig, report: PassReport, *,
+               now: datetime) -> None:
+        if report.pass_id is not None:
+            notify_pass(store, config, report.pass_id, now=now,
+                        notify=report.findings_to_notify)
+
+    return notify
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
