@@ -108,7 +108,7 @@ class Digest:
     @property
     def subject(self) -> str:
         counts = f"{plural(self.open_total, 'open finding')}, {len(self.new_findings)} new"
-        return f"Plumbline digest for the period ending {self.day}: {counts}"
+        return f"Plumbline digest of {self.day}: {counts}"
 
 
 def _previous_digest(store: Store, period_end: datetime) -> DigestRecord | None:

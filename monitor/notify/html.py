@@ -145,7 +145,7 @@ def attention_sentence(findings: list[FindingView], *, model_count: int) -> str:
     verb = "needs" if len(findings) == 1 else "need"
     return (
         f"{plural(len(findings), 'open finding')} {verb} attention ({join_words(parts)}); "
-        f"the most urgent is {top.kind_words} in {top.scope} ({top.severity})."
+        f"most urgent: {top.kind_words} in {top.scope} ({top.severity})."
     )
 
 
@@ -368,7 +368,7 @@ def _model_sentence(
     top = findings[0]
     where = "" if top.series is None else f" in series {top.series}"
     return (
-        f"{opening}; {plural(len(findings), 'open finding')} ({parts}), the most urgent a "
+        f"{opening}; {plural(len(findings), 'open finding')} ({parts}); most urgent: "
         f"{top.kind_words}{where}. {coverage}"
     )
 

@@ -86,8 +86,8 @@ def _sentence(record: PassRecord, new: list[FindingView], cleared: list[FindingV
         counts = severity_counts(new)
         detail = join_words([plural(n, w) for w, n in counts.items() if n])
         top = new[0]
-        parts.append(f"raised {plural(len(new), 'finding')} ({detail}), the most urgent "
-                     f"{top.kind_words} in {top.scope}")  # fmt: skip
+        parts.append(f"raised {plural(len(new), 'finding')} ({detail}; most urgent: "
+                     f"{top.kind_words} in {top.scope})")  # fmt: skip
     else:
         parts.append("raised no new finding")
     parts.append(f"cleared {len(cleared)}")

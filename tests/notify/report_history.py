@@ -232,7 +232,8 @@ def build_history(root: Path, *, weeks: int = WEEKS, seed: int = 20240107) -> Hi
             for feed in ("warehouse", "depots"):
                 name = f"week_{period}.csv"
                 file = store.record_file(
-                    feed=feed, name=name, sha256=hashlib.sha256(f"{feed}{name}".encode()).hexdigest(),
+                    feed=feed, name=name,
+                    sha256=hashlib.sha256(f"{feed}{name}".encode()).hexdigest(),
                     size=100, received_at=clock, outcome=FileOutcome.ARCHIVED,
                     stored_path=root / "feeds" / feed / "archive" / name, pass_id=pass_id,
                 )
@@ -338,7 +339,8 @@ def _refit(store, config, series, baselines, pass_id, week, clock) -> dict:
             model=model, version=store.current_model_version(model).version, series=ser,
             n=int(y.size), estimable=True, window_first=periods[0],
             window_first_key=date_period_key(date.fromisoformat(periods[0])),
-            window_last=periods[-1], window_last_key=date_period_key(date.fromisoformat(periods[-1])),
+            window_last=periods[-1],
+            window_last_key=date_period_key(date.fromisoformat(periods[-1])),
             coefficients=coefficients, inference=inference, diagnostics=diagnostics,
         ))
         order.append(((model, ser), fit, x))
@@ -426,3 +428,15 @@ def _findings(store, config, series, baselines, pass_id, week, clock, fit_ids) -
                                         "line 1: no header row"))
     conditions += rejected_input_conditions(["warehouse", "depots"], rejections)
     _apply(store, conditions, pass_id, clock)
+
+
+def copy_history(history: History, dest: Path) -> History:
+    """A private copy of a built history (the database is closed, so one file holds it)."""
+    import shutil
+
+    shutil.copytree(history.root, dest)
+    copy = History(dest, load_config(dest / "plumbline.yaml"))
+    copy.pass_ids = list(history.pass_ids)
+    copy.scored_log = list(history.scored_log)
+    return copy
+
