@@ -74,6 +74,7 @@ _RC: dict[str, Any] = {
     "figure.facecolor": "white",
 }
 FIG_SIZE = (7.2, 2.7)
+MARGINS = {"left": 0.09, "right": 0.985, "bottom": 0.13, "top": 0.80}
 PNG_DPI = 100
 MAX_TICKS = 8
 
@@ -107,6 +108,7 @@ class CoefficientData:
     upper: FloatArray
     level: float
     baseline: tuple[float, float, float] | None = None  # estimate, lower, upper
+    after_baseline: int = 0  # index of the first refit whose window ends after the baseline
 
 
 @dataclass(frozen=True, eq=False)
@@ -258,14 +260,18 @@ def _describe_coefficient(data: CoefficientData) -> str:
         return text + f", over {plural(int(data.estimate.size), 'refit')}."
     estimate, lower, upper = data.baseline
     text += f" against {number(estimate)} at the baseline ({number(lower)} to {number(upper)})"
-    outside = (data.lower > upper) | (data.upper < lower)
+    start = min(max(data.after_baseline, 0), data.estimate.size)
+    later = data.estimate.size - start
+    if later == 0:
+        return text + "; no refit since the baseline yet."
+    outside = (data.lower[start:] > upper) | (data.upper[start:] < lower)
     if not outside.any():
-        return text + (f"; every refit's interval overlaps the baseline band "
-                       f"({data.estimate.size} refits).")
-    first = int(np.argmax(outside))
+        return text + (f"; every refit since the baseline ({later}) has an interval overlapping "
+                       "the baseline band.")
+    first = start + int(np.argmax(outside))
     return text + (
-        f"; {int(outside.sum())} of {data.estimate.size} refits have an interval clear of the "
-        f"baseline band, the first at {data.periods[first]}."
+        f"; {int(outside.sum())} of the {later} refits since the baseline have an interval clear "
+        f"of the baseline band, the first at {data.periods[first]}."
     )
 
 
@@ -293,7 +299,8 @@ def _describe_monitoring(data: MonitoringData) -> str:
 def _describe_scatter(data: ScatterData) -> str:
     direction = "rises" if data.slope >= 0 else "falls"
     text = (
-        f"R² {number(data.r_squared, 2)} on {data.x.size} periods: {data.response} {direction} "
+        f"R² {'n/a' if data.r_squared is None else format(data.r_squared, '.2f')} on "
+        f"{data.x.size} periods: {data.response} {direction} "
         f"by {number(abs(data.slope))} per unit of {data.predictor}; points outside the "
         f"{level_text(data.level)} prediction band: {data.outside} of {data.x.size}."
     )
@@ -359,10 +366,15 @@ def draw(data: ChartData, *, key: str, svg: bool = True, png: bool = False) -> C
         raise ValueError(f"chart key {key!r}: letters, digits and hyphens, starting with a letter")
     settings: dict[str, Any] = {**_RC, "svg.hashsalt": key}
     with matplotlib.rc_context(settings):  # type: ignore[arg-type]
-        figure = Figure(figsize=FIG_SIZE, layout="constrained")
+        # Fixed margins instead of a layout engine: a constrained layout draws every figure
+        # twice, and these charts all have the same furniture (legend above, ticks below).
+        figure = Figure(figsize=FIG_SIZE)
+        figure.subplots_adjust(**MARGINS)
         try:
             axes = figure.add_subplot()
             _plot(axes, data)
+            if axes.get_xlabel():
+                figure.subplots_adjust(bottom=0.19)
             svg_text = _svg(figure, key) if svg else None
             png_bytes = _png(figure) if png else None
         finally:

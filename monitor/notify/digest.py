@@ -58,6 +58,7 @@ from monitor.notify.words import CAUTION, local_date, local_time, plural
 from monitor.store import DigestRecord, Store, parse_utc, utc_text
 
 FINDINGS_CAP = 25  # open findings listed per model; the model page lists them all
+CLEARED_CAP = 25  # cleared findings listed, most severe first
 FORECASTS_CAP = 25  # coming forecasts listed per model
 EMAIL_CHART_CAP = 12  # PNG charts in one digest e-mail
 
@@ -167,12 +168,16 @@ def build_digest(
 
     every = store.list_findings(state="all")
     new_ids = {f.id for f in every if f.first_pass_id in window}
-    open_views = ordered_findings((f for f in every if f.state.value != "cleared"),
-                                  new_ids=new_ids)
+    still_open = [f for f in every if f.state.value != "cleared"]
+    # Marked "new" only against a previous digest: in the first one everything would be.
+    open_views = ordered_findings(still_open, new_ids=new_ids if since is not None else (),
+                                  zone=zone)
     cleared_views = ordered_findings(
-        f for f in every if f.cleared_pass_id is not None and f.cleared_pass_id in window
+        (f for f in every if f.cleared_pass_id is not None and f.cleared_pass_id in window),
+        zone=zone,
     )
-    new_views = [v for v in open_views if v.is_new]
+    new_views = ordered_findings((f for f in still_open if f.id in new_ids), new_ids=new_ids,
+                                 zone=zone)
 
     shown: list[FindingView] = []
     hidden: list[str] = []
@@ -306,6 +311,7 @@ def render_digest_html(digest: Digest, *, email: bool = False) -> tuple[str, lis
     html = render(
         "digest.html",
         digest=digest,
+        cleared_cap=CLEARED_CAP,
         charts=charts,
         email=email,
         page_title=f"Digest for the period ending {digest.day}",
@@ -317,7 +323,7 @@ def render_digest_html(digest: Digest, *, email: bool = False) -> tuple[str, lis
 
 def render_digest_text(digest: Digest) -> str:
     """The plain-text digest (the text part of the e-mail)."""
-    return render("digest.txt", digest=digest)
+    return render("digest.txt", digest=digest, cleared_cap=CLEARED_CAP)
 
 
 def digest_message(digest: Digest) -> MessageContent:
@@ -357,6 +363,7 @@ def write_digest(
 
 
 __all__ = [
+    "CLEARED_CAP",
     "EMAIL_CHART_CAP",
     "FINDINGS_CAP",
     "FORECASTS_CAP",

@@ -146,7 +146,8 @@ def _with_sentence(view: FitView, response: str, exact: bool) -> FitView:
         window = ""
         if view.window_first and view.window_last:
             window = f" ({view.window_first} to {view.window_last})"
-        parts = [f"R² {number(view.r_squared, 2)} on {view.n} periods{window}"]
+        r2 = "n/a" if view.r_squared is None else f"{view.r_squared:.2f}"
+        parts = [f"R² {r2} on {view.n} periods{window}"]
         for row in view.coefficients:
             if row.term == "intercept":
                 continue
@@ -182,7 +183,7 @@ def diagnostic_lines(diagnostics: Mapping[str, Any], alpha: float) -> list[str]:
             verdict = (f"consecutive errors look {side} correlated, so the intervals may be too "
                        "narrow")  # fmt: skip
         lines.append(
-            f"Durbin–Watson {number(value, 3)}{p_part}: {verdict} (the 1.5 to 2.5 band is a "
+            f"Durbin–Watson {value:.2f}{p_part}: {verdict} (the 1.5 to 2.5 band is a "
             "rule of thumb)."
         )
     bp = diagnostics.get("breusch_pagan")

@@ -174,13 +174,16 @@ class ChartBudget:
     def __init__(self, prefix: str, cap: int, *, svg: bool, png: bool) -> None:
         self.prefix, self.cap, self.svg, self.png = prefix, cap, svg, png
         self.drawn: list[Chart] = []
-        self.skipped = 0
+        self.skipped = 0  # series whose charts were not drawn because the cap was reached
+
+    @property
+    def full(self) -> bool:
+        return len(self.drawn) >= self.cap
 
     def add(self, data: ChartData | None) -> Chart | None:
         if data is None:
             return None
-        if len(self.drawn) >= self.cap:
-            self.skipped += 1
+        if self.full:
             return None
         key = f"{self.prefix}-{len(self.drawn) + 1}"
         chart = draw(data, key=key, svg=self.svg, png=self.png)
@@ -297,7 +300,12 @@ def build_model_page(
     details = []
     for series in featured:
         fit = history.latest_fits.get(series)
-        charts = [budget.add(d) for d in series_chart_data(store, history, series, full=single)]
+        if budget.full:
+            budget.skipped += 1
+            charts = []
+        else:
+            charts = [budget.add(d) for d in series_chart_data(store, history, series,
+                                                               full=single)]
         details.append(SeriesDetail(
             label=series_label(series),
             fit=None if fit is None else read_fit(fit, response=model.response,
@@ -341,7 +349,8 @@ def build_model_page(
         forecasts=[forecast_view(f) for f in history.open_forecasts()],
         charts_note=(
             "" if not budget.skipped else
-            f"{plural(budget.skipped, 'further chart')} not drawn (at most {chart_cap} per model)."
+            f"No charts for {plural(budget.skipped, 'further series', 'further series')} (at most "
+            f"{chart_cap} charts per model)."
         ),
     )
 

@@ -99,6 +99,8 @@ def _model_sections(
     store: Store, config: PlumblineConfig, histories: dict[str, ModelHistory],
     new: list[FindingRecord], *, svg: bool, png: bool, total_cap: int | None,
 ) -> tuple[list[ModelSection], list[Chart]]:
+    """Per model with news: its coverage over the latest 13 periods and the charts of the
+    series concerned (at most ``CHART_CAP`` per model, ``total_cap`` in all)."""
     sections: list[ModelSection] = []
     drawn: list[Chart] = []
     models = [name for name in config.models if any(f.model == name for f in new)]
@@ -110,11 +112,17 @@ def _model_sections(
             if finding.series in seen:
                 continue
             seen.add(finding.series)
+            capped = total_cap is not None and len(drawn) + len(budget.drawn) >= total_cap
+            if budget.full or capped:
+                break
             for data in series_chart_data(store, history, finding.series, full=False):
                 if total_cap is not None and len(drawn) + len(budget.drawn) >= total_cap:
                     break
                 budget.add(data)
-        summary = summarise_coverage(audit_models(store, config, model=name, last=13))
+        if name not in history.summaries:
+            history.summaries[name] = summarise_coverage(
+                audit_models(store, config, model=name, last=13))
+        summary = history.summaries[name]
         sections.append(ModelSection(
             name, coverage_sentence(summary, "over the latest 13 scored periods"),
             None if summary is None else summary["zone"],

@@ -11,6 +11,7 @@ from __future__ import annotations
 from collections import defaultdict
 from dataclasses import dataclass, field
 from datetime import datetime
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -51,6 +52,10 @@ class ModelHistory:
     open_findings: list[FindingRecord]
     _rows: dict[str | None, NDArray[np.int64]] = field(default_factory=dict)
     _scored_ids: set[int] = field(default_factory=set)
+    _open: dict[datetime | None, list[ForecastRecord]] = field(default_factory=dict)
+    _open_by_series: dict[str | None, list[ForecastRecord]] | None = None
+    _forecasts_by_series: dict[str | None, list[ForecastRecord]] | None = None
+    summaries: dict[str, dict[str, Any] | None] = field(default_factory=dict)  # memo for pages
 
     def scored_rows(self, series: str | None) -> NDArray[np.int64]:
         """Indexes into ``scored`` of one series' rows, in target-period order."""
@@ -73,6 +78,15 @@ class ModelHistory:
             worst[finding.series] = max(worst.get(finding.series, -1), rank)
         return sorted(worst, key=lambda s: (-worst[s], (0, "") if s is None else (1, s)))
 
+    def forecasts_of(self, series: str | None) -> list[ForecastRecord]:
+        """Every forecast of one series, in the order issued."""
+        if self._forecasts_by_series is None:
+            grouped: dict[str | None, list[ForecastRecord]] = defaultdict(list)
+            for record in self.forecasts:
+                grouped[record.series].append(record)
+            self._forecasts_by_series = dict(grouped)
+        return self._forecasts_by_series.get(series, [])
+
     def findings_of(self, series: str | None) -> list[FindingRecord]:
         return [f for f in self.open_findings if f.series == series]
 
@@ -82,6 +96,8 @@ class ModelHistory:
         With date periods and ``period_end``, only targets after the period end's date (the
         coming periods); an older target without its actual is overdue, not coming.
         """
+        if period_end in self._open:
+            return list(self._open[period_end])
         latest: dict[tuple[str | None, int], ForecastRecord] = {}
         for record in self.forecasts:
             if record.id in self._scored_ids:
@@ -95,7 +111,17 @@ class ModelHistory:
             rows = [r for r in rows if r.target_period_key > limit]
         rows.sort(key=lambda r: ((0, "") if r.series is None else (1, r.series),
                                  r.target_period_key))
-        return rows
+        self._open[period_end] = rows
+        return list(rows)
+
+    def open_forecasts_of(self, series: str | None) -> list[ForecastRecord]:
+        """``open_forecasts()`` of one series."""
+        if self._open_by_series is None:
+            grouped: dict[str | None, list[ForecastRecord]] = defaultdict(list)
+            for record in self.open_forecasts():
+                grouped[record.series].append(record)
+            self._open_by_series = dict(grouped)
+        return list(self._open_by_series.get(series, ()))
 
 
 def load_model(store: Store, config: PlumblineConfig, name: str) -> ModelHistory:
@@ -132,7 +158,7 @@ def actuals_data(
     if last is not None:
         rows = rows[-last:]
     scored = history.scored
-    upcoming = [f for f in history.open_forecasts() if f.series == series]
+    upcoming = history.open_forecasts_of(series)
     return ActualsData(
         title=f"Actuals against the intervals issued for them, {series_label(series)}",
         periods=tuple(scored.target_period[i] for i in rows),
@@ -165,7 +191,8 @@ def hit_rate_data(
     labels: dict[int, str] = {}
     for i in rows:
         labels.setdefault(int(scored.target_period_key[i]), scored.target_period[i])
-    what = "every series" if pooled else series_label(series)
+    what = ("every series" if history.model.per else "the whole model") if pooled else (
+        series_label(series))
     return HitRateData(
         title=f"Rolling hit rate over {window} periods, {what}",
         periods=tuple(labels[int(k)] for k in order),
@@ -178,7 +205,7 @@ def hit_rate_data(
 
 def fit_history(store: Store, history: ModelHistory, series: str | None) -> list[FitRecord]:
     """The series' refits that issued forecasts, and its latest fit, oldest first."""
-    ids = {f.fit_id for f in history.forecasts if f.series == series and f.fit_id is not None}
+    ids = {f.fit_id for f in history.forecasts_of(series) if f.fit_id is not None}
     latest = history.latest_fits.get(series)
     if latest is not None:
         ids.add(latest.id)
@@ -253,20 +280,28 @@ def coefficient_data(
 ) -> CoefficientData | None:
     """``term`` across the series' refits, with the baseline's band; None with under 2 refits."""
     fits = fit_history(store, history, series)
-    points = [(f.window_last or str(f.id), _term_row(f, term)) for f in fits]
-    kept = [(label, row) for label, row in points if row is not None]
+    points = [(f, _term_row(f, term)) for f in fits]
+    kept = [(fit, row) for fit, row in points if row is not None]
     if len(kept) < 2:
         return None
     array = np.array([row for _, row in kept], dtype=np.float64)
+    latest = history.latest_fits.get(series)
+    record = None if latest is None else store.baseline(history.name, latest.version, series)
+    after = 0
+    if record is not None:
+        after = next((i for i, (fit, _) in enumerate(kept)
+                      if fit.window_last_key is not None and fit.window_last_key > record.end_key),
+                     len(kept))
     return CoefficientData(
         title=f"Coefficient on {term} at each refit, {series_label(series)}",
         term=term,
-        periods=tuple(label for label, _ in kept),
+        periods=tuple(fit.window_last or str(fit.id) for fit, _ in kept),
         estimate=array[:, 0],
         lower=array[:, 1],
         upper=array[:, 2],
         level=history.model.level,
         baseline=baseline_coefficient(store, history, series, term),
+        after_baseline=after,
     )
 
 
@@ -305,7 +340,7 @@ def scatter_data(store: Store, history: ModelHistory, series: str | None) -> Sca
     if not fit.estimable:
         return None
     predictor = (model.predictors or [""])[0]
-    upcoming = [f for f in history.open_forecasts() if f.series == series and predictor in f.inputs]
+    upcoming = [f for f in history.open_forecasts_of(series) if predictor in f.inputs]
     plan_x = np.array([f.inputs[predictor] for f in upcoming], dtype=np.float64)
     low = float(min(x.min(), plan_x.min() if plan_x.size else x.min()))
     high = float(max(x.max(), plan_x.max() if plan_x.size else x.max()))

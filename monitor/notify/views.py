@@ -7,6 +7,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
+from zoneinfo import ZoneInfo
 
 from markupsafe import Markup
 
@@ -15,6 +16,7 @@ from monitor.notify.words import (
     KIND_WORDS,
     SEVERITY_MARKS,
     level_text,
+    local_date,
     number,
     percent,
     scope_text,
@@ -44,9 +46,12 @@ class FindingView:
     state: str
     is_new: bool  # raised in the window the report covers
     acknowledged: bool
+    cleared: str | None = None  # when it cleared, in the config's time zone
 
 
-def finding_view(record: FindingRecord, *, is_new: bool = False) -> FindingView:
+def finding_view(
+    record: FindingRecord, *, is_new: bool = False, zone: ZoneInfo | None = None
+) -> FindingView:
     return FindingView(
         id=record.id,
         severity=record.severity.value,
@@ -65,15 +70,19 @@ def finding_view(record: FindingRecord, *, is_new: bool = False) -> FindingView:
         state=record.state.value,
         is_new=is_new,
         acknowledged=record.acknowledged_at is not None,
+        cleared=(
+            None if record.cleared_at is None
+            else local_date(record.cleared_at, zone or ZoneInfo("UTC"))
+        ),
     )
 
 
 def ordered_findings(
-    records: Iterable[FindingRecord], *, new_ids: Iterable[int] = ()
+    records: Iterable[FindingRecord], *, new_ids: Iterable[int] = (), zone: ZoneInfo | None = None
 ) -> list[FindingView]:
     """Most severe first; within a severity new ones first, then by model, series, kind, id."""
     fresh = set(new_ids)
-    views = [finding_view(r, is_new=r.id in fresh) for r in records]
+    views = [finding_view(r, is_new=r.id in fresh, zone=zone) for r in records]
     views.sort(key=lambda v: (-v.rank, not v.is_new, v.model or "", v.feed or "",
                               v.series or "", v.kind, v.id))
     return views

@@ -142,9 +142,9 @@ def statistic_text(
         ),
         FindingKind.SIGNIFICANCE_LOST: f"current slope {number(statistic)}{p}",
         FindingKind.SIGN_FLIP: f"current slope {number(statistic)}{p}",
-        FindingKind.WEAK_FIT: f"R² {number(statistic, 2)}{p}",
+        FindingKind.WEAK_FIT: f"R² {statistic:.2f}{p}",
         FindingKind.EXTRAPOLATION: f"leverage {number(statistic, 3)}{p}",
-        FindingKind.AUTOCORRELATION: f"Durbin–Watson {number(statistic, 3)}{p}",
+        FindingKind.AUTOCORRELATION: f"Durbin–Watson {statistic:.2f}{p}",
         FindingKind.HETEROSCEDASTICITY: f"Breusch–Pagan statistic {number(statistic, 3)}{p}",
         FindingKind.STALE_FEED: f"{statistic:.0f} days since the latest period{p}",
         FindingKind.REJECTED_INPUT: (

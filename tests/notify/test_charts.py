@@ -124,7 +124,14 @@ def test_alt_text_states_the_figures() -> None:
                                   np.array([0.4, 0.7, 0.9]), np.array([0.6, 0.9, 1.1]), 0.9,
                                   (0.5, 0.4, 0.6))
     assert describe(coefficient).endswith(
-        "; 2 of 3 refits have an interval clear of the baseline band, the first at 2025-01-08.")
+        "; 2 of the 3 refits since the baseline have an interval clear of the baseline band, the "
+        "first at 2025-01-08.")
+    later = CoefficientData("c", "drops", _periods(3), np.array([0.2, 0.5, 1.0]),
+                            np.array([0.1, 0.4, 0.9]), np.array([0.3, 0.6, 1.1]), 0.9,
+                            (0.5, 0.4, 0.6), after_baseline=1)
+    assert describe(later).endswith(
+        "; 1 of the 2 refits since the baseline have an interval clear of the baseline band, the "
+        "first at 2025-01-15.")
 
 
 def test_every_kind_draws(history: History) -> None:
