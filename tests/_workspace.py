@@ -103,7 +103,7 @@ class Workspace:
         (root / "plumbline.yaml").write_text(config_text, encoding="utf-8")
         workspace = cls(root)
         for feed in workspace.config.feeds.values():
-            if not feed.inbox.exists():
+            if not (feed.inbox.exists() or feed.inbox.is_symlink()):
                 feed.inbox.mkdir(parents=True)
         return workspace
 

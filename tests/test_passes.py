@@ -20,6 +20,7 @@ import json
 import math
 import shutil
 from collections import defaultdict
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import date, timedelta
 from pathlib import Path
@@ -53,6 +54,9 @@ SEED = 20240107
 DEPOTS = ("east", "north", "south")
 CHANGE_WEEK = 45  # north's slope moves from this week on
 SWAPPED_WEEK = 33  # the outside interval for this week arrives with lower above upper
+# the outside interval's upper (lower) bound for this week is exactly the actual: a hit
+UPPER_ON_ACTUAL_WEEK = 40
+LOWER_ON_ACTUAL_WEEK = 50
 WAREHOUSE_COLUMNS = (
     "week_ending", "order_lines", "pick_hours", "pallets", "receiving_hours",
     "fc_point", "fc_lower", "fc_upper",
@@ -138,6 +142,10 @@ def build_scenario(seed: int = SEED) -> Scenario:
         high = outside_point[nxt] + outside_half
         if w + 1 == SWAPPED_WEEK:
             low, high = high, low
+        if w + 1 == UPPER_ON_ACTUAL_WEEK:
+            low, high = min(low, pick[nxt] - 1), float(_text(pick[nxt], 2))
+        if w + 1 == LOWER_ON_ACTUAL_WEEK:
+            low, high = float(_text(pick[nxt], 2)), max(high, pick[nxt] + 1)
         warehouse = [
             [period, _text(order_lines[now], 0), _text(pick[now], 2), _text(pallets[now], 0),
              _text(receiving[now], 2), "", "", ""],
@@ -284,13 +292,13 @@ def test_forecasts_answer_each_warm_plan_row_once_from_the_same_pass(replay: Rep
             assert f.pass_id == passes[week], key
             assert f.issued_at == delivered(week)
             assert f.lead == 1  # next week's plan, one cadence step after the latest actual
-            assert f.lower <= f.point <= f.upper
             if f.model == "outside_pick":
                 plan = replay.scenario.plans[("warehouse", None, f.target_period, week)]
                 assert (f.point, f.lower, f.upper) == (
                     plan["fc_point"], plan["fc_lower"], plan["fc_upper"])
                 assert f.level == 0.90 and f.fit_id is None
                 continue
+            assert f.lower < f.point < f.upper
             feed, _, predictors = FITTED[f.model]
             plan = replay.scenario.plans[(feed, f.series, f.target_period, week)]
             assert f.inputs == {p: plan[p] for p in predictors}
@@ -510,6 +518,19 @@ def test_an_interval_model_is_scored_and_audited_as_its_own(replay: Replay) -> N
             for t in expected_targets[:-1]]
     within = sum(f.lower <= a <= f.upper for f, a in zip(forecasts, pick, strict=False))
     assert record["hits"] == within
+    # an actual exactly on a bound is a hit (bounds inclusive, DESIGN.md section 2)
+    on_bound = {
+        week_ending(UPPER_ON_ACTUAL_WEEK).isoformat(): "upper",
+        week_ending(LOWER_ON_ACTUAL_WEEK).isoformat(): "lower",
+    }
+    outcome_of = dict(replay.workspace.query(
+        "SELECT f.target_period, o.outcome FROM outcomes AS o "
+        "JOIN forecasts AS f ON f.id = o.forecast_id WHERE f.model = 'outside_pick'"))
+    for f in forecasts:
+        if f.target_period in on_bound:
+            actual = replay.scenario.actuals[("warehouse", None, f.target_period)]["pick_hours"]
+            assert getattr(f, on_bound[f.target_period]) == actual
+            assert outcome_of[f.target_period] == "hit"
 
 
 # --------------------------------------------------------------------------- 3. idempotence, clocks
@@ -530,18 +551,41 @@ def test_rerunning_at_the_same_clock_changes_nothing(
     copied: Workspace, capsys: pytest.CaptureFixture[str]
 ) -> None:
     before = copied.snapshot()
-    report = copied.run(delivered(WEEKS))
+    told: list[PassReport] = []
+
+    def notifier(store: Store, config: object, report: PassReport, *, now: object) -> None:
+        told.append(report)
+
+    report = copied.run(delivered(WEEKS), notifier=notifier)
     assert report.nothing_to_do
     assert (report.files, report.forecasts_issued, report.findings_raised) == ((), 0, ())
+    assert told == []  # sends nothing
     assert copied.snapshot() == before
     capsys.readouterr()
     assert copied.cli_pass(delivered(WEEKS)) == 0
+    assert "Nothing to do" in capsys.readouterr().out
+    # a time without an offset is read in the config's time zone (Europe/Berlin), so this is
+    # the same clock again; read as UTC it would be two hours later and run a pass
+    assert copied.cli_pass(delivered(WEEKS).replace(tzinfo=None).isoformat()) == 0
     assert "Nothing to do" in capsys.readouterr().out
     after = copied.snapshot()
     assert {t: len(rows) for t, rows in after.items()} == {t: len(r) for t, r in before.items()}
     for table in CONTENT_TABLES:
         assert after[table] == before[table], table
     assert after == before
+
+
+def test_strict_exits_1_while_a_critical_finding_is_open(
+    copied: Workspace, capsys: pytest.CaptureFixture[str]
+) -> None:
+    with Store.open(copied.database, readonly=True) as store:
+        critical = [f for f in store.open_findings() if f.severity == Severity.CRITICAL]
+    assert [(f.model, f.series, f.kind) for f in critical] == [
+        ("delivery_hours", "north", FindingKind.STRUCTURAL_BREAK)]
+    capsys.readouterr()
+    assert copied.cli_pass(delivered(WEEKS), "--strict") == 1
+    assert "1 critical finding(s) open" in capsys.readouterr().err
+    assert copied.cli_pass(delivered(WEEKS)) == 0
 
 
 def _findings_by_id(snapshot: dict[str, list[tuple]]) -> dict[int, tuple]:
@@ -633,9 +677,10 @@ def test_a_series_that_cannot_be_fitted_does_not_stop_the_others(tmp_path: Path)
         ])],
     ))
     rng = np.random.default_rng(7)
-    names = ("east", "west")
+    names = ("east", "flat", "west")
     drops = {d: rng.uniform(80, 160, 30).round() for d in names}
     drops["west"][14:] = 100.0  # weeks 15 onwards
+    drops["flat"][:] = 120.0  # never varies: never fitted, so never "no longer" estimable
     hours = {d: (6 + 0.5 * drops[d] + rng.normal(0, 2.5, 30)).round(2) for d in names}
     config = workspace.config
     reports = {}
@@ -666,23 +711,38 @@ def test_a_series_that_cannot_be_fitted_does_not_stop_the_others(tmp_path: Path)
     assert week_of_pass[finding.first_pass_id] == 26
     assert passes[finding.first_pass_id].as_of == delivered(26)
     assert "drops" in finding.message
-    assert not [f for f in findings if f.series == "east" and f.kind == FindingKind.NOT_ESTIMABLE]
+    assert [f for f in findings if f.kind == FindingKind.NOT_ESTIMABLE] == west
     # the stored fits say the same: west fitted at week 25, not at 26, with the reason
     rows = workspace.query(
         "SELECT f.series_key, f.estimable, f.reason, f.pass_id FROM fits AS f "
         "WHERE f.pass_id IN (?, ?) ORDER BY f.pass_id, f.series_key",
         (reports[25].pass_id, reports[26].pass_id),
     )
-    assert [(r[0], r[1]) for r in rows] == [("east", 1), ("west", 1), ("east", 1), ("west", 0)]
-    assert "drops" in rows[3][2]
+    assert [(r[0], r[1]) for r in rows] == [
+        ("east", 1), ("flat", 0), ("west", 1), ("east", 1), ("flat", 0), ("west", 0)]
+    assert "drops" in rows[5][2] and "drops" in rows[1][2]
 
 
+def _file_for_a_folder(inbox: Path) -> None:
+    inbox.write_text("not a folder\n")
+
+
+def _folder_that_cannot_be_listed(inbox: Path) -> None:
+    # Listing it fails with an OSError other than "missing" or "not a folder" (here ELOOP; an
+    # unreadable folder gives EACCES the same way, but the tests may run as root).
+    inbox.symlink_to(inbox.name)
+
+
+@pytest.mark.parametrize("breakage", [_file_for_a_folder, _folder_that_cannot_be_listed],
+                         ids=["file_for_a_folder", "folder_that_cannot_be_listed"])
 def test_a_broken_feed_is_reported_and_the_other_feeds_models_still_run(
-    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    breakage: Callable[[Path], None], tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     yard_inbox = tmp_path / "feeds" / "yard" / "inbox"
     yard_inbox.parent.mkdir(parents=True)
-    yard_inbox.write_text("not a folder\n")  # the inbox path is a file: the feed cannot work
+    breakage(yard_inbox)
+    before = yard_inbox.lstat()
+    broken = (before.st_ino, before.st_mode, before.st_size, before.st_mtime_ns)
     workspace = Workspace.create(tmp_path, config_yaml(
         [feed_yaml("depots", DEPOT_COLUMNS),
          feed_yaml("yard", ("week_ending", "moves", "yard_hours"))],
@@ -723,4 +783,9 @@ def test_a_broken_feed_is_reported_and_the_other_feeds_models_still_run(
         assert [f.target_period for f in forecasts] == [
             week_ending(w).isoformat() for w in (11, 12, 13)]
         assert store.list_forecasts(model="yard_hours") == []
-    assert yard_inbox.read_text() == "not a folder\n"  # left alone
+    # the same clock again: nothing to do, and the broken feed does not stop the check
+    capsys.readouterr()
+    assert workspace.cli_pass(delivered(12)) == 0
+    assert "Nothing to do" in capsys.readouterr().out
+    after = yard_inbox.lstat()
+    assert (after.st_ino, after.st_mode, after.st_size, after.st_mtime_ns) == broken  # left alone
