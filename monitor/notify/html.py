@@ -70,6 +70,10 @@ from monitor.store import Store
 CHART_CAP = 25
 # Series whose newest fit a model page shows in full when the model has many.
 DETAIL_CAP = 25
+# Rows of a model page's per-series tables (coverage, fits, forecasts): the series with open
+# findings and the worst coverage first; `plumbline audit --model M` lists every series.
+TABLE_CAP = 200
+_ZONE_ORDER = {"red": 0, "yellow": 1, "green": 2, None: 3}
 
 
 @cache
@@ -263,6 +267,7 @@ class ModelPage:
     details_note: str
     forecasts: list[ForecastView]
     charts_note: str
+    table_note: str
 
 
 def build_model_page(
@@ -341,12 +346,13 @@ def build_model_page(
         facts=facts,
         findings=findings,
         coverage_sentences=sentences,
-        coverage_rows=[coverage_row(r) for r in windows[52]],
+        coverage_rows=[coverage_row(r) for r in _first_rows(windows[52], history)],
         coverage_chart=coverage_chart,
-        series_rows=_series_rows(history),
+        series_rows=_series_rows(history, _ranked_series(history, windows[52])[:TABLE_CAP]),
         details=details,
         details_note=details_note,
-        forecasts=[forecast_view(f) for f in history.open_forecasts()],
+        forecasts=[forecast_view(f) for f in _first_forecasts(history, windows[52])],
+        table_note=_table_note(history),
         charts_note=(
             "" if not budget.skipped else
             f"No charts for {plural(budget.skipped, 'further series', 'further series')} (at most "
@@ -382,12 +388,43 @@ def _model_sentence(
     )
 
 
-def _series_rows(history: ModelHistory) -> list[SeriesRow]:
+def _ranked_series(history: ModelHistory, records: list[dict[str, Any]]) -> list[str | None]:
+    """Series with open findings first (most severe first), then by zone (red first), then name."""
+    flagged = {s: i for i, s in enumerate(history.flagged)}
+    zones = {r["series"]: r["zone"] for r in records}
+    return sorted(history.series, key=lambda s: (
+        flagged.get(s, len(flagged)), _ZONE_ORDER.get(zones.get(s), 3),
+        (0, "") if s is None else (1, s)))
+
+
+def _first_rows(records: list[dict[str, Any]], history: ModelHistory) -> list[dict[str, Any]]:
+    if len(records) <= TABLE_CAP:
+        return records
+    by_series = {r["series"]: r for r in records}
+    ranked = [s for s in _ranked_series(history, records) if s in by_series]
+    return [by_series[s] for s in ranked[:TABLE_CAP]]
+
+
+def _first_forecasts(history: ModelHistory, records: list[dict[str, Any]]) -> list[Any]:
+    shown = set(_ranked_series(history, records)[:TABLE_CAP])
+    return [f for f in history.open_forecasts() if f.series in shown]
+
+
+def _table_note(history: ModelHistory) -> str:
+    count = len(history.series)
+    if count <= TABLE_CAP:
+        return ""
+    return (f"The tables on this page show {TABLE_CAP} of the model's {count} series: those with "
+            "open findings first, then those with the worst coverage. 'plumbline audit --model "
+            f"{history.name} --format csv' lists every series.")
+
+
+def _series_rows(history: ModelHistory, series_list: list[str | None]) -> list[SeriesRow]:
     rows = []
     counts: dict[str | None, int] = {}
     for finding in history.open_findings:
         counts[finding.series] = counts.get(finding.series, 0) + 1
-    for series in history.series:
+    for series in series_list:
         fit = history.latest_fits.get(series)
         view = None if fit is None else read_fit(fit, response=history.model.response)
         slope = None if view is None else view.slope()

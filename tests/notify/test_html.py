@@ -41,7 +41,11 @@ class Element:
     tag: str
     attrs: dict[str, str]
     ancestors: list[tuple[str, dict[str, str]]]
+    parents: list[Element] = field(default_factory=list)
     text: list[str] = field(default_factory=list)
+
+    def within(self, other: Element) -> bool:
+        return any(parent is other for parent in self.parents)
 
     @property
     def classes(self) -> set[str]:
@@ -63,14 +67,14 @@ class Page(HTMLParser):
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         element = Element(tag, {k: v or "" for k, v in attrs},
-                          [(e.tag, e.attrs) for e in self.stack])
+                          [(e.tag, e.attrs) for e in self.stack], list(self.stack))
         self.elements.append(element)
         if tag not in self.VOID:
             self.stack.append(element)
 
     def handle_startendtag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         self.elements.append(Element(tag, {k: v or "" for k, v in attrs},
-                                     [(e.tag, e.attrs) for e in self.stack]))
+                                     [(e.tag, e.attrs) for e in self.stack], list(self.stack)))
 
     def handle_endtag(self, tag: str) -> None:
         for i in range(len(self.stack) - 1, -1, -1):
@@ -320,3 +324,27 @@ def test_templates_ship_in_the_package(template: str) -> None:
     assert all(p.name.startswith("_") for p in folder.iterdir()
                if p.suffix in (".html", ".txt", ".css") and p.stem not in
                ("model", "pass", "digest", "index"))
+
+
+def test_model_page_tables_are_capped_for_large_models(
+    history: History, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With more series than the cap, the tables keep the series with open findings first."""
+    import monitor.notify.html as html_module
+
+    monkeypatch.setattr(html_module, "TABLE_CAP", 2)
+    with history.open() as store:
+        (path,) = write_model_pages(store, history.config, models=["delivery_hours"])
+        flagged = {f.series for f in store.open_findings(model="delivery_hours")}
+    page = Page(path.read_text(encoding="utf-8"))
+    assert "The tables on this page show 2 of the model's 3 series" in page.text
+    assert "plumbline audit --model delivery_hours --format csv" in page.text
+    tables = page.find("table")
+    for table in tables:
+        rows = [e for e in page.elements if e.tag == "tr" and e.within(table)
+                and not any(t == "thead" for t, _ in e.ancestors)]
+        if "interval of the hit rate" in text_of(table) or "open findings" in text_of(table):
+            assert len(rows) == 2
+            names = {text_of(cell) for row in rows for cell in page.elements
+                     if cell.tag == "td" and cell.within(row)}
+            assert flagged <= names  # South and the script-named depot, not North
