@@ -374,6 +374,23 @@ def test_a_revision_is_kept_beside_the_first_actual_and_used_from_then_on(
     assert sha256((workspace.archive("depots") / "week_13.csv").read_bytes()) == sha256(data)
 
 
+def test_plumbline_pass_reports_a_revision(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """DESIGN.md section 6 (and the README): a revision is kept, *reported*, and used."""
+    workspace = _seeded(tmp_path)
+    drops_12, hours_12 = HISTORY[12]["north"]
+    rows = [[week_ending(12).isoformat(), "north", drops_12, round(hours_12 + 9.5, 2)],
+            *_rows([13], 14)]
+    workspace.drop("depots", "week_13.csv", csv_bytes(COLUMNS, rows))
+    capsys.readouterr()
+    assert workspace.cli_pass(delivered(13)) == 0
+    out = capsys.readouterr().out
+    lines = [line for line in out.splitlines() if "revis" in line.lower()]
+    assert lines, f"the pass's output says nothing of the revision:\n{out}"
+    assert any("week_13.csv" in line for line in lines), lines
+
+
 PARQUET_CASES = ("good", "truncated", "nan_row")
 
 

@@ -19,6 +19,7 @@ from __future__ import annotations
 import json
 import math
 import shutil
+import threading
 from collections import defaultdict
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -200,10 +201,6 @@ def replay(tmp_path_factory: pytest.TempPathFactory) -> Replay:
 
 def _store(replay: Replay) -> Store:
     return Store.open(replay.workspace.database, readonly=True)
-
-
-def _series_of(feed: str) -> tuple[str | None, ...]:
-    return DEPOTS if feed == "depots" else (None,)
 
 
 def _actual_weeks(scenario: Scenario, feed: str, series: str | None, up_to: int) -> int:
@@ -573,6 +570,27 @@ def test_rerunning_at_the_same_clock_changes_nothing(
     for table in CONTENT_TABLES:
         assert after[table] == before[table], table
     assert after == before
+
+
+def test_a_pass_stopped_early_is_finished_by_a_rerun_at_the_same_clock(
+    copied: Workspace,
+) -> None:
+    """The daemon stops a pass between stages on SIGTERM; the file's rows are in. A rerun at the
+    same clock has "something left over" (passes.py) and must score and forecast."""
+    w = WEEKS + 1
+    week_71 = csv_bytes(DEPOT_COLUMNS, [
+        [week_ending(w).isoformat(), d, "120", f"{66.0 + i:.2f}"] for i, d in enumerate(DEPOTS)
+    ])
+    copied.drop("depots", "week_71.csv", week_71)
+    stop = threading.Event()
+    stop.set()
+    stopped = copied.run(delivered(w), stop_requested=stop)
+    assert stopped.stopped_early == "score"
+    assert [f.name for f in stopped.files] == ["week_71.csv"]
+    assert stopped.outcomes_scored == 0
+    rerun = copied.run(delivered(w))
+    assert not rerun.nothing_to_do, "the stopped pass's scoring was never done at this clock"
+    assert rerun.outcomes_scored == len(DEPOTS)  # week 71's forecasts, one per depot
 
 
 def test_strict_exits_1_while_a_critical_finding_is_open(
