@@ -216,8 +216,8 @@ def test_cli_table_opens_with_a_sentence_and_plain_columns(
     assert "pick_hours (nominal 95 %): " in out
     assert "delivery_hours (nominal 90 %): " in out
     header = next(line for line in out.splitlines() if line.strip().startswith("series"))
-    for column in ("scored", "hits", "hit rate", "interval of the hit rate", "above", "below",
-                   "Kupiec p", "zone"):
+    for column in ("scored", "hits", "hit rate", "interval", "above", "below", "Kupiec p",
+                   "indep. p", "zone", "width", "score"):
         assert column in header
     assert "(whole model)" in out and "North" in out
     for looks in ("P>|t|", "Lower 95%", "SUMMARY", "=====", "Significance F", "***"):
