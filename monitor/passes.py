@@ -247,6 +247,7 @@ def _run(
         latest is not None
         and as_of == latest.as_of
         and latest.status == "finished"
+        and not latest.counts.get("stopped_early")
         and not files_waiting(store, config, real_clock)
     ):
         return PassReport(None, as_of, timings={"total": time.perf_counter() - started})

@@ -54,7 +54,9 @@ def summary(report: PassReport) -> dict[str, object]:
         "as_of": report.as_of.isoformat(),
         "nothing_to_do": report.nothing_to_do,
         "files": [{"feed": f.feed, "name": f.name, "outcome": f.outcome.value,
-                   "rows_ingested": f.rows_ingested, "rows_rejected": f.rows_rejected}
+                   "rows_ingested": f.rows_ingested, "rows_rejected": f.rows_rejected,
+                   "revisions": [{"series": r.series, "period": r.period,
+                                  "revision": r.revision} for r in f.revised]}
                   for f in report.files],
         "outcomes_scored": report.outcomes_scored,
         "series_analysed": report.series_analysed,
@@ -95,6 +97,11 @@ def handle(args: argparse.Namespace) -> int:
             if f.rows_rejected or f.outcome.value != "archived":
                 print(f"  {f.feed}/{f.name}: {f.outcome.value}, {f.rows_rejected} row(s) "
                       "rejected")
+            if f.revisions:
+                keys = ", ".join(r.period if r.series is None else f"{r.series} {r.period}"
+                                 for r in f.revised)
+                print(f"  {f.feed}/{f.name}: {f.revisions} revision(s) of actuals held "
+                      f"before ({keys}); the revised values are used from now on")
     if args.strict:
         with Store.open(config.database, readonly=True) as store:
             critical = [f for f in store.open_findings() if f.severity is Severity.CRITICAL]

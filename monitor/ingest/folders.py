@@ -83,6 +83,9 @@ def survey_inbox(
         return InboxSurvey((), (), (), f"the inbox {inbox} does not exist")
     except NotADirectoryError:
         return InboxSurvey((), (), (), f"the inbox {inbox} is not a folder")
+    except OSError as exc:  # unreadable (EACCES), a link loop, an I/O error
+        reason = exc.strerror or str(exc)
+        return InboxSurvey((), (), (), f"the inbox {inbox} cannot be listed: {reason}")
     now = real_clock()
     names = {entry.name for entry in entries}
     complete: list[InboxFile] = []
