@@ -5,10 +5,11 @@ from __future__ import annotations
 import csv
 import io
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from monitor.errors import InputFileError
+from monitor.errors import InputFileError, UsageError
 from monitor.text import did_you_mean
 
 
@@ -53,6 +54,22 @@ class CsvTable:
         return values
 
 
+def check_model_names(response: str, predictors: Sequence[str], intercept: bool) -> None:
+    """A response and predictors that can make one model: no name twice, none in two roles."""
+    seen: set[str] = set()
+    for name in predictors:
+        if name in seen:
+            raise UsageError(f"--predictors names {name!r} twice")
+        seen.add(name)
+    if response in seen:
+        raise UsageError(f"column {response!r} is both the response and a predictor")
+    if intercept and "intercept" in seen:
+        raise UsageError(
+            "a predictor column named 'intercept' clashes with the intercept term; rename the "
+            "column or give --no-intercept"
+        )
+
+
 def read_csv_table(path: str | Path) -> CsvTable:
     """Read a UTF-8 CSV with a header; blank lines are skipped, ragged rows are an error."""
     file_path = Path(path)
@@ -91,4 +108,4 @@ def read_csv_table(path: str | Path) -> CsvTable:
     return CsvTable(file_path, header, tuple(rows), tuple(lines))
 
 
-__all__ = ["CsvTable", "read_csv_table"]
+__all__ = ["CsvTable", "check_model_names", "read_csv_table"]

@@ -28,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from monitor.commands._csv import CsvTable, read_csv_table
+from monitor.commands._csv import CsvTable, check_model_names, read_csv_table
 from monitor.errors import InputFileError, UsageError
 from monitor.stats.supf import DEFAULT_TRIMMING, break_tests
 from monitor.text import format_p_value
@@ -69,7 +69,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 def run(args: argparse.Namespace) -> int:
     predictors = list(args.predictors)
     intercept = not args.no_intercept
-    _check_names(args.response, predictors, intercept)
+    check_model_names(args.response, predictors, intercept)
     if not intercept and not predictors:
         raise UsageError("--no-intercept without --predictors leaves no model to test")
     table = read_csv_table(args.file)
@@ -88,21 +88,6 @@ def run(args: argparse.Namespace) -> int:
     else:
         sys.stdout.write(render_table(report))
     return 0
-
-
-def _check_names(response: str, predictors: Sequence[str], intercept: bool) -> None:
-    seen: set[str] = set()
-    for name in predictors:
-        if name in seen:
-            raise UsageError(f"--predictors names {name!r} twice")
-        seen.add(name)
-    if response in seen:
-        raise UsageError(f"column {response!r} is both the response and a predictor")
-    if intercept and "intercept" in seen:
-        raise UsageError(
-            "a predictor column named 'intercept' clashes with the intercept term; rename the "
-            "column or give --no-intercept"
-        )
 
 
 def minimum_rows(p: int) -> int:

@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from monitor.commands._csv import read_csv_table
+from monitor.commands._csv import check_model_names, read_csv_table
 from monitor.errors import InputFileError, UsageError
 from monitor.stats import diagnostics
 from monitor.stats.ols import OlsFit, fit_ols
@@ -77,7 +77,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 def run(args: argparse.Namespace) -> int:
     level = parse_level(args.level)
     predictors = list(args.predictors)
-    _check_names(args.response, predictors, intercept=not args.no_intercept)
+    check_model_names(args.response, predictors, intercept=not args.no_intercept)
     points = [parse_at(text, predictors) for text in args.at]
     table = read_csv_table(args.file)
     y = np.asarray(table.numeric_column(args.response), dtype=np.float64)
@@ -120,21 +120,6 @@ def parse_level(text: str) -> float:
             f"--level {text} is outside (0, 1); it is the nominal coverage, e.g. 0.95 or 0.80"
         )
     return level
-
-
-def _check_names(response: str, predictors: Sequence[str], intercept: bool) -> None:
-    seen: set[str] = set()
-    for name in predictors:
-        if name in seen:
-            raise UsageError(f"--predictors names {name!r} twice")
-        seen.add(name)
-    if response in seen:
-        raise UsageError(f"column {response!r} is both the response and a predictor")
-    if intercept and "intercept" in seen:
-        raise UsageError(
-            "a predictor column named 'intercept' clashes with the intercept term; rename the "
-            "column or give --no-intercept"
-        )
 
 
 def parse_at(text: str, predictors: Sequence[str]) -> dict[str, float]:
