@@ -58,7 +58,7 @@ from monitor.notify.words import CAUTION, local_date, local_time, plural
 from monitor.store import DigestRecord, Store, parse_utc, utc_text
 
 FINDINGS_CAP = 25  # open findings listed per model; the model page lists them all
-CLEARED_CAP = 25  # cleared findings listed, most severe first
+CLEARED_CAP = 40  # rows of cleared findings (grouped by model and kind), most severe first
 FORECASTS_CAP = 25  # coming forecasts listed per model
 EMAIL_CHART_CAP = 12  # PNG charts in one digest e-mail
 
@@ -74,6 +74,45 @@ class ModelCoverage:
     rows: tuple[CoverageRow, ...]  # flagged13 and flagged52 as table rows
     more_flagged: int
     charts: tuple[ChartData, ...]
+
+
+@dataclass(frozen=True)
+class ClearedGroup:
+    """Cleared findings of one kind on one model (or feed), as one row of the digest."""
+
+    severity: str  # the most severe among them
+    rank: int
+    kind: str
+    kind_words: str
+    scope: str
+    count: int
+    first_since: str | None
+    last_cleared: str | None
+
+
+def group_cleared(views: tuple[FindingView, ...] | list[FindingView]) -> list[ClearedGroup]:
+    """One row per (model or feed, kind): how many cleared, since when, last cleared when."""
+    groups: dict[tuple[str, str], list[FindingView]] = {}
+    for view in views:
+        owner = view.model if view.model is not None else f"feed {view.feed}"
+        groups.setdefault((owner, view.kind), []).append(view)
+    rows = []
+    for (owner, _kind), items in groups.items():
+        top = max(items, key=lambda v: v.rank)
+        series = {v.series for v in items if v.series is not None}
+        if len(series) > 1:
+            scope = f"{owner}, {len(series)} series"
+        elif len(series) == 1:
+            scope = f"{owner}, series {next(iter(series))}"
+        else:
+            scope = owner
+        since = [v.since for v in items if v.since]
+        cleared = [v.cleared for v in items if v.cleared]
+        rows.append(ClearedGroup(top.severity, top.rank, top.kind, top.kind_words, scope,
+                                 len(items), min(since) if since else None,
+                                 max(cleared) if cleared else None))
+    rows.sort(key=lambda r: (-r.rank, r.scope, r.kind))
+    return rows
 
 
 @dataclass(frozen=True)
@@ -105,6 +144,10 @@ class Digest:
     forecasts: tuple[ForecastView, ...]
     forecast_notes: tuple[str, ...]
     caution: str
+
+    @property
+    def cleared_groups(self) -> list[ClearedGroup]:
+        return group_cleared(self.cleared_findings)
 
     @property
     def subject(self) -> str:
@@ -367,11 +410,13 @@ __all__ = [
     "EMAIL_CHART_CAP",
     "FINDINGS_CAP",
     "FORECASTS_CAP",
+    "ClearedGroup",
     "Digest",
     "ModelCoverage",
     "VersionChange",
     "build_digest",
     "digest_message",
+    "group_cleared",
     "render_digest_html",
     "render_digest_text",
     "write_digest",
