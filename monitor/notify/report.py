@@ -138,9 +138,10 @@ def _render(
     escalated: list[FindingRecord], *, email: bool, with_charts: bool = True,
 ) -> tuple[str, list[Chart]]:
     clock = local_time(record.as_of, config.zone)
-    new_views = ordered_findings(new, new_ids=[f.id for f in new])
-    cleared_views = ordered_findings(cleared)
-    escalated_views = ordered_findings(escalated)
+    zone = config.zone
+    new_views = ordered_findings(new, zone=zone)  # listed under "New findings": no tag needed
+    cleared_views = ordered_findings(cleared, zone=zone)
+    escalated_views = ordered_findings(escalated, zone=zone)
     issued = store.list_forecasts(pass_id=record.id)
     forecasts: list[ForecastView] = []
     notes: list[str] = []
@@ -165,7 +166,7 @@ def _render(
         sections=sections,
         forecasts=forecasts,
         forecast_notes=notes,
-        counts=sorted(record.counts.items()) if isinstance(record.counts, dict) else [],
+        counts=_work_done(record),
         caution=CAUTION,
         email=email,
         page_title=f"Pass {record.id}",
@@ -238,6 +239,24 @@ def render_pass_report(
         messages.append(OwnerMessage(address, tuple(models), f"pass:{pass_id}:{address}",
                                      content))
     return PassReport(pass_id, path, tuple(new), tuple(cleared), tuple(rose), tuple(messages))
+
+
+# Keys of a pass's counts that are bookkeeping rather than news for a reader.
+_INTERNAL_COUNTS = {"observation_mark", "timings", "stopped_early", "skipped"}
+
+
+def _work_done(record: PassRecord) -> list[tuple[str, str]]:
+    """The pass's counts as (what, how many) lines: plain numbers and words only, plus what it
+    skipped and why it stopped early, if it did."""
+    counts = record.counts if isinstance(record.counts, dict) else {}
+    lines = [(str(key).replace("_", " "), str(value)) for key, value in sorted(counts.items())
+             if key not in _INTERNAL_COUNTS and isinstance(value, int | float | str)
+             and not isinstance(value, bool)]
+    for item in counts.get("skipped") or ():
+        lines.append(("skipped", str(item)))
+    if counts.get("stopped_early"):
+        lines.append(("stopped early", str(counts["stopped_early"])))
+    return lines
 
 
 def _subject(record: PassRecord, config: PlumblineConfig, new: list[FindingRecord],
