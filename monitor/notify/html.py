@@ -452,13 +452,16 @@ def write_model_pages(
     *,
     models: Iterable[str] | None = None,
     chart_cap: int = CHART_CAP,
+    histories: dict[str, ModelHistory] | None = None,
 ) -> list[Path]:
-    """Write ``model-<name>.html`` for each model (or those named); returns the paths."""
+    """Write ``model-<name>.html`` for each model (or those named); returns the paths.
+    ``histories`` reuses models already read (``load_model``) in this pass or digest."""
     folder = Path(out_dir or config.notify.html_dir)
     clock = business_clock_text(store, config)
     paths = []
     for name in models if models is not None else config.models:
-        page = build_model_page(store, config, name, chart_cap=chart_cap)
+        page = build_model_page(store, config, name, chart_cap=chart_cap,
+                                history=(histories or {}).get(name))
         paths.append(write_page(folder, model_page_name(name),
                                 render_model_page(page, clock=clock)))
     return paths

@@ -209,7 +209,7 @@ def render_pass_report(
                       email=False)
     path = write_page(folder, pass_page_name(pass_id), html)
     if write_models:
-        write_model_pages(store, config, folder)
+        write_model_pages(store, config, folder, histories=histories)
     write_index(store, config, folder)
 
     messages = []

@@ -3,7 +3,10 @@ findings, and the chart data of its series.
 
 ``load_model`` reads a model's history in a few queries (not one per series), so a page or a
 digest for a model with a thousand series costs a handful of reads plus the charts it draws for
-the flagged series only.
+the flagged series only. Scored forecasts are read in full (as arrays); the forecast records
+themselves (for the forecasts still open and the refits behind a coefficient chart) only from the
+latest ``FORECAST_LOOKBACK`` passes, so that the cost of a page stays bounded as years of weekly
+forecasts pile up.
 """
 
 from __future__ import annotations
@@ -37,6 +40,9 @@ from monitor.store import (
 from monitor.vocabulary import FindingKind, OutcomeKind
 
 GRID_POINTS = 60
+# Passes whose forecasts a report reads: half a year of weekly passes. Open forecasts older than
+# that are overdue rather than coming, and a coefficient chart shows this many refits at most.
+FORECAST_LOOKBACK = 26
 
 
 @dataclass(eq=False)
@@ -124,17 +130,23 @@ class ModelHistory:
         return list(self._open_by_series.get(series, ()))
 
 
-def load_model(store: Store, config: PlumblineConfig, name: str) -> ModelHistory:
-    """Read one model's scored forecasts, forecasts, latest fits and open findings."""
+def load_model(
+    store: Store, config: PlumblineConfig, name: str, *, lookback: int = FORECAST_LOOKBACK
+) -> ModelHistory:
+    """Read one model's scored forecasts, its forecasts of the latest ``lookback`` passes, latest
+    fits and open findings."""
     model = config.models[name]
     scored = store.scored_forecasts(name)
     every_scored = store.scored_forecasts(name, latest_only=False)
+    forecasts = []
+    for record in reversed(store.list_passes(limit=lookback)):
+        forecasts += store.list_forecasts(model=name, pass_id=record.id)
     history = ModelHistory(
         name=name,
         model=model,
         feed_period_type=config.feeds[model.feed].period_type,
         scored=scored,
-        forecasts=store.list_forecasts(model=name),
+        forecasts=forecasts,
         latest_fits=store.latest_fits(name),
         open_findings=store.open_findings(model=name),
     )
@@ -204,7 +216,8 @@ def hit_rate_data(
 
 
 def fit_history(store: Store, history: ModelHistory, series: str | None) -> list[FitRecord]:
-    """The series' refits that issued forecasts, and its latest fit, oldest first."""
+    """The series' refits that issued forecasts in the passes read, and its latest fit, oldest
+    first."""
     ids = {f.fit_id for f in history.forecasts_of(series) if f.fit_id is not None}
     latest = history.latest_fits.get(series)
     if latest is not None:
@@ -384,6 +397,7 @@ KIND_CHART: dict[FindingKind, str] = {
 
 
 __all__ = [
+    "FORECAST_LOOKBACK",
     "KIND_CHART",
     "ModelHistory",
     "actuals_data",
