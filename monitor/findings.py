@@ -103,8 +103,13 @@ def _finite(value: float) -> bool:
     return not math.isnan(value)
 
 
-def _bh_reject(p_values: NDArray[np.float64], rate: float) -> NDArray[np.bool_]:
-    return benjamini_hochberg(p_values, rate).reject
+def _bh_reject(p_values: NDArray[np.float64], thresholds: DecisionThresholds) -> NDArray[np.bool_]:
+    """Each test at level ``significance``, and the family controlled by Benjamini–Hochberg at
+    ``fdr``: a series is flagged only when both reject. (BH alone would flag a lone series at
+    p <= fdr, looser than the configured test level.)"""
+    with np.errstate(invalid="ignore"):
+        significant = p_values < thresholds.significance
+    return benjamini_hochberg(p_values, thresholds.fdr).reject & significant
 
 
 def _series_label(series: str | None) -> str:
@@ -126,7 +131,7 @@ def coverage_conditions(
     """
     scored = np.asarray(audit.scored)
     p = np.where(scored >= thresholds.min_scored, audit.kupiec_p_value, np.nan)
-    reject = _bh_reject(p, thresholds.fdr)
+    reject = _bh_reject(p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not _finite(float(p[i])):
@@ -158,7 +163,7 @@ def clustered_miss_conditions(
     """``clustered_misses``: Christoffersen's (1998) independence test rejects after BH."""
     scored = np.asarray(audit.scored)
     p = np.where(scored >= thresholds.min_scored, audit.independence_p_value, np.nan)
-    reject = _bh_reject(p, thresholds.fdr)
+    reject = _bh_reject(p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not _finite(float(p[i])):
@@ -197,7 +202,7 @@ def slope_shift_conditions(
     stat = np.asarray(statistic, dtype=float).reshape(len(series), len(slopes))
     p = np.minimum(1.0, np.asarray(p_value, dtype=float).reshape(len(series), len(slopes))
                    * max(1, looks))
-    reject = _bh_reject(p.ravel(), thresholds.fdr).reshape(p.shape)
+    reject = _bh_reject(p.ravel(), thresholds).reshape(p.shape)
     out: list[Condition] = []
     for i, name in enumerate(series):
         tested = ~np.isnan(p[i])
@@ -396,7 +401,7 @@ def heteroscedasticity_conditions(
     """``heteroscedasticity``: Breusch–Pagan (Koenker) rejects after BH."""
     stat = np.asarray(statistic, dtype=float)
     p = np.asarray(p_value, dtype=float)
-    reject = _bh_reject(p, thresholds.fdr)
+    reject = _bh_reject(p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if math.isnan(p[i]):

@@ -129,3 +129,13 @@ def test_stale_feed_on_the_business_clock() -> None:
     stale = stale_feed_condition("f", latest, "2025-03-02", latest + timedelta(days=11), week)
     assert fresh is not None and not fresh.holds
     assert stale is not None and stale.holds and stale.key.series is None
+
+
+def test_a_lone_series_is_tested_at_the_significance_not_the_fdr() -> None:
+    # One series, p = 0.07: BH at rate 0.10 alone would reject (m = 1), but the test's level
+    # is significance = 0.05 (DESIGN.md section 7), so no finding holds.
+    lone = slope_shift_conditions("m", ["a"], ["x"], [[1.9]], [[0.07]], Thresholds(), [None])
+    assert [c.holds for c in lone] == [False]
+    strict = slope_shift_conditions("m", ["a"], ["x"], [[1.9]], [[0.07]],
+                                    Thresholds(significance=0.10), [None])
+    assert [c.holds for c in strict] == [True]
