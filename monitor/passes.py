@@ -263,10 +263,13 @@ def _run(
         _stage(state, "score", lambda: _score_all(state))
         state.check_stop("refit")
         _stage(state, "refit_check_forecast", lambda: _analyse_all(state))
-        new_mark = store.last_observation_id()
+        analysed_mark = store.last_observation_id()
         _stage(state, "feeds", lambda: _feed_conditions(state, files))
         state.check_stop("findings")
         raised, cleared, notify = _stage(state, "findings", lambda: _record_findings(state))
+        # The mark moves only once the findings of what was analysed are recorded: a pass
+        # stopped before that leaves the series to be analysed again by the next one.
+        new_mark = analysed_mark
     except _Stopped as stop_at:
         stopped = stop_at.stage
         raised, cleared, notify = (), (), ()
@@ -285,11 +288,6 @@ def _run(
         timings=state.timings,
         stopped_early=stopped,
     )
-    if notifier is not None and stopped is None:
-        try:
-            _stage(state, "notify", lambda: notifier(store, config, report, now=real_clock()))
-        except Exception as exc:  # reports and mail never undo a pass's results
-            state.skipped.append(f"notify: {type(exc).__name__}: {exc}")
     state.timings["total"] = time.perf_counter() - started
     counts = {
         "observation_mark": new_mark,
@@ -305,6 +303,16 @@ def _run(
         "stopped_early": stopped,
     }
     store.finish_pass(record.id, finished_at=real_clock(), counts=counts)
+    # Step 7 after the pass is recorded as finished, so its pages show it so; a problem there is
+    # added to the pass's record and never undoes its results.
+    if notifier is not None and stopped is None:
+        try:
+            _stage(state, "notify", lambda: notifier(store, config, report, now=real_clock()))
+        except Exception as exc:
+            state.skipped.append(f"notify: {type(exc).__name__}: {exc}")
+        counts["skipped"] = list(state.skipped)
+        counts["timings"] = {k: round(v, 4) for k, v in state.timings.items()}
+        store.finish_pass(record.id, finished_at=real_clock(), counts=counts)
     return PassReport(
         **{**report.__dict__, "skipped": tuple(state.skipped), "timings": dict(state.timings)}
     )

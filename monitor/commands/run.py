@@ -2,9 +2,9 @@
 
 The scan job runs a pass when complete files wait in an inbox, or when no pass has run for a
 day on the real clock (so that a feed gone quiet is noticed: ``stale_feed`` needs a pass to be
-raised), and tries the outbox's unsent mail each time. The digest job builds and sends the
-digest on its cron schedule. Schedules, time zones, missed runs and signals: see
-``monitor.daemon`` and the README.
+raised); between passes it delivers the outbox's messages whose retry time has come. The
+digest job builds and sends the digest on its cron schedule. Schedules, time zones, missed
+runs and signals: see ``monitor.daemon`` and the README.
 """
 
 from __future__ import annotations
@@ -18,6 +18,7 @@ from monitor.commands._common import add_config_argument, config_from
 from monitor.commands.one_pass import pass_notifier
 from monitor.config import PlumblineConfig
 from monitor.daemon import JobFunction, run_daemon
+from monitor.notify.mail import deliver_outbox
 from monitor.passes import files_waiting, run_pass
 from monitor.store import Store
 
@@ -42,7 +43,7 @@ def scan_job(config: PlumblineConfig) -> JobFunction:
             latest = store.latest_pass()
             idle = latest is None or now - latest.started_at >= IDLE_PASS_AFTER
             if not idle and not files_waiting(store, config):
-                return None
+                return _retry_outbox(store, config, now)
             report = run_pass(config, stop_requested=stop, notifier=pass_notifier(),
                               store=store)
         return {
@@ -53,6 +54,18 @@ def scan_job(config: PlumblineConfig) -> JobFunction:
         }
 
     return scan
+
+
+def _retry_outbox(
+    store: Store, config: PlumblineConfig, now: datetime
+) -> Mapping[str, object] | None:
+    """Between passes, deliver the outbox's messages whose retry time has come (no connection
+    is made when none is due)."""
+    email = config.notify.email
+    if email is None or not store.due_messages(now, limit=1):
+        return None
+    report = deliver_outbox(store, email, now=now)
+    return {"outbox_sent": len(report.sent), "outbox_failed": len(report.failed)}
 
 
 def digest_job(config: PlumblineConfig) -> JobFunction:
