@@ -301,13 +301,27 @@ def _run(
         "skipped": list(state.skipped),
         "timings": {k: round(v, 4) for k, v in state.timings.items()},
         "stopped_early": stopped,
+        "notify": list(report.findings_to_notify),
+        "notified": notifier is None,
     }
     store.finish_pass(record.id, finished_at=real_clock(), counts=counts)
-    # Step 7 after the pass is recorded as finished, so its pages show it so; a problem there is
-    # added to the pass's record and never undoes its results.
+    # Step 7 after the pass is recorded as finished, so its pages show it so. Until it has run,
+    # the pass's record says ``notified: false``; a later pass finishes the job for any pass a
+    # crash interrupted there (the outbox's dedupe keys make a second try queue nothing twice).
+    # A problem there is added to the pass's record and never undoes its results.
     if notifier is not None and stopped is None:
+        def notify_all() -> None:
+            for earlier in _passes_not_notified(store, record.id):
+                notifier(store, config, earlier, now=real_clock())
+                done = store.get_pass(earlier.pass_id or 0)
+                if done is not None:
+                    store.finish_pass(done.id, finished_at=done.finished_at or real_clock(),
+                                      counts={**done.counts, "notified": True})
+            notifier(store, config, report, now=real_clock())
+
         try:
-            _stage(state, "notify", lambda: notifier(store, config, report, now=real_clock()))
+            _stage(state, "notify", notify_all)
+            counts["notified"] = True
         except Exception as exc:
             state.skipped.append(f"notify: {type(exc).__name__}: {exc}")
         counts["skipped"] = list(state.skipped)
@@ -316,6 +330,25 @@ def _run(
     return PassReport(
         **{**report.__dict__, "skipped": tuple(state.skipped), "timings": dict(state.timings)}
     )
+
+
+# How far back a pass looks for earlier passes whose notify step a crash cut short.
+NOTIFY_LOOKBACK_PASSES = 20
+
+
+def _passes_not_notified(store: Store, current: int) -> list[PassReport]:
+    """Earlier finished passes whose pages and messages were never done (oldest first)."""
+    due = []
+    for earlier in store.list_passes(NOTIFY_LOOKBACK_PASSES):
+        if earlier.id == current or earlier.status != "finished":
+            continue
+        if earlier.counts.get("notified", True) or earlier.counts.get("stopped_early"):
+            continue
+        due.append(PassReport(
+            pass_id=earlier.id, as_of=earlier.as_of,
+            findings_to_notify=tuple(int(i) for i in earlier.counts.get("notify", [])),
+        ))
+    return sorted(due, key=lambda r: r.pass_id or 0)
 
 
 def _stage(state: _PassState, name: str, work: Callable[[], Any]) -> Any:
