@@ -106,7 +106,6 @@ class PassReport:
     as_of: datetime
     files: tuple[FileReport, ...] = ()
     outcomes_scored: int = 0
-    scored_series: dict[str, set[str | None]] = field(default_factory=dict)
     changed: dict[str, set[str | None]] = field(default_factory=dict)
     series_analysed: int = 0
     fits_recorded: int = 0
@@ -183,12 +182,12 @@ class _PassState:
     as_of: datetime
     pass_id: int
     mark: int
+    finished_id: int  # the latest finished pass before this one (0: none)
     stop: threading.Event | None
     skipped: list[str] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
     conditions: list[tuple[Condition, int]] = field(default_factory=list)  # (condition, clear)
     outcomes_scored: int = 0
-    scored_series: dict[str, set[str | None]] = field(default_factory=dict)
     changed: dict[str, set[str | None]] = field(default_factory=dict)
     series_analysed: int = 0
     fits_recorded: int = 0
@@ -239,7 +238,13 @@ def _run(
             f"the business clock {as_of.isoformat()} is earlier than the latest pass's "
             f"({latest.as_of.isoformat()}); passes must move forward in time"
         )
-    finished = store.latest_pass(finished_only=True)
+    # The last pass that did all its work: a pass stopped early or killed left its series to
+    # the next one (its mark did not move), so its fits and forecasts count as this pass's.
+    finished = next(
+        (p for p in store.list_passes(NOTIFY_LOOKBACK_PASSES)
+         if p.status == "finished" and not p.counts.get("stopped_early")),
+        None,
+    )
     mark = int(finished.counts.get("observation_mark", 0)) if finished else 0
     started = time.perf_counter()
     # Idempotence: same clock, no complete file waiting, nothing left over -> nothing to do.
@@ -248,12 +253,14 @@ def _run(
         and as_of == latest.as_of
         and latest.status == "finished"
         and not latest.counts.get("stopped_early")
+        and latest.counts.get("notified", True)
         and not files_waiting(store, config, real_clock)
     ):
         return PassReport(None, as_of, timings={"total": time.perf_counter() - started})
 
     record = store.record_pass(as_of=as_of, started_at=real_clock())
-    state = _PassState(store, config, as_of, record.id, mark, stop)
+    state = _PassState(store, config, as_of, record.id, mark, finished.id if finished else 0,
+                       stop)
     files: list[FileReport] = []
     stopped: str | None = None
     new_mark = mark
@@ -426,7 +433,6 @@ def _score_all(state: _PassState) -> None:
             ]
             if outcomes:
                 state.outcomes_scored += state.store.record_outcomes(state.pass_id, outcomes)
-                state.scored_series[name] = {a.series for a in awaiting}
         except Exception as exc:
             state.skipped.append(f"model {name}: scoring failed: {type(exc).__name__}: {exc}")
 
@@ -569,7 +575,9 @@ def _analyse_model(
     out = analyse_batch(batch)
     state.series_analysed += len(series)
 
-    previous = state.store.latest_fits(name, version=version)
+    # What the last *finished* pass knew: a pass a crash cut short may have fitted and forecast
+    # already, and its work must count as this pass's, not as the past.
+    previous = state.store.latest_fits(name, version=version, up_to_pass=state.finished_id)
     fit_rows = [
         _fit_row(name, version, model, out, i, s, keys[i], labels, len(series))
         for i, s in enumerate(series)
@@ -625,8 +633,39 @@ def _analyse_model(
     if forecasts:
         state.forecasts_issued += state.store.record_forecasts(state.pass_id, forecasts).inserted
 
+    answered = [bool(rows) for rows in plan_rows]
+    _carry_interrupted_forecasts(state, name, series, out, answered, extrapolated_first)
     _model_conditions(state, name, model, out, series, keys, counts, start, end, labels,
-                      previous, plan_rows, extrapolated_first, worst_leverage, horizon)
+                      previous, answered, extrapolated_first, worst_leverage, horizon)
+
+
+def _carry_interrupted_forecasts(
+    state: _PassState, name: str, series: list[str | None], out: BatchOutput,
+    answered: list[bool], extrapolated_first: list[str | None],
+) -> None:
+    """Forecasts a crashed pass issued since the last finished one are judged for the
+    extrapolation finding as if this pass had issued them (it will not issue them again)."""
+    earlier = [f for f in state.store.forecasts_issued_after(name, state.finished_id)
+               if f.pass_id != state.pass_id]
+    if not earlier:
+        return
+    position = {s: i for i, s in enumerate(series)}
+    fit = out.fit
+    max_leverage = np.max(np.where(out.window_mask, np.nan_to_num(fit.leverage), -np.inf), axis=1)
+    for forecast in earlier:
+        i = position.get(forecast.series)
+        if i is None or not fit.estimable[i]:
+            continue
+        answered[i] = True
+        x0 = np.array([forecast.inputs.get(p, np.nan) for p in fit.terms[int(fit.intercept):]])
+        low, high = fit.x_min[i], fit.x_max[i]
+        span = np.where(high > low, high - low, np.inf)
+        excess = float(np.max(np.maximum(np.maximum(low - x0, x0 - high), 0.0) / span,
+                              initial=0.0))
+        ratio = (forecast.leverage or 0.0) / max_leverage[i] if max_leverage[i] > 0 else 0.0
+        far = excess > EXTRAPOLATION_RANGE_SHARE or ratio > EXTRAPOLATION_LEVERAGE_RATIO
+        if far and extrapolated_first[i] is None:
+            extrapolated_first[i] = forecast.target_period
 
 
 def _baseline_row(
@@ -744,7 +783,7 @@ def _fit_row(
 def _model_conditions(
     state: _PassState, name: str, model: Model, out: BatchOutput, series: list[str | None],
     keys: np.ndarray, counts: np.ndarray, start: np.ndarray, end: np.ndarray,
-    labels: dict[int, str], previous: dict[str | None, Any], plan_rows: list[list[int]],
+    labels: dict[int, str], previous: dict[str | None, Any], answered: list[bool],
     extrapolated_first: list[str | None], worst_leverage: np.ndarray, horizon: np.ndarray,
 ) -> None:
     t = model.thresholds
@@ -819,7 +858,7 @@ def _model_conditions(
     state.add(autocorrelation_conditions(
         name, series, nan_if(ok_fresh, out.durbin_watson.statistic, np.nan), window_first,
     ), clear)
-    has_plans = np.array([bool(rows) for rows in plan_rows]) & ok
+    has_plans = np.array(answered, dtype=bool) & ok
     state.add(extrapolation_conditions(
         name, series, [first is not None for first in extrapolated_first], has_plans,
         extrapolated_first, worst_leverage,
@@ -861,7 +900,8 @@ def _audit_only_model(state: _PassState, name: str, model: Model, version: int) 
 def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
     """Coverage and clustered misses over each series' latest ``recent`` scored forecasts,
     for the series that had forecasts scored in this pass."""
-    fresh = state.scored_series.get(name)
+    # Series scored by this pass, or by a pass a crash cut short since the last finished one.
+    fresh = state.store.series_scored_after(name, state.finished_id)
     if not fresh:
         return
     scored = state.store.scored_forecasts(name, last=model.recent)
@@ -889,13 +929,27 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
 
 
 def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
+    touched_feeds: set[str] = set()
     rejections = [
         RejectedInput(r.feed, r.name, r.whole_file_rejected, r.duplicate, r.rows_rejected,
                       _rejection_reason(r))
         for r in files if r.raises_finding
     ]
+    # Files a crashed pass took since the last finished one count as taken now.
+    taken_now = {r.file_id for r in files}
+    for record in state.store.list_files(after_pass=state.finished_id):
+        if record.id in taken_now or record.pass_id == state.pass_id:
+            continue
+        bad = record.outcome.value in ("rejected", "duplicate") or record.rows_rejected > 0
+        if bad:
+            reason = (record.errors_text.strip().splitlines() or [record.note])[0]
+            rejections.append(RejectedInput(
+                record.feed, record.name, record.outcome.value == "rejected",
+                record.outcome.value == "duplicate", record.rows_rejected, reason))
+        taken_now.add(record.id)
+        touched_feeds.add(record.feed)
     clear_default = 2
-    touched = sorted({r.feed for r in files})
+    touched = sorted({r.feed for r in files} | touched_feeds)
     state.add(rejected_input_conditions(touched, rejections), clear_default)
     for name, feed in state.config.feeds.items():
         if feed.period_type == "integer" or not isinstance(feed.cadence, timedelta):

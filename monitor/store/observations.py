@@ -136,13 +136,19 @@ class FilesMixin(StoreBase):
         return self._require(self.get_file(file_id), "file", file_id)
 
     def list_files(
-        self, *, feed: str | None = None, pass_id: int | None = None, limit: int | None = None
+        self,
+        *,
+        feed: str | None = None,
+        pass_id: int | None = None,
+        limit: int | None = None,
+        after_pass: int | None = None,
     ) -> list[FileRecord]:
-        """Files taken from inboxes, oldest first, optionally of one feed or one pass."""
+        """Files taken from inboxes, oldest first, optionally of one feed or one pass, or of the
+        passes with an id above ``after_pass``."""
         rows = self._dicts(
             "SELECT * FROM files WHERE (?1 IS NULL OR feed = ?1) AND (?2 IS NULL OR pass_id = ?2) "
-            "ORDER BY id LIMIT ?3",
-            (feed, pass_id, -1 if limit is None else limit),
+            "AND (?4 IS NULL OR pass_id > ?4) ORDER BY id LIMIT ?3",
+            (feed, pass_id, -1 if limit is None else limit, after_pass),
         )
         return [_file_record(row) for row in rows]
 

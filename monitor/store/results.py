@@ -163,12 +163,16 @@ class ResultsMixin(StoreBase):
         row = self._dict("SELECT * FROM fits WHERE id = ?", (fit_id,))
         return None if row is None else _fit_record(row)
 
-    def latest_fits(self, model: str, *, version: int | None = None) -> dict[str | None, FitRecord]:
-        """The latest fit of each series of a model (of one version if given)."""
+    def latest_fits(
+        self, model: str, *, version: int | None = None, up_to_pass: int | None = None
+    ) -> dict[str | None, FitRecord]:
+        """The latest fit of each series of a model (of one version if given; made in a pass
+        with id at most ``up_to_pass`` if given)."""
         rows = self._dicts(
             "SELECT * FROM fits WHERE id IN (SELECT max(id) FROM fits WHERE model = ?1 "
-            "AND (?2 IS NULL OR version = ?2) GROUP BY series_key) ORDER BY series_key",
-            (model, version),
+            "AND (?2 IS NULL OR version = ?2) AND (?3 IS NULL OR pass_id <= ?3) "
+            "GROUP BY series_key) ORDER BY series_key",
+            (model, version, up_to_pass),
         )
         return {_series(row["series_key"]): _fit_record(row) for row in rows}
 
@@ -226,6 +230,23 @@ class ResultsMixin(StoreBase):
             (model, pass_id),
         )
         return [_forecast_record(row) for row in rows]
+
+    def forecasts_issued_after(self, model: str, pass_id: int) -> list[ForecastRecord]:
+        """Forecasts of ``model`` issued by passes with an id above ``pass_id``."""
+        rows = self._dicts(
+            "SELECT * FROM forecasts WHERE model = ? AND pass_id > ? ORDER BY id",
+            (model, pass_id),
+        )
+        return [_forecast_record(row) for row in rows]
+
+    def series_scored_after(self, model: str, pass_id: int) -> set[str | None]:
+        """Series of ``model`` with an outcome scored by a pass with an id above ``pass_id``."""
+        cursor = self._conn.execute(
+            "SELECT DISTINCT f.series_key FROM outcomes AS o JOIN forecasts AS f "
+            "ON f.id = o.forecast_id WHERE f.model = ? AND o.pass_id > ?",
+            (model, pass_id),
+        )
+        return {_series(row[0]) for row in cursor}
 
     def forecasts_awaiting_outcome(self, model: str, response: str) -> list[AwaitingOutcome]:
         """Unscored forecasts of ``model`` whose target now has an actual ``response`` value.
