@@ -10,6 +10,8 @@ runs and signals: see ``monitor.daemon`` and the README.
 from __future__ import annotations
 
 import argparse
+import json
+import sys
 import threading
 from collections.abc import Mapping
 from datetime import UTC, datetime, timedelta
@@ -18,6 +20,7 @@ from monitor.commands._common import add_config_argument, config_from
 from monitor.commands.one_pass import pass_notifier
 from monitor.config import PlumblineConfig
 from monitor.daemon import JobFunction, run_daemon
+from monitor.errors import PlumblineError
 from monitor.notify.mail import deliver_outbox
 from monitor.passes import files_waiting, run_pass
 from monitor.store import Store
@@ -80,6 +83,20 @@ def digest_job(config: PlumblineConfig) -> JobFunction:
 
 def handle(args: argparse.Namespace) -> int:
     config = config_from(args)
+    try:
+        return _run(args, config)
+    except PlumblineError as exc:
+        if args.log_format != "json":
+            raise
+        # stderr is read by a log collector: the refusal is an event line too
+        moment = datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+        print(json.dumps({"time": moment, "level": "error", "event": "refused",
+                          "message": str(exc), "fields": {"exit_code": exc.exit_code}}),
+              file=sys.stderr)
+        return exc.exit_code
+
+
+def _run(args: argparse.Namespace, config: PlumblineConfig) -> int:
     return run_daemon(
         database=config.database,
         timezone=config.zone,
