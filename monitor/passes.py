@@ -543,7 +543,8 @@ def _analyse_model(
     plan_index: dict[str | None, list[int]] = {}
     for row, s in enumerate(plans.series):
         plan_index.setdefault(s, []).append(row)
-    m = max((len(v) for s, v in plan_index.items() if s in set(series)), default=0)
+    wanted = set(series)
+    m = max((len(v) for s, v in plan_index.items() if s in wanted), default=0)
     k = len(predictors)
     plan_x = np.zeros((len(series), m, k))
     plan_mask = np.zeros((len(series), m), dtype=bool)

@@ -495,8 +495,11 @@ class FilesMixin(StoreBase):
     def series_with_rows_after(self, feed: str, observation_id: int) -> list[str | None]:
         """Series of a feed with any row (actual or plan) stored after ``observation_id``."""
         cursor = self._conn.execute(
-            "SELECT DISTINCT s.key FROM observations AS o JOIN series AS s ON s.id = o.series_id "
-            "WHERE o.id > ? AND s.feed = ? ORDER BY s.key",
+            # CROSS JOIN fixes SQLite's join order: walk the rows after the mark (by the
+            # primary key) and look each one's series up, instead of scanning the rows after
+            # the mark once per series of the feed.
+            "SELECT DISTINCT s.key FROM observations AS o CROSS JOIN series AS s "
+            "ON s.id = o.series_id WHERE o.id > ? AND s.feed = ? ORDER BY s.key",
             (observation_id, feed),
         )
         return [_series(row[0]) for row in cursor]
