@@ -63,6 +63,7 @@ from monitor.notify.words import (
     number,
     percent,
     plural,
+    severity_count,
 )
 from monitor.store import Store
 
@@ -144,7 +145,7 @@ def attention_sentence(findings: list[FindingView], *, model_count: int) -> str:
             f"Nothing needs attention: no open findings across {plural(model_count, 'model')}."
         )
     counts = severity_counts(findings)
-    parts = [plural(n, word) for word, n in counts.items() if n]
+    parts = [severity_count(n, word) for word, n in counts.items() if n]
     top = findings[0]
     verb = "needs" if len(findings) == 1 else "need"
     return (
@@ -379,7 +380,7 @@ def _model_sentence(
     if not findings:
         return f"{opening}, no open findings. {coverage}"
     counts = severity_counts(findings)
-    parts = join_words([plural(n, word) for word, n in counts.items() if n])
+    parts = join_words([severity_count(n, word) for word, n in counts.items() if n])
     top = findings[0]
     where = "" if top.series is None else f" in series {top.series}"
     return (

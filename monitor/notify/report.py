@@ -46,7 +46,14 @@ from monitor.notify.views import (
     ordered_findings,
     severity_counts,
 )
-from monitor.notify.words import CAUTION, join_words, local_date, local_time, plural
+from monitor.notify.words import (
+    CAUTION,
+    join_words,
+    local_date,
+    local_time,
+    plural,
+    severity_count,
+)
 from monitor.store import FindingRecord, PassRecord, Store, StoreError
 
 FORECASTS_CAP = 25  # forecasts listed per model on a pass page
@@ -84,7 +91,7 @@ def _sentence(record: PassRecord, new: list[FindingView], cleared: list[FindingV
     parts = []
     if new:
         counts = severity_counts(new)
-        detail = join_words([plural(n, w) for w, n in counts.items() if n])
+        detail = join_words([severity_count(n, w) for w, n in counts.items() if n])
         top = new[0]
         parts.append(f"raised {plural(len(new), 'finding')} ({detail}; most urgent: "
                      f"{top.kind_words} in {top.scope})")  # fmt: skip

@@ -92,6 +92,11 @@ def plural(count: int, word: str, many: str | None = None) -> str:
     return f"{count} {word if count == 1 else (many or word + 's')}"
 
 
+def severity_count(count: int, severity: str) -> str:
+    """"4 critical", "3 warnings", "1 notice": "critical" is an adjective and takes no s."""
+    return plural(count, severity, severity if severity == "critical" else None)
+
+
 def join_words(items: Sequence[str]) -> str:
     """"a", "a and b", "a, b and c"."""
     if not items:
