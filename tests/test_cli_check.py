@@ -133,7 +133,9 @@ def test_newest_complete_file_by_marker_or_settling(tmp_path: Path) -> None:
     header = b"week_ending,depot,order_lines,pick_hours\n"
     drop(feed.inbox, "a.csv", header, 7200)
     drop(feed.inbox, "b.csv", header, 600)
-    drop(feed.inbox, "c.csv", header, 1)  # newer than settle (60s) allows
+    # c.csv is being written now: fresh, and not renamed into place (setting an old mtime
+    # would make its change time later than its write, which ingest reads as a rename)
+    (feed.inbox / "c.csv").write_bytes(header)
     needed = {"week_ending", "depot", "order_lines", "pick_hours"}
     report = check.inspect_inbox(feed, needed, now=time.time())
     assert [p.name for p in report.waiting] == ["a.csv", "b.csv", "c.csv"]

@@ -5,10 +5,10 @@
 The config is loaded as a pass would load it (``monitor.config.load_config``). Then, for each
 feed, the inbox is looked at: does it exist, how many data files wait in it, and does the header
 of the newest complete file hold every column the feed's models need (with the nearest name for a
-missing one). "Complete" follows DESIGN.md section 6: a file with ``NAME.ready`` beside it, or one
-unchanged for the feed's ``settle`` time; names starting with ``.`` or ending in ``.part``,
-``.tmp`` or ``.ready`` are never data. Only the header is read: the first line of a CSV, the
-schema in a Parquet file's footer.
+missing one). "Complete" is the ingest's own reading (DESIGN.md section 6): a file with
+``NAME.ready`` beside it, one renamed into place, or one unchanged for the feed's ``settle``
+time; names starting with ``.`` or ending in ``.part``, ``.tmp`` or ``.ready`` are never data.
+Only the header is read: the first line of a CSV, the schema in a Parquet file's footer.
 
 Nothing is written: no database, folder, report or marker is made, and no file is moved.
 
@@ -39,6 +39,7 @@ from monitor.config import (
     parse_schedule,
 )
 from monitor.errors import ConfigError
+from monitor.ingest.folders import survey_inbox
 from monitor.text import did_you_mean
 
 IGNORED_SUFFIXES = (".part", ".tmp", ".ready")
@@ -213,18 +214,16 @@ def inspect_inbox(feed: Feed, needed: set[str], *, now: float) -> InboxReport:
     if not feed.inbox.is_dir():
         return InboxReport(exists=False)
     report = InboxReport(exists=True)
-    entries = {entry.name: entry for entry in os.scandir(feed.inbox)}
-    stamped: list[tuple[float, str, Path]] = []
-    for entry_name, entry in sorted(entries.items()):
-        if not is_data_name(entry_name) or not entry.is_file():
-            continue
-        path = Path(entry.path)
-        report.waiting.append(path)
-        mtime = entry.stat().st_mtime
-        marked = f"{entry_name}.ready" in entries
-        if marked or now - mtime >= feed.settle.total_seconds():
-            report.complete.append(path)
-            stamped.append((mtime, entry_name, path))
+    # The ingest's own reading of the inbox (marker, rename, settle), so that check and a pass
+    # agree on which files are complete; it reads and moves nothing.
+    survey = survey_inbox(feed.inbox, settle_seconds=feed.settle.total_seconds(),
+                          real_clock=lambda: now, detect_rename=True)
+    report.waiting.extend(item.path for item in (*survey.complete, *survey.waiting))
+    report.waiting.sort()
+    stamped: list[tuple[int, str, Path]] = []
+    for item in survey.complete:
+        report.complete.append(item.path)
+        stamped.append((item.mtime_ns, item.name, item.path))
     if not stamped:
         return report
     report.newest = max(stamped)[2]
