@@ -42,7 +42,6 @@ from monitor.errors import ConfigError
 from monitor.ingest.folders import survey_inbox
 from monitor.text import did_you_mean
 
-IGNORED_SUFFIXES = (".part", ".tmp", ".ready")
 HEADER_LIMIT = 1 << 20  # a header line longer than 1 MiB is not a header
 
 
@@ -236,11 +235,6 @@ def inspect_inbox(feed: Feed, needed: set[str], *, now: float) -> InboxReport:
     return report
 
 
-def is_data_name(name: str) -> bool:
-    """False for the names DESIGN.md section 6 says are never read as data."""
-    return not name.startswith(".") and not name.endswith(IGNORED_SUFFIXES)
-
-
 def read_header(path: Path, file_format: str) -> tuple[str, ...]:
     """The column names of a data file, reading only its header. Raises ValueError."""
     if file_format == "parquet":
@@ -275,5 +269,5 @@ def _count(number: int, noun: str) -> str:
     return f"{number} {noun}" + ("" if number == 1 else "s")
 
 
-__all__ = ["CheckReport", "InboxReport", "check_config", "inspect_inbox", "is_data_name",
+__all__ = ["CheckReport", "InboxReport", "check_config", "inspect_inbox",
            "read_header", "register", "run"]  # fmt: skip
