@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Literal, Protocol
 
@@ -521,11 +521,6 @@ def rejected_input_conditions(
     return out
 
 
-def with_message(condition: Condition, message: str) -> Condition:
-    """A copy of ``condition`` with another message (for callers that add context)."""
-    return replace(condition, message=message)
-
-
 __all__ = [
     "DURBIN_WATSON_HIGH",
     "DURBIN_WATSON_LOW",
@@ -547,5 +542,4 @@ __all__ = [
     "stale_feed_condition",
     "structural_break_conditions",
     "weak_fit_conditions",
-    "with_message",
 ]

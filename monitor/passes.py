@@ -133,7 +133,7 @@ class PassNotifier(Protocol):
 # --------------------------------------------------------------------------- periods and clocks
 
 
-def period_key_of(feed: Feed, value: date | int, zone: Any = None) -> int:
+def period_key_of(feed: Feed, value: date | int) -> int:
     """The store's sort key for a declared period (a date or an integer)."""
     if feed.period_type == "integer":
         return int(value)  # type: ignore[arg-type]
@@ -875,7 +875,6 @@ def _model_conditions(
 def _audit_only_model(state: _PassState, name: str, model: Model, version: int) -> None:
     """An ``interval:`` model: record the intervals made elsewhere as forecasts to score."""
     assert model.interval is not None
-    feed = state.config.feeds[model.feed]
     cols = (model.interval.point, model.interval.lower, model.interval.upper)
     plans = state.store.plan_rows_awaiting_forecast(model.feed, name, cols)
     rows: list[ForecastRow] = []
@@ -893,7 +892,6 @@ def _audit_only_model(state: _PassState, name: str, model: Model, version: int) 
             point=point, lower=lower, upper=upper, level=model.interval.level,
             version=version, observation_id=int(plans.observation_id[r]),
         ))
-    del feed
     if rows:
         state.forecasts_issued += state.store.record_forecasts(state.pass_id, rows).inserted
 
