@@ -36,7 +36,7 @@ REPO_ROOT = Path(__file__).resolve().parent.parent
 README = (REPO_ROOT / "README.md").read_text(encoding="utf-8")
 DEVELOPERS = (REPO_ROOT / "DEVELOPERS.md").read_text(encoding="utf-8")
 EXAMPLE = REPO_ROOT / "config" / "example_pick_hours.csv"
-DIGEST_PNG = REPO_ROOT / "docs" / "digest.png"
+DIGEST_PNG = REPO_ROOT / "demo_feed" / "digest.png"
 
 HEADING = re.compile(r"^(#{1,6}) (.*)$", re.M)
 FENCE = re.compile(r"^```(\w*)\n(.*?)^```$", re.M | re.S)
@@ -317,10 +317,10 @@ def test_false_alarm_table_is_what_the_simulation_gives() -> None:
 
 
 def test_digest_picture_exists_is_embedded_and_is_not_blank() -> None:
-    match = re.search(r"!\[([^\]]+)\]\(docs/digest\.png\)", README)
-    assert match, "the README does not embed docs/digest.png"
+    match = re.search(r"!\[([^\]]+)\]\(demo_feed/digest\.png\)", README)
+    assert match, "the README does not embed demo_feed/digest.png"
     assert len(match.group(1)) > 80, "the picture's alt text does not say what it shows"
-    assert DIGEST_PNG.exists(), "run scripts/screenshot_digest.py"
+    assert DIGEST_PNG.exists(), "run tests/tools/screenshot_digest.py"
     with Image.open(DIGEST_PNG) as image:
         assert image.format == "PNG"
         assert image.width >= 800 and image.height >= 800

@@ -149,7 +149,7 @@ def readme_text(scenario: Scenario) -> str:
         "",
         _wrap(
             f"The seeded generator in `monitor/demo/` (numpy's default generator, seed {SEED}) "
-            "writes every file here, this README included. `python scripts/make_demo_feed.py` "
+            "writes every file here, this README included. `python tests/tools/make_demo_feed.py` "
             "rewrites the folder; `tests/test_demo_scenario.py` checks that the generator "
             "reproduces it byte for byte, with no file missing or extra. `plumbline demo` "
             "writes the same files into a workspace and replays them week by week."

@@ -12,7 +12,7 @@ Published (copied from the literature; the tests check them against independent 
 - ``ANDREWS_2003_SUP_WALD``: sup-F critical values, Wald form p·F, 15 % trimming, 1–3
   restrictions, from the corrigendum's Table 1 (Andrews 2003). Used only as a check.
 
-Simulated (by ``scripts/simulate_supf.py``; the table in ``monitor/stats/tables/
+Simulated (by ``tests/simulations/simulate_supf.py``; the table in ``monitor/stats/tables/
 supf_quantiles.json`` records seed, replications, grid and Monte Carlo standard errors):
 
 - the quantiles of the null limit of p·sup-F with 15 % trimming for p = 1 … 10 restrictions,

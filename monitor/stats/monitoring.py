@@ -40,10 +40,11 @@ is not detected; the baseline-vs-recent slope test of ``change.py`` covers it, a
 fluctuation (recursive-estimates) monitor, whose boundary depends on the design.
 
 Constants (simulated, none published): ``tables/monitoring_boundaries.json``, written by
-``scripts/simulate_monitoring.py`` (seed 20261201, 200,000 replications per cell; metadata from
-``boundary_table_description()``), holds a^2 for alpha in {0.005, 0.01, 0.025, 0.05, 0.10, 0.20},
-nu in 4..30 and 35..500 (finite sample: normal errors, sigma_hat^2 from chi2_nu / nu, checked at
-every integer j) and the nu -> infinity limit (Brownian motion, continuous time), for H = r * nu,
+``tests/simulations/simulate_monitoring.py`` (seed 20261201, 200,000 replications per cell;
+metadata from ``boundary_table_description()``), holds a^2 for alpha in
+{0.005, 0.01, 0.025, 0.05, 0.10, 0.20}, nu in 4..30 and 35..500 (finite sample: normal errors,
+sigma_hat^2 from chi2_nu / nu, checked at every integer j)
+and the nu -> infinity limit (Brownian motion, continuous time), for H = r * nu,
 r from 0.05 to 12. Between grid points a^2 is interpolated linearly in ln(alpha), ln(H / nu) and
 1 / sqrt(nu). A horizon shorter than the table's shortest for its nu takes that shortest (false
 alarms below alpha); one longer than 12 nu, or alpha outside [0.005, 0.20], is refused. The false-
@@ -226,8 +227,8 @@ def boundary_constant(alpha: float, residual_df: int, horizon: int) -> float:
     """The simulated constant a^2 for false-alarm chance ``alpha`` over ``horizon`` new periods.
 
     ``residual_df`` is nu = n - p of the baseline fit. Interpolated from the committed table (see
-    the module docstring: simulated by scripts/simulate_monitoring.py, none published) linearly in
-    ln(alpha), ln(H / nu) and 1 / sqrt(nu). Raises ValueError outside the table.
+    the module docstring: simulated by tests/simulations/simulate_monitoring.py, none published)
+    linearly in ln(alpha), ln(H / nu) and 1 / sqrt(nu). Raises ValueError outside the table.
     """
     _check_alpha(alpha)
     if horizon < 1:
@@ -293,7 +294,7 @@ def monitoring_boundary(alpha: float, residual_df: int, horizon: int) -> Monitor
         a_squared=a_squared,
         values=_boundary_values(a_squared, residual_df, np.arange(1, horizon + 1)),
         source=(
-            "simulated finite-sample constant, scripts/simulate_monitoring.py "
+            "simulated finite-sample constant, tests/simulations/simulate_monitoring.py "
             f"(seed {_table().metadata.get('seed')}, {_table().metadata.get('reps')} replications)"
         ),
     )

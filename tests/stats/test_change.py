@@ -313,11 +313,11 @@ def test_sup_f_p_values_monotone_and_near_nominal_at_published_values() -> None:
 
 
 def test_simulation_script_quick_run_agrees_with_committed_table(tmp_path: Path) -> None:
-    # A small seeded run of scripts/simulate_supf.py (2,000 draws, coarse grid) must land near
-    # the committed table: a broken script would not. The coarse grid biases quantiles down
-    # ~0.3 and 2,000 draws give a standard error ~0.25 at 5 %, hence the wide margin of 1.2.
+    # A small seeded run of tests/simulations/simulate_supf.py (2,000 draws, coarse grid) must
+    # land near the committed table: a broken script would not. The coarse grid biases quantiles
+    # down ~0.3 and 2,000 draws give a standard error ~0.25 at 5 %, hence the wide margin of 1.2.
     spec = importlib.util.spec_from_file_location(
-        "simulate_supf", REPO_ROOT / "scripts" / "simulate_supf.py"
+        "simulate_supf", REPO_ROOT / "tests" / "simulations" / "simulate_supf.py"
     )
     assert spec is not None and spec.loader is not None
     module: ModuleType = importlib.util.module_from_spec(spec)

@@ -30,7 +30,7 @@ REPO_ROOT = Path(__file__).resolve().parents[2]
 
 
 def _simulation_script() -> ModuleType:
-    path = REPO_ROOT / "scripts" / "simulate_monitoring.py"
+    path = REPO_ROOT / "tests" / "simulations" / "simulate_monitoring.py"
     spec = importlib.util.spec_from_file_location("simulate_monitoring", path)
     assert spec is not None and spec.loader is not None
     module = importlib.util.module_from_spec(spec)
@@ -85,7 +85,8 @@ def test_post_history_constants() -> None:
 
 
 def test_simulation_machinery_reproduces_infinite_horizon_results() -> None:
-    # The continuous-time machinery of scripts/simulate_monitoring.py, run over t in [1, 1e6],
+    # The continuous-time machinery of tests/simulations/simulate_monitoring.py, run over t in
+    # [1, 1e6],
     # against CHECK_VALUES.md item 5 (CSW 1996 form: 0.05078 at 7.78, 0.0500 at 7.815; post-history
     # form: exp(-a^2/2)). 20,000 paths, seed 11; tolerance 4 Monte Carlo standard errors plus 0.002
     # for crossings after t = 1e6 and the coarse (2 %) time steps.

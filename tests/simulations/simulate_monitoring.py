@@ -2,8 +2,8 @@
 
 Run once by hand (takes a few minutes on two cores; run it with ``nice``)::
 
-    nice python scripts/simulate_monitoring.py            # writes the table
-    nice python scripts/simulate_monitoring.py --check    # the self-check only, prints it
+    nice python tests/simulations/simulate_monitoring.py            # writes the table
+    nice python tests/simulations/simulate_monitoring.py --check    # the self-check only, prints it
 
 The monitored statistic (``monitor/stats/monitoring.py`` has the full account) is the CUSUM of the
 recursive residuals that arrive *after* the baseline, divided by the baseline's residual standard
@@ -66,7 +66,7 @@ LIMIT_STEP = 0.001
 CHUNK_ELEMENTS = 12_000_000
 
 TABLE_PATH = (
-    Path(__file__).resolve().parent.parent
+    Path(__file__).resolve().parents[2]
     / "monitor"
     / "stats"
     / "tables"
@@ -264,9 +264,9 @@ def build_table(reps: int, seed: int) -> dict[str, object]:
             "Q_j = (w_{n+1} + ... + w_{n+j}) / sigma_hat with boundary "
             "sqrt((nu + j) * (a^2 + ln(1 + j / nu))), nu = n - p, such that the chance of any "
             "crossing for j = 1..H is alpha under the null with normal errors. All values are "
-            "simulated (none is published); see scripts/simulate_monitoring.py."
+            "simulated (none is published); see tests/simulations/simulate_monitoring.py."
         ),
-        "generated_by": "scripts/simulate_monitoring.py",
+        "generated_by": "tests/simulations/simulate_monitoring.py",
         "seed": seed,
         "seed_rule": "numpy default_rng([seed, nu]) for each nu; [seed, 0] for the limit",
         "reps": reps,

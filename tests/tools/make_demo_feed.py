@@ -2,8 +2,8 @@
 
 Run from anywhere::
 
-    python scripts/make_demo_feed.py            # rewrite demo_feed/ beside this script's folder
-    python scripts/make_demo_feed.py --check    # exit 1 if demo_feed/ differs, writing nothing
+    python tests/tools/make_demo_feed.py            # rewrite demo_feed/ beside this script's folder
+    python tests/tools/make_demo_feed.py --check    # exit 1 if demo_feed/ differs, writing nothing
 
 Files in ``demo_feed/`` that the generator no longer makes are removed, so the folder holds
 exactly the generated files (``tests/test_demo_scenario.py`` checks the same, byte for byte).
@@ -17,14 +17,21 @@ from pathlib import Path, PurePosixPath
 
 from monitor.demo import scenario_files
 
-DEMO_FEED = Path(__file__).resolve().parent.parent / "demo_feed"
+DEMO_FEED = Path(__file__).resolve().parents[2] / "demo_feed"
+# The digest picture drawn by tests/tools/screenshot_digest.py sits with the demo's files but is
+# not made by the scenario's generator, so it is neither compared nor removed.
+PICTURE = "digest.png"
 
 
 def existing_files(folder: Path) -> set[str]:
     """Relative POSIX paths of every file under ``folder``."""
     if not folder.exists():
         return set()
-    return {p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file()}
+    return {
+        p.relative_to(folder).as_posix()
+        for p in folder.rglob("*")
+        if p.is_file() and p.relative_to(folder).as_posix() != PICTURE
+    }
 
 
 def differences(folder: Path, files: dict[str, bytes]) -> list[str]:

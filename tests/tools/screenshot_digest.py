@@ -1,6 +1,6 @@
-"""Render the demo's digest to a PNG with headless Chromium, for the README (``docs/digest.png``).
+"""Render the demo's digest to a PNG with headless Chromium: ``demo_feed/digest.png``.
 
-    python scripts/screenshot_digest.py [--out docs/digest.png] [--workspace DIR]
+    python tests/tools/screenshot_digest.py [--out demo_feed/digest.png] [--workspace DIR]
                                         [--chromium PATH] [--keep]
 
 Replays the demo scenario with ``plumbline demo --dir WORKSPACE`` (a new temporary folder by
@@ -23,8 +23,8 @@ import sys
 import tempfile
 from pathlib import Path
 
-REPO_ROOT = Path(__file__).resolve().parent.parent
-DEFAULT_OUT = REPO_ROOT / "docs" / "digest.png"
+REPO_ROOT = Path(__file__).resolve().parents[2]
+DEFAULT_OUT = REPO_ROOT / "demo_feed" / "digest.png"
 WINDOW = (1200, 1800)
 CHROMIUM_NAMES = ("chromium", "chromium-browser")
 # Flags that keep a headless run self-contained: no sandbox (containers and CI run as root), no

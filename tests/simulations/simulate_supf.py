@@ -20,8 +20,8 @@ independent batches and written beside the table.
 
 Usage (the committed table was made with the defaults; run it with ``nice``)::
 
-    nice python scripts/simulate_supf.py                  # full run, several minutes
-    python scripts/simulate_supf.py --reps 2000 --grid 500 --out /tmp/quick.json   # quick check
+    nice python tests/simulations/simulate_supf.py                  # full run, several minutes
+    python tests/simulations/simulate_supf.py --reps 2000 --grid 500 --out /tmp/quick.json  # quick
 
 Seeds: chunk i uses ``numpy.random.default_rng(SeedSequence(seed).spawn(chunks)[i])``, so the
 table depends on seed, reps, grid and chunk size, all recorded in the output.
@@ -38,7 +38,7 @@ from pathlib import Path
 import numpy as np
 from numpy.typing import NDArray
 
-DEFAULT_OUT = Path(__file__).resolve().parent.parent / "monitor" / "stats" / "tables"
+DEFAULT_OUT = Path(__file__).resolve().parents[2] / "monitor" / "stats" / "tables"
 DEFAULT_OUT = DEFAULT_OUT / "supf_quantiles.json"
 
 
@@ -137,7 +137,7 @@ def build_table(
             "sup-F break test (Andrews 1993). quantiles[p][i] is the value c with "
             "P(limit > c) = tail_probabilities[i]. Simulated, not published."
         ),
-        "generated_by": "scripts/simulate_supf.py",
+        "generated_by": "tests/simulations/simulate_supf.py",
         "trimming": trimming,
         "grid_points": grid,
         "reps": reps,
