@@ -36,7 +36,7 @@ def test_every_kind_has_one_complete_declaration() -> None:
 
 
 def test_reports_and_rebaseline_read_the_declaration() -> None:
-    assert KIND_WORDS == {kind: kind.declaration.words for kind in FindingKind}
+    assert {kind: kind.declaration.words for kind in FindingKind} == KIND_WORDS
     assert set(BASELINE_KINDS) == {k for k in FindingKind if k.declaration.rebaseline}
     assert FindingKind.STRUCTURAL_BREAK in BASELINE_KINDS
     assert FindingKind.COVERAGE not in BASELINE_KINDS
