@@ -23,7 +23,10 @@ oldest first, padded with ``mask`` False. Positions (0-based, per series) select
 
 Plan rows (s, M, k) with their own mask get the prediction interval of this pass's fit, the
 mean-response interval beside it, their leverage and the extrapolation flag (outside the fitted
-range of any predictor, or leverage above the largest in the window; DESIGN.md section 4).
+range of any predictor, or leverage above the largest in the window; DESIGN.md section 4), and
+the chance that a row drawn like the window's rows would lie as far out (Hotelling's T² for a
+future observation, ``monitor.stats.diagnostics.new_point_p_value``), which the extrapolation
+finding uses.
 """
 
 from __future__ import annotations
@@ -35,9 +38,13 @@ from numpy.typing import NDArray
 
 from monitor.stats.diagnostics import (
     BatchTestResult,
+    PredictorCloud,
+    breusch_godfrey_batch,
     breusch_pagan_batch,
     durbin_watson_batch,
     jarque_bera_batch,
+    new_point_p_value,
+    predictor_cloud,
 )
 from monitor.stats.monitoring import MonitorResult, monitor, start_monitoring
 from monitor.stats.ols import BatchFit, BatchPrediction, fit_batch
@@ -75,6 +82,7 @@ class BatchOutput:
     window_mask: BoolArray  # (s, N) rows of this pass's fit
     fit: BatchFit
     durbin_watson: BatchTestResult
+    breusch_godfrey: BatchTestResult  # first-order autocorrelation, with a p-value
     breusch_pagan: BatchTestResult
     jarque_bera: BatchTestResult
     has_baseline: BoolArray  # (s,)
@@ -90,6 +98,8 @@ class BatchOutput:
     above_leverage: BoolArray  # (s, M)
     range_excess: FloatArray  # (s, M) distance beyond the fitted range / the range, 0 inside
     leverage_ratio: FloatArray  # (s, M) leverage / the window's largest leverage
+    cloud: PredictorCloud  # the fit window's predictor mean and spread
+    plan_p_value: FloatArray  # (s, M) chance a row like the window's lies this far out
 
     @property
     def extrapolation(self) -> BoolArray:
@@ -121,6 +131,7 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
                     names=names)
     fit_rows = window_mask & fit.estimable[:, None]
     durbin_watson = durbin_watson_batch(np.nan_to_num(fit.residuals), fit_rows)
+    breusch_godfrey = breusch_godfrey_batch(np.nan_to_num(fit.residuals), batch.x, fit_rows)
     breusch_pagan = breusch_pagan_batch(np.nan_to_num(fit.residuals), batch.x, fit_rows)
     jarque_bera = jarque_bera_batch(np.nan_to_num(fit.residuals), fit_rows)
 
@@ -195,11 +206,14 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
         leverage_ratio = np.where(batch.plan_mask & (max_leverage[:, None] > 0),
                                   prediction.leverage / max_leverage[:, None], 0.0)
     range_excess = np.nan_to_num(range_excess, nan=0.0, posinf=0.0)
+    cloud = predictor_cloud(batch.x, fit_rows)
+    plan_p_value = np.where(batch.plan_mask, new_point_p_value(cloud, plan_x), np.nan)
     leverage_ratio = np.nan_to_num(leverage_ratio, nan=0.0, posinf=0.0)
     return BatchOutput(
         window_mask=fit_rows,
         fit=fit,
         durbin_watson=durbin_watson,
+        breusch_godfrey=breusch_godfrey,
         breusch_pagan=breusch_pagan,
         jarque_bera=jarque_bera,
         has_baseline=has_baseline,
@@ -215,6 +229,8 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
         above_leverage=above_leverage,
         range_excess=range_excess,
         leverage_ratio=leverage_ratio,
+        cloud=cloud,
+        plan_p_value=plan_p_value,
     )
 
 

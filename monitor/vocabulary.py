@@ -127,8 +127,8 @@ class FindingKind(StrEnum):
         "leverage {value:3}{p}",
     )
     AUTOCORRELATION = "autocorrelation", KindDeclaration(
-        "autocorrelated errors", Severity.NOTICE, EvidenceFamily.RULE,
-        "Durbin–Watson {value:.2f}{p}",
+        "autocorrelated errors", Severity.NOTICE, EvidenceFamily.SERIES,
+        "Durbin–Watson {value:.2f}; Breusch–Godfrey test{p}",
     )
     HETEROSCEDASTICITY = "heteroscedasticity", KindDeclaration(
         "error spread changes with the predictors", Severity.NOTICE, EvidenceFamily.SERIES,

@@ -112,13 +112,32 @@ def test_significance_lost_and_sign_flip() -> None:
     assert holds == {(FindingKind.SIGNIFICANCE_LOST, "lost"), (FindingKind.SIGN_FLIP, "flip")}
 
 
-def test_weak_fit_and_durbin_watson_rules() -> None:
+def test_weak_fit_rule() -> None:
     weak = weak_fit_conditions("m", ["a", "b"], [0.4, 0.7], [0.7, 0.75], Thresholds(), [None] * 2)
     assert [c.holds for c in weak] == [True, False]
-    # Durbin–Watson outside 1.5–2.5: a rule of thumb (common practice), not a test.
-    dw = autocorrelation_conditions("m", ["a", "b", "c", "d"], [1.2, 2.0, 2.7, np.nan],
-                                    [None] * 4)
-    assert [c.holds for c in dw] == [True, False, True]
+
+
+def test_autocorrelation_is_a_test_controlled_across_series() -> None:
+    # Issue 14: the Breusch–Godfrey p-value decides (Breusch 1978, Godfrey 1978), with BH across
+    # the model's series (Benjamini & Hochberg 1995); Durbin–Watson d only gives the direction.
+    # d outside 1.5–2.5 with a large p (the old rule of thumb) no longer holds.
+    dw = autocorrelation_conditions(
+        "m", ["a", "b", "c", "d", "e"], [1.2, 2.0, 2.7, 1.4, np.nan],
+        [0.001, 0.6, 0.002, 0.3, 0.01], Thresholds(), [None] * 5,
+    )
+    assert [c.key.series for c in dw] == ["a", "b", "c", "d", "e"]
+    assert [c.holds for c in dw] == [True, False, True, False, True]
+    assert "positively" in dw[0].message and "negatively" in dw[2].message
+    assert dw[0].p_value == 0.001 and dw[0].statistic == 1.2
+    # BH over 20 series: the smallest p must be at most q/m = 0.10/20 = 0.005, so a lone 0.01
+    # among nineteen 0.9s is not kept although it is below the 0.05 test level.
+    many = autocorrelation_conditions(
+        "m", [str(i) for i in range(20)], [2.0] * 20, [0.01] + [0.9] * 19, Thresholds(),
+        [None] * 20,
+    )
+    assert not any(c.holds for c in many)
+    # not judged (p NaN): no condition
+    assert autocorrelation_conditions("m", ["a"], [1.0], [np.nan], Thresholds(), [None]) == []
 
 
 def test_stale_feed_on_the_business_clock() -> None:

@@ -213,11 +213,9 @@ def test_findings_table_states_the_thresholds_the_code_uses() -> None:
     from monitor import findings, passes
 
     section = _section(README, lambda title: title.startswith("What each finding means"))
-    assert f"below {findings.DURBIN_WATSON_LOW} or above {findings.DURBIN_WATSON_HIGH}" in section
+    assert f"fewer than {findings.DIAGNOSTIC_MIN_ROWS} rows" in section
     assert f"more than {findings.STALE_CADENCES} × `cadence`" in section
-    share = f"{passes.EXTRAPOLATION_RANGE_SHARE * 100:g} %"
-    assert f"{share} of a predictor's fitted range" in section
-    assert f"more than {passes.EXTRAPOLATION_LEVERAGE_RATIO:g} times the largest" in section
+    assert f"chance below {passes.EXTRAPOLATION_P_VALUE:.4f}" in section
 
 
 # --------------------------------------------------------------------------- the walk-through

@@ -506,21 +506,35 @@ def _durbin_watson_line(test: dict[str, Any]) -> str:
         shown += f" ({_p(test['p_value'])})"
     elif test["reason"]:
         shown += f" (no exact p-value: {test['reason']})"
-    significant = test["p_value"] is not None and test["p_value"] < VERDICT_SIGNIFICANCE
-    if d < low:
-        verdict = (
-            "successive errors look positively correlated, so the intervals are likely too "
-            "narrow (d below 1.5, a rule of thumb)"
-        )
-    elif d > high:
-        verdict = "successive errors look negatively correlated (d above 2.5, a rule of thumb)"
+    if test["p_value"] is None:
+        # No exact p-value (too many rows or too few degrees of freedom): the rule of thumb
+        # speaks, and says it is one.
+        if d < low:
+            verdict = ("successive errors look positively correlated, so the intervals are "
+                       "likely too narrow (d below 1.5, a rule of thumb, not a test)")
+        elif d > high:
+            verdict = ("successive errors look negatively correlated (d above 2.5, a rule of "
+                       "thumb, not a test)")
+        else:
+            verdict = "d is inside the usual 1.5 to 2.5 band (a rule of thumb, not a test)"
+        return f"{shown}: {verdict}."
+    # With the exact p-value the verdict is the test's at the announced significance; the
+    # rule of thumb only adds words where it disagrees.
+    significant = test["p_value"] < VERDICT_SIGNIFICANCE
+    outside = d < low or d > high
+    if significant and d < 2.0:
+        verdict = ("successive errors look positively correlated, so the intervals are likely "
+                   "too narrow")
     elif significant:
-        verdict = (
-            "some autocorrelation: d is inside the usual 1.5 to 2.5 band, but the exact test "
-            "flags it"
-        )
+        verdict = "successive errors look negatively correlated"
     else:
         verdict = "no sign of autocorrelated errors"
+    if significant and not outside:
+        verdict += " (d is inside the usual 1.5 to 2.5 band of the rule of thumb, but the exact " \
+                   "test rejects)"
+    elif outside and not significant:
+        verdict += (" (d is outside the usual 1.5 to 2.5 band of the rule of thumb, but the "
+                    "exact test does not reject)")
     return f"{shown}: {verdict}."
 
 

@@ -21,7 +21,6 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from monitor.findings import DURBIN_WATSON_HIGH, DURBIN_WATSON_LOW
 from monitor.notify.words import level_text, number, p_text
 from monitor.store import FitRecord
 from monitor.text import format_p_value
@@ -29,6 +28,11 @@ from monitor.text import format_p_value
 # Significance at which the diagnostic verdicts are worded when a model gives none.
 DEFAULT_SIGNIFICANCE = 0.05
 VIF_HIGH = 5.0  # common practice: above 5 the slopes' standard errors are noticeably inflated
+
+# Durbin–Watson outside 1.5–2.5 is a rule of thumb (common practice), not a test: used only for
+# fits recorded without the Breusch–Godfrey p-value.
+DURBIN_WATSON_LOW = 1.5
+DURBIN_WATSON_HIGH = 2.5
 
 
 @dataclass(frozen=True)
@@ -173,7 +177,19 @@ def diagnostic_lines(diagnostics: Mapping[str, Any], alpha: float) -> list[str]:
         dw_value, p = _float(dw.get("statistic")), _float(dw.get("p_value"))
     else:
         dw_value, p = _float(dw), None
-    if dw_value is not None:
+    bg = diagnostics.get("breusch_godfrey")
+    bg_p = _float(bg.get("p_value")) if isinstance(bg, Mapping) else None
+    if dw_value is not None and bg_p is not None:
+        # The verdict is the Breusch–Godfrey test's at ``alpha`` (what the finding uses).
+        if bg_p < alpha:
+            side = "positively" if dw_value < 2 else "negatively"
+            verdict = (f"consecutive errors look {side} correlated, so the intervals may be too "
+                       "narrow")  # fmt: skip
+        else:
+            verdict = "no sign that consecutive errors follow each other"
+        lines.append(f"Durbin–Watson {dw_value:.2f}; Breusch–Godfrey {p_text(bg_p)}: {verdict}.")
+    elif dw_value is not None:
+        # Fits recorded before the Breusch–Godfrey test was kept: the rule of thumb, said so.
         value = dw_value
         p_part = "" if p is None else f", {p_text(p)}"
         if DURBIN_WATSON_LOW <= value <= DURBIN_WATSON_HIGH:

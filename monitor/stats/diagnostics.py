@@ -51,7 +51,7 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import integrate, stats
+from scipy import integrate, linalg, stats
 
 FloatArray = NDArray[np.float64]
 BoolArray = NDArray[np.bool_]
@@ -292,9 +292,18 @@ def durbin_watson_cdf(d: float, eigenvalues: ArrayLike) -> float:
     def integrand(u: float) -> float:
         if u == 0.0:
             return 0.5 * float(weights.sum())  # the limit of sin θ(u) / u at 0
-        theta = 0.5 * float(np.arctan(weights * u).sum())
-        log_rho = 0.25 * float(np.log1p((weights * u) ** 2).sum())
-        return math.sin(theta) / (u * math.exp(log_rho))
+        scaled = weights * u
+        theta = 0.5 * float(np.arctan(scaled).sum())
+        # log ρ(u) = ¼ Σ log(1 + c_i²u²), summed in log space: (c_i u)² overflows a float and
+        # ρ(u) itself overflows for a few hundred weights far out in the tail, where the
+        # integrand is zero to double precision.
+        with np.errstate(divide="ignore"):
+            log_size = np.log(np.abs(scaled))
+        log_rho = 0.25 * float(np.logaddexp(0.0, 2.0 * log_size).sum())
+        log_denominator = math.log(u) + log_rho
+        if log_denominator > 700.0:
+            return 0.0
+        return math.sin(theta) * math.exp(-log_denominator)
 
     # The integrand decays like u^(-1-m/2); splitting at the scale of the weights keeps quad's
     # subdivision where the oscillation is.
@@ -303,6 +312,38 @@ def durbin_watson_cdf(d: float, eigenvalues: ArrayLike) -> float:
     tail, _ = integrate.quad(integrand, 10.0 * knee, np.inf, limit=400, epsabs=1e-13, epsrel=1e-11)
     probability = 0.5 - (head + tail) / math.pi
     return min(1.0, max(0.0, probability))
+
+
+def _durbin_watson_eigenvalues(basis: FloatArray) -> FloatArray:
+    """The n − r non-zero eigenvalues of M·A·M, M = I − QQᵀ (``basis`` Q (n, r) orthonormal, the
+    design's column space), A the Durbin–Watson difference matrix DᵀD (tridiagonal).
+
+    M·A·M = A − Q(QᵀA) − (AQ)Qᵀ + Q(QᵀAQ)Qᵀ is built with O(n²r) work (A is applied as a
+    difference operator), then its symmetric eigenvalues are taken; its r eigenvalues on the
+    design's space are 0 and, all eigenvalues being ≥ 0, are the r smallest, which are dropped.
+    (The earlier route, the singular values of the row differences of a full n × n orthonormal
+    basis, needed a dense SVD several times slower at a few thousand rows.)
+    """
+    n, r = basis.shape
+
+    def apply_a(v: FloatArray) -> FloatArray:  # A v = Dᵀ(D v) for v (n, c)
+        steps = np.diff(v, axis=0)
+        out = np.zeros_like(v)
+        out[:-1] -= steps
+        out[1:] += steps
+        return out
+
+    a = np.zeros((n, n))
+    index = np.arange(n)
+    a[index, index] = 2.0
+    a[0, 0] = a[-1, -1] = 1.0
+    a[index[:-1], index[1:]] = -1.0
+    a[index[1:], index[:-1]] = -1.0
+    aq = apply_a(basis)
+    small = basis.T @ aq
+    mam = a - basis @ aq.T - aq @ basis.T + basis @ small @ basis.T
+    values = linalg.eigvalsh(mam, overwrite_a=True, check_finite=False)
+    return np.asarray(np.sort(values)[r:], dtype=np.float64)
 
 
 def durbin_watson_test(residuals: ArrayLike, x: ArrayLike, intercept: bool = True) -> TestResult:
@@ -328,18 +369,146 @@ def durbin_watson_test(residuals: ArrayLike, x: ArrayLike, intercept: bool = Tru
         design = np.column_stack([np.ones(n), design])
     norms = np.linalg.norm(design, axis=0)
     scaled = design / np.where(norms == 0.0, 1.0, norms)
-    left, singular, _ = np.linalg.svd(scaled, full_matrices=True)
+    left, singular, _ = np.linalg.svd(scaled, full_matrices=False)
     rank = int((singular > singular.max(initial=0.0) * n * np.finfo(np.float64).eps).sum())
     if n - rank < 2:
         why = f"too few residual degrees of freedom ({n - rank})"
         return TestResult(plain.statistic, None, None, why)
-    residual_basis = left[:, rank:]  # orthonormal basis of the residual space, (n, n − rank)
-    # The non-zero eigenvalues of M·A·M are those of Bᵀ A B = (D B)ᵀ (D B), D the difference
-    # operator: the squared singular values of the row differences of B.
-    eigenvalues = np.linalg.svd(np.diff(residual_basis, axis=0), compute_uv=False) ** 2
+    eigenvalues = _durbin_watson_eigenvalues(left[:, :rank])
     below = durbin_watson_cdf(plain.statistic, eigenvalues)
     p_value = min(1.0, 2.0 * min(below, 1.0 - below))
     return TestResult(plain.statistic, p_value, None, None)
+
+
+# --- How far out a new point lies (prediction region of the predictors) -------------------------
+
+
+@dataclass(frozen=True)
+class PredictorCloud:
+    """The mean and spread of each series' predictor rows in a window, to judge new rows by.
+
+    ``mean`` (s, k), ``precision`` (s, k, k) the (pseudo-)inverse of the sample covariance
+    (divisor n − 1), ``n`` (s,) rows. See :func:`new_point_p_value`.
+    """
+
+    mean: FloatArray
+    precision: FloatArray
+    n: IntArray
+
+
+def predictor_cloud(x: ArrayLike, mask: ArrayLike) -> PredictorCloud:
+    """The :class:`PredictorCloud` of ``x`` (s, n, k) over the rows of ``mask`` (s, n)."""
+    used = np.asarray(mask, dtype=bool)
+    values, _ = _predictor_batch(x, used)
+    counts = used.sum(axis=1)
+    mean = values.sum(axis=1) / np.maximum(counts, 1)[:, np.newaxis]
+    centred = np.where(used[:, :, np.newaxis], values - mean[:, np.newaxis, :], 0.0)
+    covariance = np.einsum("snk,snj->skj", centred, centred) / np.maximum(counts - 1, 1)[
+        :, np.newaxis, np.newaxis]
+    precision = np.linalg.pinv(covariance, hermitian=True)
+    return PredictorCloud(mean, precision, counts.astype(np.int64))
+
+
+def new_point_p_value(cloud: PredictorCloud, x_new: ArrayLike) -> FloatArray:
+    """The chance that a new row drawn like the window's rows lies at least as far out as
+    ``x_new`` (s, m, k): Hotelling's (1931) T² for a future observation of a multivariate normal.
+
+    With D² = (x₀ − x̄)ᵀ S⁻¹ (x₀ − x̄) (x̄ and S the window's mean and sample covariance, n rows,
+    k predictors), (n − k) / (k (n − 1)) · n / (n + 1) · D² follows F(k, n − k) when x₀ is drawn
+    independently from the same normal distribution as the rows (the prediction ellipsoid of a
+    future observation; Johnson & Wichern, *Applied Multivariate Statistical Analysis*, 6th ed.
+    2007, section 5.5, from memory). For k = 1 it is the square of the t statistic of the
+    prediction interval x̄ ± t·s·√(1 + 1/n). It equals the prediction leverage route:
+    D² = (n − 1)(h₀ − 1/n) for a fit with an intercept. Returns (s, m); NaN where n ≤ k or a
+    predictor does not vary in the window; 1.0 with no predictors.
+    """
+    new = np.asarray(x_new, dtype=np.float64)
+    s, m, k = new.shape
+    if k == 0:
+        return np.ones((s, m))
+    delta = new - cloud.mean[:, np.newaxis, :]
+    distance = np.einsum("smk,skj,smj->sm", delta, cloud.precision, delta)
+    n = cloud.n.astype(np.float64)[:, np.newaxis]
+    df2 = n - k
+    with np.errstate(divide="ignore", invalid="ignore"):
+        f = df2 / (k * (n - 1.0)) * n / (n + 1.0) * distance
+        p = stats.f.sf(f, k, np.where(df2 > 0, df2, 1.0))
+    flat = np.einsum("skk->sk", cloud.precision) == 0.0  # a predictor that never varied
+    bad = (df2 <= 0) | flat.any(axis=1)[:, np.newaxis] | ~np.isfinite(new).all(axis=2)
+    return np.where(bad, np.nan, p)
+
+
+# --- Breusch–Godfrey (first order) ------------------------------------------------------------
+
+
+def breusch_godfrey_batch(
+    residuals: ArrayLike, x: ArrayLike, mask: ArrayLike | None = None
+) -> BatchTestResult:
+    """Breusch–Godfrey LM test of first-order autocorrelation for s series: LM = n·R², χ² on 1 df.
+
+    Breusch, T.S. (1978), Australian Economic Papers 17, 334–355; Godfrey, L.G. (1978),
+    Econometrica 46, 1293–1301. R² is that of the auxiliary regression of the residuals on a
+    constant, the predictors and the previous residual (0 before the first row, as in
+    statsmodels' ``acorr_breusch_godfrey``). Unlike Durbin–Watson's exact distribution it needs
+    no per-series eigen-decomposition, so it runs over a whole batch at once; it is two-sided in
+    effect (positive or negative autocorrelation). ``residuals`` (s, n) in time order, ``x``
+    (s, n, k) predictors without an intercept column (a constant is always in the auxiliary
+    regression), ``mask`` (s, n): as for Durbin–Watson the previous residual is that of the
+    previous *used* row. Undefined (NaN) when all residuals are zero, or n ≤ the auxiliary
+    regression's rank + 1.
+    """
+    values, used, bad = _residual_batch(residuals, mask)
+    predictors, bad_predictors = _predictor_batch(x, used)
+    bad = bad | bad_predictors
+    s, n = values.shape
+    counts = used.sum(axis=1)
+    position = np.where(used, np.arange(n), -1)
+    latest_used = np.maximum.accumulate(position, axis=1)
+    previous = np.concatenate([np.full((s, 1), -1), latest_used[:, :-1]], axis=1)
+    lagged = np.where(used & (previous >= 0),
+                      np.take_along_axis(values, np.maximum(previous, 0), axis=1), 0.0)
+    columns = np.concatenate([predictors, lagged[:, :, np.newaxis]], axis=2)
+    scaled, _ = _standardised_columns(columns, used, centre=True)
+    basis, rank = _column_space(scaled)
+    means = values.sum(axis=1) / np.maximum(counts, 1)
+    centred = np.where(used, values - means[:, np.newaxis], 0.0)
+    total = np.einsum("sn,sn->s", centred, centred)
+    projected = np.einsum("snk,sn->sk", basis, centred)
+    explained = np.einsum("sk,sk->s", projected, projected)
+    size = np.sqrt(np.einsum("sn,sn->s", values, values))
+
+    undefined, reason = _classify(
+        s,
+        [
+            (bad, lambda i: "a residual or predictor value is not a finite number"),
+            (size == 0.0, lambda i: "all residuals are zero (an exact fit)"),
+            (
+                counts <= rank + 1,
+                lambda i: (
+                    f"too few rows ({counts[i]}) for Breusch–Godfrey: it needs {rank[i] + 2}"
+                ),
+            ),
+            (
+                np.sqrt(total) <= _ROUNDING * size,
+                lambda i: "the residuals are constant",
+            ),
+        ],
+    )
+    safe_total = np.where(undefined, 1.0, total)
+    r_squared = np.clip(explained / safe_total, 0.0, 1.0)
+    statistic = np.where(undefined, np.nan, counts * r_squared)
+    p_value = np.where(undefined, np.nan, stats.chi2.sf(statistic, 1))
+    return BatchTestResult(statistic, p_value, np.ones(s, dtype=np.int64), reason)
+
+
+def breusch_godfrey(residuals: ArrayLike, x: ArrayLike) -> TestResult:
+    """Breusch–Godfrey LM test of first-order autocorrelation of one series (n,), ``x`` (n, k).
+
+    Breusch (1978), Godfrey (1978); see :func:`breusch_godfrey_batch`.
+    """
+    values = _one_series(residuals)
+    design = _as_column_matrix(x, values.shape[1])
+    return breusch_godfrey_batch(values, design[np.newaxis]).series(0)
 
 
 # --- Breusch–Pagan (Koenker) ------------------------------------------------------------------
@@ -588,7 +757,10 @@ def _one_series(values: ArrayLike) -> FloatArray:
 __all__ = [
     "DURBIN_WATSON_EXACT_MAX_ROWS",
     "BatchTestResult",
+    "PredictorCloud",
     "TestResult",
+    "breusch_godfrey",
+    "breusch_godfrey_batch",
     "breusch_pagan",
     "breusch_pagan_batch",
     "cooks_distance",
@@ -601,6 +773,8 @@ __all__ = [
     "jarque_bera_batch",
     "leverage",
     "leverage_batch",
+    "new_point_p_value",
+    "predictor_cloud",
     "variance_inflation",
     "variance_inflation_batch",
 ]

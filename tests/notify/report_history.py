@@ -42,7 +42,12 @@ from monitor.findings import (
     structural_break_conditions,
 )
 from monitor.stats.coverage import audit_batch
-from monitor.stats.diagnostics import breusch_pagan, durbin_watson, jarque_bera
+from monitor.stats.diagnostics import (
+    breusch_godfrey,
+    breusch_pagan,
+    durbin_watson,
+    jarque_bera,
+)
 from monitor.stats.monitoring import monitor, start_monitoring
 from monitor.stats.ols import fit_ols
 from monitor.store import (
@@ -311,8 +316,10 @@ def _refit(store, config, series, baselines, pass_id, week, clock) -> dict:
         fit = fit_ols(x[:, None], y, level=s.level, names=[s.predictor])
         coefficients, inference = _fit_json(fit, s.predictor)
         residuals = fit.residuals
+        bg = breusch_godfrey(residuals, x[:, None])
         diagnostics = {
             "durbin_watson": durbin_watson(residuals).statistic,
+            "breusch_godfrey": {"statistic": bg.statistic, "p_value": bg.p_value},
             "breusch_pagan": {"statistic": breusch_pagan(residuals, x[:, None]).statistic,
                               "p_value": breusch_pagan(residuals, x[:, None]).p_value},
             "jarque_bera": {"statistic": jarque_bera(residuals).statistic,
@@ -398,12 +405,14 @@ def _findings(store, config, series, baselines, pass_id, week, clock, fit_ids) -
                             scored.upper, 0.95, last=26)
         conditions += coverage_conditions("pick_hours", [None], batch, thresholds,
                                           [scored.target_period[0]])
-    dws, names = [], []
-    for (model, ser), (_fit_id, fit, _x) in fit_ids.items():
+    dws, bgs, names = [], [], []
+    for (model, ser), (_fit_id, fit, x) in fit_ids.items():
         if model == "pick_hours":
             dws.append(durbin_watson(fit.residuals).statistic or math.nan)
+            bgs.append(breusch_godfrey(fit.residuals, x).p_value or math.nan)
             names.append(ser)
-    conditions += autocorrelation_conditions("pick_hours", names, dws, [None] * len(names))
+    conditions += autocorrelation_conditions("pick_hours", names, dws, bgs, thresholds,
+                                             [None] * len(names))
     depot_names = [d for d in DEPOTS if ("delivery_hours", d) in baselines]
     crossed, ratio, brk, evaluated = [], [], [], []
     for depot in depot_names:

@@ -36,6 +36,9 @@ from statsmodels.stats.stattools import jarque_bera as sm_jarque_bera
 
 from monitor.stats.diagnostics import (
     TestResult,
+    _durbin_watson_eigenvalues,
+    breusch_godfrey,
+    breusch_godfrey_batch,
     breusch_pagan,
     breusch_pagan_batch,
     cooks_distance,
@@ -409,3 +412,88 @@ def test_breusch_pagan_and_vif_ignore_units_of_the_predictors(
     dw_base, dw_moved = durbin_watson(residuals), durbin_watson(residual_scale * residuals)
     assert dw_base.statistic is not None and dw_moved.statistic is not None
     assert math.isclose(dw_base.statistic, dw_moved.statistic, rel_tol=1e-12)
+
+
+# --- Breusch–Godfrey (issue 14) -----------------------------------------------------------------
+
+
+@pytest.mark.parametrize("n", [12, 30, 52, 200])
+def test_breusch_godfrey_matches_statsmodels(n: int) -> None:
+    # Breusch (1978), Godfrey (1978); reference: statsmodels' acorr_breusch_godfrey(nlags=1),
+    # whose auxiliary regression holds the fit's exog (with its constant) and the lagged residual
+    # with 0 before the first row.
+    import statsmodels.api as sm
+    from statsmodels.stats.diagnostic import acorr_breusch_godfrey
+
+    rng = np.random.default_rng(n)
+    x = rng.normal(size=(n, 2))
+    e = np.zeros(n)
+    for t in range(n):
+        e[t] = (0.4 * e[t - 1] if t else 0.0) + rng.normal()
+    y = 1.0 + x @ np.array([1.0, 2.0]) + e
+    fit = sm.OLS(y, sm.add_constant(x)).fit()
+    lm, lm_p, _, _ = acorr_breusch_godfrey(fit, nlags=1, result_object=False)
+    result = breusch_godfrey(fit.resid, x)
+    assert result.statistic is not None and result.p_value is not None
+    assert math.isclose(result.statistic, lm, rel_tol=1e-9)
+    assert math.isclose(result.p_value, lm_p, rel_tol=1e-9)
+    assert result.df == 1
+
+
+def test_breusch_godfrey_batch_with_ragged_masks_matches_one_series() -> None:
+    rng = np.random.default_rng(11)
+    s, n = 3, 40
+    x = rng.normal(size=(s, n, 2))
+    residuals = rng.normal(size=(s, n))
+    mask = np.ones((s, n), dtype=bool)
+    mask[1, :15] = False  # a shorter series
+    batch = breusch_godfrey_batch(residuals, x, mask)
+    for i in range(s):
+        rows = mask[i]
+        alone = breusch_godfrey(residuals[i, rows], x[i, rows])
+        assert alone.p_value is not None
+        assert math.isclose(float(batch.p_value[i]), alone.p_value, rel_tol=1e-10)
+    too_few = breusch_godfrey(rng.normal(size=4), rng.normal(size=(4, 2)))
+    assert too_few.p_value is None and "too few rows" in (too_few.reason or "")
+
+
+def test_breusch_godfrey_keeps_its_level_on_independent_errors() -> None:
+    # Our own seeded simulation: independent normal errors, 52 rows, two predictors; the
+    # rejection rate at 5 % must be near 5 % (binomial 4-sigma band over 4000 series).
+    rng = np.random.default_rng(20261202)
+    s, n = 4000, 52
+    x = rng.normal(size=(s, n, 2))
+    design = np.concatenate([np.ones((s, n, 1)), x], axis=2)
+    y = rng.normal(size=(s, n))
+    coef = np.linalg.solve(np.einsum("snk,snj->skj", design, design),
+                           np.einsum("snk,sn->sk", design, y)[:, :, None])[:, :, 0]
+    residuals = y - np.einsum("snk,sk->sn", design, coef)
+    rate = float((breusch_godfrey_batch(residuals, x).p_value < 0.05).mean())
+    assert abs(rate - 0.05) < 4 * math.sqrt(0.05 * 0.95 / s), rate
+
+
+@pytest.mark.parametrize("n", [265, 2000])
+def test_exact_durbin_watson_p_value_on_long_series(n: int) -> None:
+    # Issue 14: the tail of Imhof's integrand overflowed past about 265 rows. Independent
+    # checks: the Monte Carlo distribution of Σλξ²/Σξ² with the same eigenvalues (our own seeded
+    # simulation), and the eigenvalues themselves against a dense eigen-decomposition of M·A·M.
+    rng = np.random.default_rng(n)
+    x = rng.normal(size=(n, 2))
+    design = np.column_stack([np.ones(n), x])
+    e = rng.normal(size=n)
+    residuals = e - design @ np.linalg.lstsq(design, e, rcond=None)[0]
+    result = durbin_watson_test(residuals, x)
+    assert result.statistic is not None and result.p_value is not None
+    eigenvalues = _dw_eigenvalues(design) if n <= 300 else None
+    if eigenvalues is not None:
+        below = durbin_watson_cdf(result.statistic, eigenvalues)
+        assert math.isclose(result.p_value, 2.0 * min(below, 1.0 - below), rel_tol=1e-8)
+    # Monte Carlo check of the distribution function at the statistic, from the eigenvalues of
+    # the test's own route (exact for the design), 4,000 draws.
+    q, _ = np.linalg.qr(design)
+    values = _durbin_watson_eigenvalues(q)
+    draws = rng.standard_normal((4_000, values.size)) ** 2
+    simulated = (draws @ values) / draws.sum(axis=1)
+    empirical = float((simulated <= result.statistic).mean())
+    exact = durbin_watson_cdf(result.statistic, values)
+    assert abs(exact - empirical) < 4 * math.sqrt(max(empirical * (1 - empirical), 1e-3) / 4_000)
