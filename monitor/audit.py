@@ -15,7 +15,10 @@ What is scored (DESIGN.md section 6): by default, per (series, target period) th
 issued before the actual arrived; with ``by_lead`` every issue, split by lead. ``last=N`` keeps
 each entry's latest N scored forecasts (with the default audit: the latest N scored periods of each
 series). ``nominal`` is the model's level from the config (``interval.level`` for an audited
-interval forecast). Models come in config order, series sorted with the single series of a model
+interval forecast). Point accuracy over the same forecasts (not with ``by_lead``, where those
+keys are null): ``mean_error`` (actual − point), ``mean_absolute_error`` and ``mase`` (Hyndman &
+Koehler 2006, against the naive last-value forecast; ``monitor.stats.accuracy``). Models come in
+config order, series sorted with the single series of a model
 without ``per:`` (``null``) first, leads increasing. A model with nothing scored yet has no record.
 
 The audit only reads what passes have scored, so it stands at the latest pass's business clock
@@ -29,6 +32,7 @@ from typing import Any
 import numpy as np
 
 from monitor.config import PlumblineConfig, lookup_model
+from monitor.stats.accuracy import accuracy_batch
 from monitor.stats.coverage import audit_batch, clopper_pearson_interval, traffic_light_zone
 from monitor.store import Store
 
@@ -50,6 +54,9 @@ AUDIT_COLUMNS: tuple[str, ...] = (
     "zone",
     "mean_width",
     "interval_score",
+    "mean_error",
+    "mean_absolute_error",
+    "mase",
 )
 
 # Confidence of the Clopper–Pearson interval around each hit rate (not the intervals' level).
@@ -91,6 +98,16 @@ def audit_models(
             last=last,
             confidence=HIT_RATE_CONFIDENCE,
         )
+        accuracy = None
+        if not by_lead:
+            # point accuracy over the same forecasts: each series' latest ``last`` (time order)
+            keep = np.ones(len(scored), dtype=bool)
+            if last is not None:
+                for g in np.unique(group):
+                    rows = np.flatnonzero(group == g)
+                    keep[rows[:-last]] = False
+            accuracy = accuracy_batch(group[keep], scored.actual[keep], scored.point[keep])
+            at = {int(g): j for j, g in enumerate(accuracy.group)}
         for i in range(len(batch)):
             audit = batch.audit(i)
             if audit.scored == 0:
@@ -100,7 +117,16 @@ def audit_models(
                 "series": series_names[int(batch.group[i])],
             }
             record.update(audit.as_record())
-            records.append(record)
+            j = None if accuracy is None else at.get(int(batch.group[i]))
+            for key, values in (("mean_error", None if accuracy is None else accuracy.mean_error),
+                                ("mean_absolute_error",
+                                 None if accuracy is None else accuracy.mean_absolute_error),
+                                ("mase", None if accuracy is None else accuracy.mase)):
+                value = None if values is None or j is None else float(values[j])
+                record[key] = None if value is None or not np.isfinite(value) else value
+            ordered = {key: record[key] for key in AUDIT_COLUMNS}
+            ordered.update((k, v) for k, v in record.items() if k not in ordered)
+            records.append(ordered)
     return records
 
 

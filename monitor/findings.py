@@ -29,6 +29,7 @@ from typing import Literal, Protocol
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from monitor.stats.accuracy import AccuracyBatch
 from monitor.stats.coverage import CoverageBatch, CoverageZone
 from monitor.stats.multitest import benjamini_hochberg
 from monitor.text import format_p_value
@@ -193,6 +194,44 @@ def clustered_miss_conditions(
     return out
 
 
+def forecast_bias_conditions(
+    model: str,
+    series: Sequence[str | None],
+    accuracy: AccuracyBatch,
+    thresholds: DecisionThresholds,
+    since: Sequence[str | None],
+) -> list[Condition]:
+    """``forecast_bias``: the latest scored forecasts' mean error differs from zero.
+
+    The test of ``monitor.stats.accuracy`` (mean error over a Newey & West 1987 long-run
+    standard error, Student t) at ``significance``, BH across the model's series, on at least
+    ``min_scored`` scored forecasts. The statistic shown is the tracking signal (cumulative
+    error over mean absolute error; limits of ±4 are common practice, but it is not what
+    decides). ``accuracy`` entries align with ``series``.
+    """
+    scored = np.asarray(accuracy.scored)
+    p = np.where(scored >= thresholds.min_scored, accuracy.bias_p_value, np.nan)
+    rejected = reject(FindingKind.FORECAST_BIAS, p, thresholds)
+    out: list[Condition] = []
+    for i, name in enumerate(series):
+        if not _finite(float(p[i])):
+            continue
+        mean_error = float(accuracy.mean_error[i])
+        side = "above" if mean_error > 0 else "below"  # error = actual − point
+        signal = float(accuracy.tracking_signal[i])
+        out.append(Condition(
+            FindingKey(FindingKind.FORECAST_BIAS, model, name, None), bool(rejected[i]),
+            FindingKind.FORECAST_BIAS.declaration.severity,
+            None if math.isnan(signal) else signal, float(p[i]), since[i],
+            f"Over the latest {int(scored[i])} scored forecasts{_series_label(name)} the actuals "
+            f"came in {side} the forecasts on average by {abs(mean_error):.4g} (tracking signal "
+            f"{signal:.1f}; test of the mean error p {format_p_value(float(p[i]))}).",
+            "Look for a level change or a missing predictor; the intervals are centred in the "
+            "wrong place until the model follows it.",
+        ))
+    return out
+
+
 def slope_shift_conditions(
     model: str,
     series: Sequence[str | None],
@@ -332,22 +371,47 @@ def weak_fit_conditions(
     baseline_r_squared: ArrayLike,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    variance_p_value: ArrayLike | None = None,
 ) -> list[Condition]:
-    """``weak_fit``: R² below ``min_r2`` (when set) or fallen by more than ``max_r2_drop``."""
+    """``weak_fit``: the fit got worse than chance explains, or R² is below ``min_r2``.
+
+    Dropped: R² more than ``max_r2_drop`` below the baseline's *and* the error variance has
+    grown by more than sampling noise explains: the one-sided variance-ratio F test of the
+    current residual variance against the baseline's (``variance_p_value``,
+    ``monitor.stats.diagnostics.variance_increase_p_value``) rejects at ``significance`` after
+    BH across the model's series. An R² drop alone is not evidence: on a stable series the R² of
+    a 52-row window wanders by that much by sampling noise (issue 14 measured 7.5 % of stable
+    series raising it). Low: R² below ``min_r2`` when the owner set one (a stated rule, not a
+    test). ``variance_p_value`` None = not judged against chance (every drop counts).
+    """
     r2 = np.asarray(r_squared, dtype=float)
     r2_base = np.asarray(baseline_r_squared, dtype=float)
+    if variance_p_value is None:
+        grown = np.ones(r2.shape, dtype=bool)
+        p = np.full(r2.shape, np.nan)
+    else:
+        p = np.asarray(variance_p_value, dtype=float)
+        dropped_now = ~np.isnan(r2) & ~np.isnan(r2_base) & (r2_base - r2 > thresholds.max_r2_drop)
+        # the family: every judged series' variance test; a series whose R² did not drop
+        # cannot hold, but its p-value is part of the family
+        grown = reject(FindingKind.WEAK_FIT, np.where(np.isnan(r2), np.nan, p), thresholds)
+        grown &= dropped_now
     out: list[Condition] = []
     for i, name in enumerate(series):
         if math.isnan(r2[i]):
             continue
         low = thresholds.min_r2 is not None and r2[i] < thresholds.min_r2
-        dropped = not math.isnan(r2_base[i]) and (r2_base[i] - r2[i]) > thresholds.max_r2_drop
+        dropped = (not math.isnan(r2_base[i]) and (r2_base[i] - r2[i]) > thresholds.max_r2_drop
+                   and bool(grown[i]))
         base_text = "" if math.isnan(r2_base[i]) else f" (baseline {r2_base[i]:.2f})"
+        p_i = None if math.isnan(p[i]) else float(p[i])
+        test_text = ("" if p_i is None else
+                     f"; the error variance grew beyond chance (F test p {format_p_value(p_i)})")
         out.append(Condition(
             FindingKey(FindingKind.WEAK_FIT, model, name, None), bool(low or dropped),
-            FindingKind.WEAK_FIT.declaration.severity, float(r2[i]), None, since[i],
+            FindingKind.WEAK_FIT.declaration.severity, float(r2[i]), p_i, since[i],
             f"The current fit{_series_label(name)} explains less of the response: R² "
-            f"{r2[i]:.2f}{base_text}.",
+            f"{r2[i]:.2f}{base_text}{test_text}.",
             "Intervals are wider and forecasts less informative; look for a missing predictor "
             "or a change in how the data are recorded.",
         ))
@@ -570,6 +634,7 @@ __all__ = [
     "clustered_miss_conditions",
     "coverage_conditions",
     "extrapolation_conditions",
+    "forecast_bias_conditions",
     "heteroscedasticity_conditions",
     "not_estimable_conditions",
     "reject",

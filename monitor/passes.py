@@ -60,6 +60,7 @@ from monitor.findings import (
     clustered_miss_conditions,
     coverage_conditions,
     extrapolation_conditions,
+    forecast_bias_conditions,
     heteroscedasticity_conditions,
     not_estimable_conditions,
     rejected_input_conditions,
@@ -71,8 +72,13 @@ from monitor.findings import (
     weak_fit_conditions,
 )
 from monitor.ingest import FileReport, IngestSpec, ingest_feed, inspect_inbox
+from monitor.stats.accuracy import accuracy_batch
 from monitor.stats.coverage import audit_batch
-from monitor.stats.diagnostics import PredictorCloud, new_point_p_value
+from monitor.stats.diagnostics import (
+    PredictorCloud,
+    new_point_p_value,
+    variance_increase_p_value,
+)
 from monitor.store import (
     BaselineRow,
     FitRow,
@@ -858,10 +864,15 @@ def _model_conditions(
             name, series, out.breusch_pagan.statistic,
             nan_if(ok_fresh, out.breusch_pagan.p_value, np.nan), t, window_first,
         ), clear)
+    base_ok = out.has_baseline & out.baseline_fit.estimable
     state.add(weak_fit_conditions(
         name, series, nan_if(ok_fresh, fit.r_squared, np.nan),
-        nan_if(out.has_baseline & out.baseline_fit.estimable, out.baseline_fit.r_squared, np.nan),
+        nan_if(base_ok, out.baseline_fit.r_squared, np.nan),
         t, window_last,
+        variance_p_value=nan_if(ok_fresh & base_ok, variance_increase_p_value(
+            fit.residual_std_error ** 2, fit.residual_df,
+            out.baseline_fit.residual_std_error ** 2, out.baseline_fit.residual_df,
+        ), np.nan),
     ), clear)
     state.add(autocorrelation_conditions(
         name, series, out.durbin_watson.statistic,
@@ -930,6 +941,10 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
     t = model.thresholds
     state.add(coverage_conditions(name, ordered, audit, t, since), t.clear_after)
     state.add(clustered_miss_conditions(name, ordered, audit, t, since), t.clear_after)
+    accuracy = accuracy_batch(group, scored.actual[keep], scored.point[keep])
+    first = [str(periods[group == g][0]) for g in accuracy.group]
+    state.add(forecast_bias_conditions(
+        name, [names[int(g)] for g in accuracy.group], accuracy, t, first), t.clear_after)
 
 
 # --------------------------------------------------------------------------- feeds

@@ -102,6 +102,11 @@ class FindingKind(StrEnum):
         "misses in runs", Severity.NOTICE, EvidenceFamily.SERIES,
         "Christoffersen independence statistic {value:3}{p}",
     )
+    FORECAST_BIAS = "forecast_bias", KindDeclaration(
+        "forecasts biased to one side", Severity.WARNING, EvidenceFamily.SERIES,
+        "tracking signal {value:3} (cumulative error over mean absolute error); test of the "
+        "mean error{p}",
+    )
     SLOPE_SHIFT = "slope_shift", KindDeclaration(
         "slope shift", Severity.WARNING, EvidenceFamily.SLOPES,
         "recent slope differs from the baseline's by {value:abs3} combined standard errors{p}",
@@ -120,7 +125,8 @@ class FindingKind(StrEnum):
         "current slope {value}{p}", rebaseline=True,
     )
     WEAK_FIT = "weak_fit", KindDeclaration(
-        "weaker fit", Severity.NOTICE, EvidenceFamily.RULE, "R² {value:.2f}{p}", rebaseline=True,
+        "weaker fit", Severity.NOTICE, EvidenceFamily.SERIES, "R² {value:.2f}; F test of the "
+        "error variance{p}", rebaseline=True,
     )
     EXTRAPOLATION = "extrapolation", KindDeclaration(
         "forecast outside the fitted range", Severity.NOTICE, EvidenceFamily.RULE,

@@ -13,7 +13,12 @@ really outside what the model knows. The errors are iid normal with the series' 
 or a stationary AR(1) with coefficient ``rho`` and the same marginal SD (innovations of SD
 ``sigma·sqrt(1 − rho²)``). ``b1`` is set so that one SD of ``x1`` moves ``y`` by about 3
 error SDs (R² around 0.9, usual for operational regressions), which makes a 30 % slope change
-worth about 0.9 error SD per SD of ``x1``.
+worth about 0.9 error SD per SD of ``x1``. The mean of ``x1`` is 1.5 to 3 of its SDs, so the
+slope change also moves the level at the mean by about 1.4 to 2.7 error SDs (a predictor whose
+mean is many SDs from zero would turn every slope change into a large level shift, which any
+test finds at once); one SD of ``x2`` moves it by 1 to 2 error SDs, up or
+down, so both predictors clearly matter (a slope near zero would make ``significance_lost``
+a coin toss on every series, which is not what a stable panel is about).
 
 Planted changes (``planted_share`` of the series, split evenly among the three kinds, from
 week ``change_week`` on): ``slope`` multiplies ``b1`` by 1.3, ``level`` adds 3 error SDs,
@@ -31,6 +36,7 @@ Used by ``tests/test_panel.py`` (reduced size, in CI) and
 
 from __future__ import annotations
 
+import os
 import sqlite3
 import statistics
 import tempfile
@@ -121,12 +127,13 @@ def simulate(spec: PanelSpec) -> Panel:
     rng = np.random.default_rng(spec.seed)
     s, total = spec.series, spec.weeks + 1
     names = [f"u{i:04d}" for i in range(s)]
-    mean1, sd1 = rng.uniform(50, 150, s), rng.uniform(5, 15, s)
+    sd1 = rng.uniform(5, 15, s)
+    mean1 = sd1 * rng.uniform(1.5, 3.0, s)
     mean2, sd2 = rng.uniform(10, 30, s), rng.uniform(1, 4, s)
     sigma = rng.uniform(2, 6, s)
     a = rng.uniform(10, 50, s)
     b1 = 3.0 * sigma / sd1 * rng.uniform(0.8, 1.2, s)
-    b2 = sigma / sd2 * rng.uniform(-1.0, 1.0, s)
+    b2 = sigma / sd2 * rng.uniform(1.0, 2.0, s) * rng.choice([-1.0, 1.0], s)
     x1 = np.round(mean1[:, None] + sd1[:, None] * rng.standard_normal((s, total)), 2)
     x2 = np.round(mean2[:, None] + sd2[:, None] * rng.standard_normal((s, total)), 2)
     innovations = rng.standard_normal((s, total))
@@ -281,7 +288,10 @@ def run_panel(
 
     started = clock.perf_counter()
     panel = simulate(spec)
-    with tempfile.TemporaryDirectory(prefix="plumbline-panel-") as scratch:
+    # In memory where the machine has it: the replay commits a few thousand transactions.
+    shm = Path("/dev/shm")
+    scratch_dir = str(shm) if shm.is_dir() and os.access(shm, os.W_OK) else None
+    with tempfile.TemporaryDirectory(prefix="plumbline-panel-", dir=scratch_dir) as scratch:
         base = Path(root) if root is not None else Path(scratch)
         base.mkdir(parents=True, exist_ok=True)
         (base / "plumbline.yaml").write_text(CONFIG.format(window=spec.window), encoding="utf-8")

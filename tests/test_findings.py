@@ -158,3 +158,24 @@ def test_a_lone_series_is_tested_at_the_significance_not_the_fdr() -> None:
     strict = slope_shift_conditions("m", ["a"], ["x"], [[1.9]], [[0.07]],
                                     Thresholds(significance=0.10), [None])
     assert [c.holds for c in strict] == [True]
+
+
+def test_forecast_bias_from_the_mean_error_test() -> None:
+    from monitor.findings import forecast_bias_conditions
+    from monitor.stats.accuracy import accuracy_batch
+
+    rng = np.random.default_rng(3)
+    n = 26
+    errors = rng.normal(size=(3, n))
+    errors[0] += 1.5  # actuals well above the forecasts: biased
+    group = np.repeat(np.arange(3), n)
+    batch = accuracy_batch(group, errors.ravel(), np.zeros(3 * n))
+    conditions = forecast_bias_conditions("m", ["high", "fine", "few"], batch, Thresholds(),
+                                          [None] * 3)
+    assert [c.key.kind for c in conditions] == [FindingKind.FORECAST_BIAS] * 3
+    assert [c.holds for c in conditions] == [True, False, False]
+    assert "came in above the forecasts" in conditions[0].message  # errors = actual − point > 0
+    assert conditions[0].statistic is not None and conditions[0].statistic > 4
+    # too few scored forecasts: not judged
+    short = accuracy_batch(np.zeros(5, dtype=np.int64), np.ones(5), np.zeros(5))
+    assert forecast_bias_conditions("m", ["s"], short, Thresholds(), [None]) == []

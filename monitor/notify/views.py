@@ -47,6 +47,7 @@ class FindingView:
     is_new: bool  # raised in the window the report covers
     acknowledged: bool
     cleared: str | None = None  # when it cleared, in the config's time zone
+    p_value: float | None = None  # the evidence behind it, for the order (None: no test)
 
 
 def finding_view(
@@ -74,18 +75,33 @@ def finding_view(
             None if record.cleared_at is None
             else local_date(record.cleared_at, zone or ZoneInfo("UTC"))
         ),
+        p_value=record.p_value,
     )
 
 
 def ordered_findings(
     records: Iterable[FindingRecord], *, new_ids: Iterable[int] = (), zone: ZoneInfo | None = None
 ) -> list[FindingView]:
-    """Most severe first; within a severity new ones first, then by model, series, kind, id."""
+    """Most severe first; within a severity the strongest evidence first (smallest p-value;
+    findings without a test after those with one), so a marginal alarm never heads a list over
+    a decisive one (issue 14); then new ones first, then by model, series, kind, id.
+
+    The p-value is the finding's own test's. Within one model and kind the Benjamini–Hochberg
+    adjusted p-values keep the same order as the raw ones (the adjustment is monotone in the
+    raw p-value), so this is the order of the adjusted evidence there too.
+    """
     fresh = set(new_ids)
     views = [finding_view(r, is_new=r.id in fresh, zone=zone) for r in records]
-    views.sort(key=lambda v: (-v.rank, not v.is_new, v.model or "", v.feed or "",
-                              v.series or "", v.kind, v.id))
+    views.sort(key=lambda v: (-v.rank, _evidence(v.p_value), not v.is_new, v.model or "",
+                              v.feed or "", v.series or "", v.kind, v.id))
     return views
+
+
+def _evidence(p_value: float | None) -> float:
+    """Sort key: the p-value, and 2.0 (after every p-value) for a finding without a test."""
+    if p_value is None or p_value != p_value:
+        return 2.0
+    return p_value
 
 
 def severity_counts(views: Sequence[FindingView]) -> dict[str, int]:

@@ -438,6 +438,30 @@ def new_point_p_value(cloud: PredictorCloud, x_new: ArrayLike) -> FloatArray:
     return np.where(bad, np.nan, p)
 
 
+# --- Residual variance against the baseline's -------------------------------------------------
+
+
+def variance_increase_p_value(
+    variance_now: ArrayLike, df_now: ArrayLike, variance_before: ArrayLike, df_before: ArrayLike
+) -> FloatArray:
+    """One-sided p-value that the error variance grew: F = s²_now / s²_before on
+    (df_now, df_before) degrees of freedom, upper tail (the classical variance-ratio F test of
+    two normal samples; Snedecor & Cochran, *Statistical Methods*, 8th ed. 1989, section 6.12,
+    from memory). Arrays of one shape; NaN where a variance or df is not positive. When the two
+    windows share rows the two variances are positively correlated and the test is
+    conservative.
+    """
+    now = np.asarray(variance_now, dtype=np.float64)
+    before = np.asarray(variance_before, dtype=np.float64)
+    d1 = np.asarray(df_now, dtype=np.float64)
+    d2 = np.asarray(df_before, dtype=np.float64)
+    ok = (now >= 0) & (before > 0) & (d1 > 0) & (d2 > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(ok, now / np.where(ok, before, 1.0), np.nan)
+        p = stats.f.sf(ratio, np.where(ok, d1, 1.0), np.where(ok, d2, 1.0))
+    return np.asarray(np.where(ok, p, np.nan), dtype=np.float64)
+
+
 # --- Breusch–Godfrey (first order) ------------------------------------------------------------
 
 
@@ -775,6 +799,7 @@ __all__ = [
     "leverage_batch",
     "new_point_p_value",
     "predictor_cloud",
+    "variance_increase_p_value",
     "variance_inflation",
     "variance_inflation_batch",
 ]
