@@ -255,3 +255,32 @@ def test_cli_before_anything_is_scored(tmp_path: Path, capsys: pytest.CaptureFix
     assert code == 0
     assert "no pass has run yet: nothing scored yet." in out
     assert "pick_hours: no forecasts scored yet." in out
+
+
+@pytest.mark.parametrize("last", [None, 13])
+def test_point_accuracy_equals_a_count_by_hand(
+    history: History, last: int | None, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # Issue 14, item 9: mean error (actual − point), mean absolute error, and the MASE of
+    # Hyndman & Koehler (2006) against the naive last-value forecast on the same periods,
+    # counted here straight from the scored forecasts.
+    with history.open() as store:
+        records = audit_models(store, history.config, last=last)
+        for record in records:
+            scored = store.scored_forecasts(record["model"])
+            rows = [i for i, s in enumerate(scored.series) if s == record["series"]]
+            if last:
+                rows = rows[-last:]
+            errors = [scored.actual[i] - scored.point[i] for i in rows]
+            actuals = [scored.actual[i] for i in rows]
+            mae = sum(abs(e) for e in errors) / len(errors)
+            assert record["mean_error"] == pytest.approx(sum(errors) / len(errors), rel=1e-12)
+            assert record["mean_absolute_error"] == pytest.approx(mae, rel=1e-12)
+            steps = [abs(b - a) for a, b in zip(actuals, actuals[1:], strict=False)]
+            if steps:
+                assert record["mase"] == pytest.approx(mae / (sum(steps) / len(steps)),
+                                                       rel=1e-12)
+    code, out, _ = _run(capsys, "audit", "-c", str(history.root / "plumbline.yaml"))
+    assert code == 0
+    assert any(line.strip().startswith("point accuracy") and "MASE" in line
+               for line in out.splitlines())

@@ -153,6 +153,9 @@ def render_table(
             continue
         parts.append(_wrap(_model_sentence(name, rows, by_lead=by_lead)))
         parts += _columns(rows, by_lead=by_lead)
+        if not by_lead:
+            parts.append("")
+            parts += _accuracy_columns(rows)
         parts.append("")
     parts.append(_wrap(
         "Columns: interval is the hit rate's exact Clopper–Pearson interval at "
@@ -161,7 +164,10 @@ def render_table(
         "whether misses come in runs (Christoffersen; the JSON also has the joint test); zone "
         "grades the miss count by its cumulative binomial probability (below 95 % green, below "
         "99.99 % yellow, else red); width is the mean width of the prediction intervals and "
-        "score their mean interval score (Gneiting and Raftery 2007; lower is better). A low "
+        "score their mean interval score (Gneiting and Raftery 2007; lower is better). Point "
+        "accuracy: mean error is actual minus forecast (positive: the forecasts ran low), MASE "
+        "the mean absolute error over that of the naive last-value forecast on the same periods "
+        "(Hyndman and Koehler 2006; below 1 beats it). A low "
         "p-value is a statistical signal, not proof; the intervals assume the model's "
         "conditions hold."
     ))
@@ -266,6 +272,21 @@ def _columns(rows: list[dict[str, Any]], *, by_lead: bool) -> list[str]:
         ]
         lines.append(("  " + "  ".join(cells)).rstrip())
     return lines
+
+
+def _accuracy_columns(rows: list[dict[str, Any]]) -> list[str]:
+    """Point accuracy per series: mean error, mean absolute error, MASE (issue 14, item 9)."""
+    header = ["point accuracy", "mean error", "mean abs. error", "MASE"]
+    body = [[
+        "(whole model)" if r["series"] is None else str(r["series"]),
+        number(r.get("mean_error")),
+        number(r.get("mean_absolute_error")),
+        number(r.get("mase"), 3),
+    ] for r in rows]
+    widths = [max(len(row[i]) for row in (header, *body)) for i in range(len(header))]
+    return [("  " + "  ".join(row[i].ljust(widths[i]) if i == 0 else row[i].rjust(widths[i])
+                              for i in range(len(row)))).rstrip()
+            for row in (header, *body)]
 
 
 def _interval(lower: float | None, upper: float | None) -> str:
