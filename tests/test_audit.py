@@ -12,6 +12,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import itertools
 import math
 import sys
 from collections import defaultdict
@@ -276,7 +277,7 @@ def test_point_accuracy_equals_a_count_by_hand(
             mae = sum(abs(e) for e in errors) / len(errors)
             assert record["mean_error"] == pytest.approx(sum(errors) / len(errors), rel=1e-12)
             assert record["mean_absolute_error"] == pytest.approx(mae, rel=1e-12)
-            steps = [abs(b - a) for a, b in zip(actuals, actuals[1:], strict=False)]
+            steps = [abs(b - a) for a, b in itertools.pairwise(actuals)]
             if steps:
                 assert record["mase"] == pytest.approx(mae / (sum(steps) / len(steps)),
                                                        rel=1e-12)
