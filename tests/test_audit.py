@@ -11,8 +11,8 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 import itertools
+import json
 import math
 import sys
 from collections import defaultdict
