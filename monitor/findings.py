@@ -200,17 +200,24 @@ def forecast_bias_conditions(
     accuracy: AccuracyBatch,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    *,
+    looks: int = 1,
 ) -> list[Condition]:
     """``forecast_bias``: the latest scored forecasts' mean error differs from zero.
 
     The test of ``monitor.stats.accuracy`` (mean error over a Newey & West 1987 long-run
-    standard error, Student t) at ``significance``, BH across the model's series, on at least
-    ``min_scored`` scored forecasts. The statistic shown is the tracking signal (cumulative
+    standard error, Student t) on at least ``min_scored`` scored forecasts. It is re-read at
+    every pass that scores the series, on a window that moves by one forecast, so each p-value
+    is multiplied by ``looks``, the passes in a monitoring horizon (Bonferroni over every look:
+    a stable series raises a false ``forecast_bias`` over a horizon with chance at most
+    ``significance``, conservatively since the looks overlap), then tested at ``significance``
+    with BH across the model's series. The statistic shown is the tracking signal (cumulative
     error over mean absolute error; limits of ±4 are common practice, but it is not what
     decides). ``accuracy`` entries align with ``series``.
     """
     scored = np.asarray(accuracy.scored)
-    p = np.where(scored >= thresholds.min_scored, accuracy.bias_p_value, np.nan)
+    p = np.where(scored >= thresholds.min_scored,
+                 np.minimum(1.0, np.asarray(accuracy.bias_p_value) * max(1, looks)), np.nan)
     rejected = reject(FindingKind.FORECAST_BIAS, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):

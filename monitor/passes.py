@@ -943,8 +943,10 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
     state.add(clustered_miss_conditions(name, ordered, audit, t, since), t.clear_after)
     accuracy = accuracy_batch(group, scored.actual[keep], scored.point[keep])
     first = [str(periods[group == g][0]) for g in accuracy.group]
+    horizon = model.horizon if model.horizon is not None else 2 * baseline_rows(model)
     state.add(forecast_bias_conditions(
-        name, [names[int(g)] for g in accuracy.group], accuracy, t, first), t.clear_after)
+        name, [names[int(g)] for g in accuracy.group], accuracy, t, first, looks=horizon,
+    ), t.clear_after)
 
 
 # --------------------------------------------------------------------------- feeds
