@@ -74,7 +74,10 @@ class ConformalBatch:
     there. ``issued`` marks entries that had a calibrated interval (on the mask, after the
     warm-up) and ``covered`` those whose score was within it (False elsewhere). ``next_quantile``
     and ``next_alpha`` (s,) are what the next forecast of each series gets (NaN before the
-    warm-up ends). ``scored`` (s,) counts the entries on the mask.
+    warm-up ends). ``scored`` (s,) counts the entries on the mask. ``next_widest`` (s,) is the
+    largest score in the window the next quantile is taken over: what a caller that cannot issue
+    the whole line may issue instead when ``next_quantile`` is +∞ (the pass does; that interval
+    can miss, so Proposition 4.1 then holds for the recursion, not exactly for what was issued).
     """
 
     level: float
@@ -88,6 +91,7 @@ class ConformalBatch:
     next_quantile: FloatArray
     next_alpha: FloatArray
     scored: IntArray
+    next_widest: FloatArray
 
     def __len__(self) -> int:
         return int(self.scored.shape[0])
@@ -104,6 +108,7 @@ class ConformalBatch:
             quantile=self.quantile[i], alpha=self.alpha[i], issued=self.issued[i],
             covered=self.covered[i], next_quantile=_optional(self.next_quantile[i]),
             next_alpha=_optional(self.next_alpha[i]), scored=int(self.scored[i]),
+            next_widest=_optional(self.next_widest[i]),
         )
 
 
@@ -125,6 +130,7 @@ class ConformalSeries:
     next_quantile: float | None
     next_alpha: float | None
     scored: int
+    next_widest: float | None = None
 
     @property
     def reason(self) -> str | None:
@@ -226,11 +232,19 @@ def adaptive_conformal_batch(
     rows = np.arange(s)
     next_quantile = q_packed[rows, count]
     next_alpha = a_packed[rows, count]
+    if longest:
+        place = np.arange(longest)[None, :]
+        in_window = (place < count[:, None]) & (place >= (count - window)[:, None])
+        widest = np.max(np.where(in_window, packed, -np.inf), axis=1)
+    else:
+        widest = np.full(s, -np.inf)
+    next_widest = np.where(np.isnan(next_quantile), np.nan, widest)
     return ConformalBatch(
         level=level, gamma=gamma, window=window, min_scores=min_scores,
         quantile=_frozen(quantile), alpha=_frozen(alpha_at), issued=_frozen(issued),
         covered=_frozen(covered), next_quantile=_frozen(np.asarray(next_quantile, dtype=float)),
         next_alpha=_frozen(np.asarray(next_alpha, dtype=float)), scored=_frozen(count),
+        next_widest=_frozen(np.asarray(next_widest, dtype=float)),
     )
 
 

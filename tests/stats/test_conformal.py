@@ -144,6 +144,9 @@ def test_batch_equals_the_one_series_reference_loop(gamma, window, min_scores):
         np.testing.assert_allclose(batch.alpha[i][used], np.array(a)[used], rtol=0, atol=1e-12)
         one = batch.series(i)
         assert one.next_quantile == next_q
+        history = [v for v in listed if v is not None and math.isfinite(v)]
+        widest = max(history[-window:]) if next_q is not None else None
+        assert one.next_widest == widest
         assert (one.reason is None) == (next_q is not None)
     # The extreme settings must actually have reached both ends of α_t, or the test is weak.
     if gamma >= 0.3:
