@@ -944,8 +944,23 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
     for g in audit.group:
         missed = periods[(group == g) & misses]
         since.append(str(missed[0]) if missed.size else None)
+    calibrated = None
+    calibrated_since: list[str | None] | None = None
+    if scored.calibrated_lower is not None and scored.calibrated_upper is not None:
+        cal_lower, cal_upper = scored.calibrated_lower[keep], scored.calibrated_upper[keep]
+        if np.isfinite(cal_lower).any():
+            # The calibrated intervals issued beside the model's own, audited the same way.
+            calibrated = audit_batch(group, scored.actual[keep], cal_lower, cal_upper,
+                                     model.nominal_level)
+            actual = scored.actual[keep]
+            cal_miss = np.isfinite(cal_lower) & ((actual < cal_lower) | (actual > cal_upper))
+            calibrated_since = []
+            for g in calibrated.group:
+                missed = periods[(group == g) & cal_miss]
+                calibrated_since.append(str(missed[0]) if missed.size else None)
     t = model.thresholds
-    state.add(coverage_conditions(name, ordered, audit, t, since), t.clear_after)
+    state.add(coverage_conditions(name, ordered, audit, t, since, calibrated, calibrated_since),
+              t.clear_after)
     state.add(clustered_miss_conditions(name, ordered, audit, t, since), t.clear_after)
 
 
