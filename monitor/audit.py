@@ -78,6 +78,12 @@ CALIBRATED_COLUMNS: tuple[str, ...] = (
 )
 _PREFIX = "calibrated_"
 
+#: What every report says about the calibrated interval, in one line.
+CALIBRATED_LINE = (
+    "The calibrated interval comes from the model's own recent forecast errors: it is wider than "
+    "the model's where those errors were larger than the model expects, narrower where smaller."
+)
+
 # Confidence of the Clopper–Pearson interval around each hit rate (not the intervals' level).
 HIT_RATE_CONFIDENCE = 0.95
 
@@ -139,6 +145,24 @@ def audit_models(
                 record.update(_calibrated_keys(calibrated.audit(i).as_record()))
             records.append(record)
     return records
+
+
+def calibrated_sentence(records: list[dict[str, Any]], what: str) -> str | None:
+    """The calibrated intervals' pooled coverage over a window, as a sentence to put beside the
+    model's own; None when the records carry no calibrated audit."""
+    if not has_calibrated(records):
+        return None
+    views = [calibrated_view(r) for r in records if r.get(_PREFIX + "scored")]
+    summary = summarise_coverage(views)
+    if summary is None:
+        return f"Calibrated intervals {what}: none scored yet."
+    level = f"{summary['nominal'] * 100:g} %"
+    return (
+        f"Calibrated intervals {what}: {summary['hits']} of {summary['scored']} actuals inside "
+        f"their {level} calibrated intervals (hit rate {summary['hit_rate'] * 100:.1f} %, "
+        f"interval {summary['hit_rate_lower'] * 100:.1f} % to "
+        f"{summary['hit_rate_upper'] * 100:.1f} %; zone {summary['zone']})."
+    )
 
 
 def has_calibrated(records: list[dict[str, Any]]) -> bool:
@@ -216,8 +240,10 @@ def _series_order(series: str | None) -> tuple[int, str]:
 __all__ = [
     "AUDIT_COLUMNS",
     "CALIBRATED_COLUMNS",
+    "CALIBRATED_LINE",
     "HIT_RATE_CONFIDENCE",
     "audit_models",
+    "calibrated_sentence",
     "calibrated_view",
     "has_calibrated",
     "summarise_coverage",

@@ -180,3 +180,31 @@ def test_coverage_finding_names_the_interval_that_fell_short(replayed: Workspace
     assert message.startswith(("The model's intervals fell short; the calibrated ones held",
                                "Both the model's intervals and the calibrated ones fell short"))
     assert "inside the calibrated intervals issued beside them" in message
+
+
+def test_pages_and_digest_show_both_intervals(replayed: Workspace) -> None:
+    from monitor.audit import CALIBRATED_LINE
+    from monitor.notify.digest import build_digest, render_digest_html, render_digest_text
+    from monitor.notify.html import build_model_page, render_model_page
+
+    config = replayed.config
+    with Store.open(replayed.database, readonly=True) as store:
+        page = build_model_page(store, config, "calibrated")
+        plain = build_model_page(store, config, "own")
+        digest = build_digest(store, config)
+    sentences = [line.sentence for line in page.coverage_sentences]
+    assert any(s.startswith("Calibrated intervals over the latest 13 scored periods: ")
+               for s in sentences)
+    assert sentences[-1] == CALIBRATED_LINE
+    assert [r.series for r in page.coverage_rows] == ["whole model",
+                                                      "whole model, calibrated interval"]
+    assert not any("alibrated" in line.sentence for line in plain.coverage_sentences)
+    html = render_model_page(page, clock=None)
+    assert "whole model, calibrated interval" in html and "recent forecast errors" in html
+    by_model = {c.model: c for c in digest.coverage}
+    assert by_model["own"].calibrated == ()
+    assert by_model["calibrated"].calibrated[-1] == CALIBRATED_LINE
+    text = " ".join(render_digest_text(digest).split())
+    assert "Calibrated intervals over the latest 52 scored periods:" in text
+    assert CALIBRATED_LINE in text
+    assert "Calibrated intervals over the latest 13" in render_digest_html(digest)[0]

@@ -26,6 +26,7 @@ from typing import Any
 from monitor.audit import (
     AUDIT_COLUMNS,
     CALIBRATED_COLUMNS,
+    CALIBRATED_LINE,
     HIT_RATE_CONFIDENCE,
     audit_models,
     calibrated_view,
@@ -243,12 +244,6 @@ def _model_sentence(name: str, rows: list[dict[str, Any]], *, by_lead: bool) -> 
         f"{percent(summary['hit_rate'], 1)} (interval {percent(summary['hit_rate_lower'], 1)} to "
         f"{percent(summary['hit_rate_upper'], 1)}), zone {summary['zone']}."
     )
-
-
-CALIBRATED_LINE = (
-    "The calibrated interval comes from the model's own recent forecast errors: it is wider than "
-    "the model's where those errors were larger than the model expects, narrower where smaller."
-)
 
 
 def _calibrated_sentence(rows: list[dict[str, Any]], *, by_lead: bool) -> str:
