@@ -201,6 +201,10 @@ def test_pages_and_digest_show_both_intervals(replayed: Workspace) -> None:
     assert not any("alibrated" in line.sentence for line in plain.coverage_sentences)
     html = render_model_page(page, clock=None)
     assert "whole model, calibrated interval" in html and "recent forecast errors" in html
+    # The forecasts awaiting their actuals show the calibrated interval beside the model's.
+    assert page.forecasts and all(f.calibrated for f in page.forecasts)
+    assert "<th>calibrated interval</th>" in html
+    assert "<th>calibrated interval</th>" not in render_model_page(plain, clock=None)
     by_model = {c.model: c for c in digest.coverage}
     assert by_model["own"].calibrated == ()
     assert by_model["calibrated"].calibrated[-1] == CALIBRATED_LINE
