@@ -212,3 +212,40 @@ def test_pages_and_digest_show_both_intervals(replayed: Workspace) -> None:
     assert "Calibrated intervals over the latest 52 scored periods:" in text
     assert CALIBRATED_LINE in text
     assert "Calibrated intervals over the latest 13" in render_digest_html(digest)[0]
+
+
+def test_calibrations_from_scored_columns() -> None:
+    # Two series interleaved row by row, one with a zero-width interval, and one absent: each
+    # series' scores are its own, in order; zero width gives no score.
+    from monitor.calibration import calibrations
+    from monitor.store import ScoredForecasts
+    from monitor.vocabulary import OutcomeKind
+
+    rng = np.random.default_rng(5)
+    n = 60
+    series = tuple(["a"] * n + ["b"] * n)
+    actual = rng.standard_normal(2 * n)
+    point = np.zeros(2 * n)
+    half = np.concatenate([np.full(n, 2.0), np.full(n, 1.0)])
+    half[n + 3] = 0.0  # b's fourth forecast: an exact fit
+    mix = np.ravel(np.column_stack([np.arange(n), np.arange(n, 2 * n)]))  # a, b, a, b, …
+    scored = ScoredForecasts(
+        forecast_id=np.arange(2 * n), model=("m",) * (2 * n),
+        series=tuple(series[i] for i in mix),
+        target_period=tuple(str(i) for i in range(2 * n)),
+        target_period_key=np.arange(2 * n), lead=np.ones(2 * n, dtype=np.int64),
+        issued_at=("",) * (2 * n), actual=actual[mix], point=point[mix],
+        lower=(point - half)[mix], upper=(point + half)[mix], level=np.full(2 * n, 0.9),
+        outcome=(OutcomeKind.HIT,) * (2 * n))
+    out = calibrations(scored, ["b", "a", "c"], 0.9)
+    a = adaptive_conformal(np.abs(actual[:n]) / 2.0, 0.9, gamma=GAMMA, window=WINDOW,
+                           min_scores=MIN_SCORES)
+    b_scores = np.abs(actual[n:]) / 1.0
+    b = adaptive_conformal(np.delete(b_scores, 3), 0.9, gamma=GAMMA, window=WINDOW,
+                           min_scores=MIN_SCORES)
+    assert out["a"].factor == a.next_quantile and out["a"].scored == n
+    assert out["b"].factor == b.next_quantile and out["b"].scored == n - 1
+    assert out["c"].factor is None and out["c"].reason is not None
+    assert out["c"].bounds(1.0, 0.0, 2.0) is None
+    assert out["a"].bounds(10.0, 8.0, 12.0) == (10.0 - 2 * a.next_quantile,
+                                                10.0 + 2 * a.next_quantile)
