@@ -946,7 +946,8 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
         since.append(str(missed[0]) if missed.size else None)
     calibrated = None
     calibrated_since: list[str | None] | None = None
-    if scored.calibrated_lower is not None and scored.calibrated_upper is not None:
+    if model.calibrated and scored.calibrated_lower is not None and (
+            scored.calibrated_upper is not None):
         cal_lower, cal_upper = scored.calibrated_lower[keep], scored.calibrated_upper[keep]
         if np.isfinite(cal_lower).any():
             # The calibrated intervals issued beside the model's own, audited the same way.
