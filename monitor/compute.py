@@ -51,7 +51,7 @@ from monitor.errors import ComputeLostError, ComputeUnavailableError
 Analyse = Callable[[BatchInput], BatchOutput]
 
 # How often a pass waiting for its batches looks at its stop request (seconds).
-POLL_SECONDS = 0.25
+POLL_SECONDS = 0.05
 
 # Fields of the output dataclasses that describe the whole call, not one series each: equal in
 # every batch, taken once. Every other field has the series as its first axis and is joined.
@@ -241,7 +241,7 @@ class DaskCompute(Compute):
             futures = [self._client.submit(function, part, pure=False) for part in parts]
         self.batches_submitted += len(futures)
         try:
-            outputs = [_result(future, check_stop) for future in futures]
+            outputs = _results(self._client, futures, check_stop)
         except distributed.client.FutureCancelledError as exc:
             raise ComputeLostError(
                 f"compute: the Dask cluster dropped a batch ({_reason(exc)}); the pass stopped "
@@ -272,15 +272,16 @@ class DaskCompute(Compute):
             cluster.close()
 
 
-def _result(future: Any, check_stop: Callable[[], None] | None) -> BatchOutput:
-    """Wait for one batch, looking at the pass's stop request between short waits."""
-    while True:
+def _results(client: Any, futures: list[Any],
+             check_stop: Callable[[], None] | None) -> list[BatchOutput]:
+    """Wait for every batch, looking at the pass's stop request between short sleeps, then take
+    the results in order (the first failure is raised: a batch's own error, ``KilledWorker``,
+    or a cancellation when the scheduler went away)."""
+    while not all(future.done() for future in futures):
         if check_stop is not None:
             check_stop()
-        try:
-            return future.result(timeout=POLL_SECONDS)
-        except TimeoutError:  # not done yet (a result that lands meanwhile is taken next time)
-            continue
+        time.sleep(POLL_SECONDS)
+    return list(client.gather(futures))
 
 
 def _killed_worker() -> type[Exception]:
