@@ -274,14 +274,24 @@ class DaskCompute(Compute):
 
 def _results(client: Any, futures: list[Any],
              check_stop: Callable[[], None] | None) -> list[BatchOutput]:
-    """Wait for every batch, looking at the pass's stop request between short sleeps, then take
-    the results in order (the first failure is raised: a batch's own error, ``KilledWorker``,
-    or a cancellation when the scheduler went away)."""
-    while not all(future.done() for future in futures):
-        if check_stop is not None:
-            check_stop()
-        time.sleep(POLL_SECONDS)
-    return list(client.gather(futures))
+    """The batches' results in order, each taken as soon as it is ready (so a worker holds a
+    finished result only until the next look), looking at the pass's stop request between
+    short sleeps. The first failure is raised: a batch's own error, ``KilledWorker``, or a
+    cancellation when the scheduler went away."""
+    outputs: list[BatchOutput | None] = [None] * len(futures)
+    pending = list(range(len(futures)))
+    while pending:
+        ready = [i for i in pending if futures[i].done()]
+        if not ready:
+            if check_stop is not None:
+                check_stop()
+            time.sleep(POLL_SECONDS)
+            continue
+        for i, output in zip(ready, client.gather([futures[i] for i in ready]), strict=True):
+            outputs[i] = output
+            futures[i].release()  # the worker may drop it now
+        pending = [i for i in pending if i not in set(ready)]
+    return [output for output in outputs if output is not None]
 
 
 def _killed_worker() -> type[Exception]:
