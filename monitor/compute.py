@@ -39,6 +39,7 @@ from __future__ import annotations
 import dataclasses
 import time
 from collections.abc import Callable, Sequence
+from concurrent.futures import CancelledError
 from dataclasses import dataclass
 from typing import Any
 
@@ -242,7 +243,7 @@ class DaskCompute(Compute):
         self.batches_submitted += len(futures)
         try:
             outputs = _results(self._client, futures, check_stop)
-        except distributed.client.FutureCancelledError as exc:
+        except CancelledError as exc:  # one future or several (Future[s]CancelledError)
             raise ComputeLostError(
                 f"compute: the Dask cluster dropped a batch ({_reason(exc)}); the pass stopped "
                 "before recording the model's results and the next pass redoes them"
