@@ -115,7 +115,7 @@ def of_kind(kind: str) -> list[dict[str, Any]]:
     return [document for _, document in manifests() if document["kind"] == kind]
 
 
-def named(kind: str, name: str, folder: str | None = None) -> dict[str, Any]:
+def manifest_named(kind: str, name: str, folder: str | None = None) -> dict[str, Any]:
     """The one manifest of ``kind`` called ``name`` (in ``kubernetes/FOLDER`` when given: the
     dask shape patches the base's ConfigMap under the same name)."""
     found = [
@@ -451,7 +451,7 @@ def test_manifests_parse_with_the_expected_kinds() -> None:
 
 
 def test_daemon_deployment_is_one_replica_recreated() -> None:
-    deployment = named("Deployment", "plumbline")
+    deployment = manifest_named("Deployment", "plumbline")
     assert deployment["spec"]["replicas"] == 1
     assert deployment["spec"]["strategy"] == {"type": "Recreate"}
     (container,) = deployment["spec"]["template"]["spec"]["containers"]
@@ -509,7 +509,7 @@ def test_volume_claim_is_read_write_once() -> None:
 
 
 def test_configmap_holds_the_container_config_and_names_the_secret(tmp_path: Path) -> None:
-    configmap = named("ConfigMap", "plumbline-config", "base")
+    configmap = manifest_named("ConfigMap", "plumbline-config", "base")
     text = configmap["data"]["plumbline.yaml"]
     assert text == (CONTAINER / "plumbline.yaml.example").read_text(encoding="utf-8")
     written = tmp_path / "plumbline.yaml"
@@ -581,17 +581,17 @@ def test_dask_units_run_the_installed_dask_on_loopback() -> None:
 def test_dask_shape_points_the_daemon_at_its_scheduler(tmp_path: Path) -> None:
     kustomization = yaml.safe_load((KUBERNETES / "dask" / "kustomization.yaml").read_text())
     assert "../daemon" in kustomization["resources"]  # the one daemon, not a second writer
-    patched = named("ConfigMap", "plumbline-config", "dask")["data"]["plumbline.yaml"]
+    patched = manifest_named("ConfigMap", "plumbline-config", "dask")["data"]["plumbline.yaml"]
     example = (CONTAINER / "plumbline.yaml.example").read_text(encoding="utf-8")
     assert patched.startswith(example)  # the same config, plus the compute section
     written = tmp_path / "plumbline.yaml"
     written.write_text(patched, encoding="utf-8")
     compute = load_config(written).compute
-    service = named("Service", "plumbline-dask-scheduler")
+    service = manifest_named("Service", "plumbline-dask-scheduler")
     (port,) = service["spec"]["ports"]
     assert compute.engine == "dask"
     assert compute.scheduler == f"tcp://{service['metadata']['name']}:{port['port']}"
-    scheduler = named("Deployment", "plumbline-dask-scheduler")
+    scheduler = manifest_named("Deployment", "plumbline-dask-scheduler")
     assert service["spec"]["selector"] == scheduler["spec"]["selector"]["matchLabels"]
     assert scheduler["spec"]["replicas"] == 1
     (container,) = scheduler["spec"]["template"]["spec"]["containers"]
@@ -600,14 +600,15 @@ def test_dask_shape_points_the_daemon_at_its_scheduler(tmp_path: Path) -> None:
 
 
 def test_dask_workers_take_one_thread_each_from_the_daemons_image() -> None:
-    daemon = named("Deployment", "plumbline")["spec"]["template"]["spec"]["containers"][0]
-    workers = named("Deployment", "plumbline-dask-workers")
+    daemon = manifest_named("Deployment", "plumbline")["spec"]["template"]["spec"]["containers"][0]
+    workers = manifest_named("Deployment", "plumbline-dask-workers")
     (container,) = workers["spec"]["template"]["spec"]["containers"]
     assert container["image"] == daemon["image"]  # the same Plumbline version on both sides
     assert container["command"] == ["dask", "worker", "tcp://plumbline-dask-scheduler:8786"]
     args = container["args"]
     assert args[args.index("--nthreads") + 1] == "1"
-    assert quantity_bytes(args[args.index("--memory-limit") + 1]) <= quantity_bytes(
+    dask_limit = args[args.index("--memory-limit") + 1]  # Dask writes 1536MiB, Kubernetes 1536Mi
+    assert quantity_bytes(dask_limit.removesuffix("B")) <= quantity_bytes(
         container["resources"]["limits"]["memory"])
     assert container["resources"]["requests"]["cpu"] == container["resources"]["limits"]["cpu"]
     for name in DASK_PODS:
@@ -621,7 +622,7 @@ def test_dask_workers_take_one_thread_each_from_the_daemons_image() -> None:
 
 
 def test_only_the_daemon_and_dask_pods_reach_the_dask_pods() -> None:
-    policy = named("NetworkPolicy", "plumbline-dask")
+    policy = manifest_named("NetworkPolicy", "plumbline-dask")
     selected = policy["spec"]["podSelector"]["matchExpressions"][0]
     assert set(selected["values"]) == {"dask-scheduler", "dask-worker"}
     (rule,) = policy["spec"]["ingress"]
