@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from enum import StrEnum
@@ -136,6 +136,44 @@ class ObservationRow(NamedTuple):
     is_plan: bool
     values: tuple[float | None, ...]
     line: int
+
+
+@dataclass(frozen=True, eq=False)
+class ObservationBatch:
+    """Rows to store as arrays (what ingest hands over): the same rows as a sequence of
+    :class:`ObservationRow`, without one Python object per row.
+
+    Row ``i`` is series ``series[series_index[i]]``, period ``periods[period_index[i]]`` (key
+    ``period_keys[period_index[i]]``), ``values[i]`` aligned with the columns given beside it
+    (NaN = empty), ``line[i]``. Iterating yields :class:`ObservationRow` objects (for code that
+    wants them one by one); :meth:`Store.insert_observations` reads the arrays.
+    """
+
+    series: tuple[str | None, ...]
+    series_index: NDArray[np.int64]
+    periods: tuple[str, ...]
+    period_keys: tuple[int, ...]
+    period_index: NDArray[np.int64]
+    is_plan: NDArray[np.bool_]
+    values: NDArray[np.float64]  # (rows, columns)
+    line: NDArray[np.int64]
+
+    def __len__(self) -> int:
+        return int(self.line.size)
+
+    def row_keys(self) -> NDArray[np.int64]:
+        """Each row's period key."""
+        return np.array(self.period_keys, dtype=np.int64).reshape(-1)[self.period_index]
+
+    def __iter__(self) -> Iterator[ObservationRow]:
+        values = self.values
+        for i in range(len(self)):
+            p = int(self.period_index[i])
+            yield ObservationRow(
+                self.series[int(self.series_index[i])], self.periods[p], self.period_keys[p],
+                bool(self.is_plan[i]),
+                tuple(None if v != v else float(v) for v in values[i].tolist()), int(self.line[i]),
+            )
 
 
 @dataclass(frozen=True)
@@ -307,6 +345,10 @@ class ForecastRow:
     version: int | None = None
     observation_id: int | None = None  # the plan row this forecast answers
     inputs: Mapping[str, float] = field(default_factory=dict)
+    # The calibrated interval beside the model's own (interval_method: calibrated), or None.
+    calibrated_lower: float | None = None
+    calibrated_upper: float | None = None
+    calibrated_factor: float | None = None
 
 
 @dataclass(frozen=True)
@@ -332,6 +374,9 @@ class ForecastRecord:
     level: float
     leverage: float | None
     extrapolation: bool
+    calibrated_lower: float | None = None
+    calibrated_upper: float | None = None
+    calibrated_factor: float | None = None
 
 
 @dataclass(frozen=True)
@@ -372,6 +417,9 @@ class ScoredForecasts:
     upper: NDArray[np.float64]
     level: NDArray[np.float64]
     outcome: tuple[OutcomeKind, ...]
+    # The calibrated interval issued beside the model's own; NaN where none was issued.
+    calibrated_lower: NDArray[np.float64] | None = None
+    calibrated_upper: NDArray[np.float64] | None = None
 
     def __len__(self) -> int:
         return int(self.forecast_id.shape[0])
