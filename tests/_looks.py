@@ -10,11 +10,11 @@ from __future__ import annotations
 
 import os
 import re
-from pathlib import Path
 
 import pytest
+from conftest import SHARED_DIR
 
-DESIGN = Path(__file__).resolve().parent.parent.parent / "shared" / "DESIGN.md"
+DESIGN = SHARED_DIR / "DESIGN.md"
 
 _SECTION = re.compile(r"\*\*Looks to avoid\.\*\*(.*?)\n\nWhat to do instead", re.S)
 
