@@ -10,11 +10,14 @@ from __future__ import annotations
 
 import os
 import re
+from pathlib import Path
 
 import pytest
-from conftest import SHARED_DIR
 
-DESIGN = SHARED_DIR / "DESIGN.md"
+# the same folder as conftest.SHARED_DIR (not imported: tests/notify has its own conftest)
+DESIGN = Path(
+    os.environ.get("PLUMBLINE_SHARED") or Path(__file__).resolve().parent.parent.parent / "shared"
+) / "DESIGN.md"
 
 _SECTION = re.compile(r"\*\*Looks to avoid\.\*\*(.*?)\n\nWhat to do instead", re.S)
 

@@ -60,6 +60,7 @@ from monitor.notify.words import (
     join_words,
     level_text,
     local_time,
+    misses_text,
     number,
     percent,
     plural,
@@ -155,21 +156,22 @@ def attention_sentence(findings: list[FindingView], *, model_count: int) -> str:
 
 
 def coverage_sentence(summary: dict[str, Any] | None, what: str) -> str:
-    """One model's pooled coverage over a window, as a sentence (the pooled zone is shown beside
-    it, as a word with its colour)."""
+    """One model's pooled coverage over a window, as a sentence that says in words whether the
+    misses are about as many as the nominal level expects (the count's zone, ``MISS_WORDS``)."""
     if summary is None:
         return f"Nothing scored {what} yet."
     series = "" if summary["series_count"] == 1 else f" across {summary['series_count']} series"
     zones = summary["zones"]
     spread = ""
     if summary["series_count"] > 1 and (zones["yellow"] or zones["red"]):
-        spread = f"; series in the yellow zone: {zones['yellow']}, red: {zones['red']}"
+        spread = (f"; series with more misses than expected: {zones['yellow']}, with far "
+                  f"more: {zones['red']}")
     return (
         f"{what[:1].upper()}{what[1:]}: "
         f"{hit_rate_sentence(summary['hits'], summary['scored'], summary['nominal'])}{series} "
         f"(hit rate {percent(summary['hit_rate'], 1)}, interval "
         f"{percent(summary['hit_rate_lower'], 1)} to {percent(summary['hit_rate_upper'], 1)}"
-        f"{spread})."
+        f"{spread}): {misses_text(summary['zone'])}."
     )
 
 
@@ -375,7 +377,7 @@ def _model_sentence(
     coverage = (
         "Nothing scored yet." if summary is None else
         f"{summary['hits']} of the latest {summary['scored']} actuals inside their "
-        f"{level_text(summary['nominal'])} prediction intervals (pooled zone {summary['zone']})."
+        f"{level_text(summary['nominal'])} prediction intervals: {misses_text(summary['zone'])}."
     )
     if not findings:
         return f"{opening}, no open findings. {coverage}"

@@ -14,6 +14,7 @@ from markupsafe import Markup
 from monitor.notify.charts import Chart
 from monitor.notify.words import (
     KIND_WORDS,
+    MISS_WORDS,
     SEVERITY_MARKS,
     level_text,
     local_date,
@@ -113,7 +114,8 @@ class CoverageRow:
     hit_rate: str
     interval: str
     nominal: str
-    zone: str | None
+    zone: str | None  # green, yellow or red (the JSON's value), for the colour accent only
+    misses: str  # what the zone means, in words: "about as expected", ...
     kupiec: str
     independence: str
     conditional: str
@@ -137,6 +139,7 @@ def coverage_row(record: dict[str, Any]) -> CoverageRow:
                   f"{percent(record['hit_rate_upper'], 1)}"),
         nominal=level_text(float(record["nominal"])),
         zone=record["zone"],
+        misses="nothing scored" if record["zone"] is None else MISS_WORDS[record["zone"]],
         kupiec=format_p_value(record.get("kupiec_p_value")),
         independence=format_p_value(record.get("independence_p_value")),
         conditional=format_p_value(record.get("christoffersen_p_value")),

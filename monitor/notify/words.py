@@ -164,13 +164,26 @@ def hit_rate_sentence(hits: int, scored: int, level: float, what: str = "actuals
     return f"{hits} of {scored} {what} inside their {level_text(level)} prediction intervals"
 
 
-def zone_word(zone: str | None) -> str:
-    return "no zone (nothing scored)" if zone is None else f"zone {zone}"
+# What the Basel traffic-light zone of a miss count means, said in words (Basel Committee on
+# Banking Supervision 1996, "Supervisory framework for the use of backtesting": green below 95 %
+# cumulative binomial probability of the count, yellow below 99.99 %, red above). The colour is
+# never said alone: pages draw these words, with the colour as an accent only.
+MISS_WORDS: dict[str, str] = {
+    "green": "about as expected",
+    "yellow": "more than expected",
+    "red": "far more than expected",
+}
+
+
+def misses_text(zone: str | None) -> str:
+    """"misses about as expected", "misses far more than expected", or "nothing scored"."""
+    return "nothing scored" if zone is None else f"misses {MISS_WORDS[zone]}"
 
 
 __all__ = [
     "CAUTION",
     "KIND_WORDS",
+    "MISS_WORDS",
     "SEVERITY_MARKS",
     "SEVERITY_SHAPES",
     "hit_rate_sentence",
@@ -178,11 +191,11 @@ __all__ = [
     "level_text",
     "local_date",
     "local_time",
+    "misses_text",
     "number",
     "p_text",
     "percent",
     "plural",
     "scope_text",
     "statistic_text",
-    "zone_word",
 ]

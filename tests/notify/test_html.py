@@ -23,6 +23,7 @@ from report_history import (
 
 from monitor.notify import render_pass_report, write_index, write_model_pages
 from monitor.notify.html import attention_sentence, environment, render
+from monitor.notify.words import MISS_WORDS
 from monitor.store import Store
 from monitor.vocabulary import Finding, FindingKind, Severity
 
@@ -271,12 +272,16 @@ def test_model_page_content(history: History) -> None:
     assert "Coefficients with 95 % confidence intervals (lower, upper); t and p-values on 50 " \
            "degrees of freedom." in page.text
     assert "Durbin–Watson" in page.text and "Breusch–Pagan" in page.text
-    # Zones: a colour only beside its word.
-    for swatch in page.find("span", "swatch"):
-        zone = [a for t, a in swatch.ancestors if "zone" in a.get("class", "").split()]
-        assert zone, "a swatch outside a zone label"
-    words = {text_of(e) for e in page.find("span", "zone")}
-    assert words <= {"green", "yellow", "red"} and words
+    # The miss count in words; its colour (a rule under the words) never stands alone, and no
+    # colour word or coloured square stands in for it.
+    labels = page.find("span", "misses")
+    assert labels
+    for label in labels:
+        zone = label.attrs["data-zone"]
+        assert text_of(label) == MISS_WORDS[zone]
+        assert f"misses-{zone}" in label.attrs["class"].split()
+    assert not page.find("span", "swatch")
+    assert "zone" not in " ".join(text_of(th) for th in page.find("th"))
     # Charts: inline SVG, each with a caption stating its message and an accessible label.
     figures = page.find("figure", "chart")
     assert len(figures) >= 3
