@@ -140,18 +140,30 @@ def write_page(folder: Path, name: str, text: str) -> Path:
 
 
 def attention_sentence(findings: list[FindingView], *, model_count: int) -> str:
-    """The opening sentence of a page: what needs attention, most urgent first."""
+    """The opening sentence of a page: what needs attention, most urgent first. A finding with
+    an owner's note has been looked at, so it never heads the sentence."""
     if not findings:
         return (
             f"Nothing needs attention: no open findings across {plural(model_count, 'model')}."
         )
     counts = severity_counts(findings)
     parts = [severity_count(n, word) for word, n in counts.items() if n]
-    top = findings[0]
+    noted = sum(1 for f in findings if f.noted)
+    waiting = [f for f in findings if not f.noted]
+    if not waiting:
+        each = "it has" if len(findings) == 1 else "each has"
+        return (
+            f"{plural(len(findings), 'open finding')} ({join_words(parts)}); {each} an owner's "
+            "note, so none is waiting to be looked at."
+        )
+    top = waiting[0]
     verb = "needs" if len(findings) == 1 else "need"
+    with_notes = "" if not noted else (
+        f", {noted} of them with an owner's note" if noted > 1 else ", 1 with an owner's note")
+    most = "most urgent without a note" if noted else "most urgent"
     return (
-        f"{plural(len(findings), 'open finding')} {verb} attention ({join_words(parts)}); "
-        f"most urgent: {top.kind_words} in {top.scope} ({top.severity})."
+        f"{plural(len(findings), 'open finding')} {verb} attention ({join_words(parts)}"
+        f"{with_notes}); {most}: {top.headline} ({top.severity})."
     )
 
 
@@ -220,7 +232,7 @@ def series_chart_data(
         elif kind == "coefficient":
             data = coefficient_data(store, history, series, slopes[0]) if slopes else None
         elif kind == "monitoring":
-            data = monitoring_data(history, series)
+            data = monitoring_data(store, history, series)
         else:
             data = scatter_data(store, history, series)
         if data is not None:

@@ -16,8 +16,11 @@ from monitor.notify.words import (
     KIND_WORDS,
     MISS_WORDS,
     SEVERITY_MARKS,
+    STATE_WORDS,
+    finding_headline,
     level_text,
     local_date,
+    local_time,
     number,
     percent,
     scope_text,
@@ -46,8 +49,12 @@ class FindingView:
     action: str
     state: str
     is_new: bool  # raised in the window the report covers
-    acknowledged: bool
+    noted: bool  # an owner recorded a note: no message mentions it again
+    headline: str  # what and where: "depot-11 (delivery_hours): the relationship changed ..."
+    state_words: str  # "newly raised", "still open", "no longer seen"
     cleared: str | None = None  # when it cleared, in the config's time zone
+    note: str | None = None  # the latest owner's note: "2026-12-01 10:00 Europe/Berlin, ana: …"
+    note_count: int = 0
 
 
 def finding_view(
@@ -70,11 +77,19 @@ def finding_view(
         action=record.action,
         state=record.state.value,
         is_new=is_new,
-        acknowledged=record.acknowledged_at is not None,
+        noted=record.noted,
+        headline=finding_headline(record),
+        state_words=STATE_WORDS[record.state.value],
         cleared=(
             None if record.cleared_at is None
             else local_date(record.cleared_at, zone or ZoneInfo("UTC"))
         ),
+        note=(
+            None if record.note is None else
+            f"{local_time(record.note.at, zone or ZoneInfo('UTC'))}, {record.note.by}: "
+            f"{record.note.text}"
+        ),
+        note_count=record.note_count,
     )
 
 

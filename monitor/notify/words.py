@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from datetime import datetime
+from typing import Protocol
 from zoneinfo import ZoneInfo
 
 from monitor.text import format_p_value
@@ -124,6 +125,63 @@ def scope_text(model: str | None, series: str | None, feed: str | None) -> str:
     return f"{model}, series {series}"
 
 
+# The what of a finding's line, in plain words ("depot-11 (delivery_hours): the relationship
+# changed around 2026-01-25"); {since} is the period it names, as the feed writes it.
+HEADLINES: dict[FindingKind, str] = {
+    FindingKind.COVERAGE: "fewer actuals inside their intervals than promised, since {since}",
+    FindingKind.CLUSTERED_MISSES: "misses come in runs, since {since}",
+    FindingKind.SLOPE_SHIFT: "a slope changed, from {since}",
+    FindingKind.STRUCTURAL_BREAK: "the relationship changed around {since}",
+    FindingKind.SIGNIFICANCE_LOST: "a slope no longer clearly differs from zero (fit to {since})",
+    FindingKind.SIGN_FLIP: "a slope reversed its sign (fit to {since})",
+    FindingKind.WEAK_FIT: "the fit explains less than it did (fit to {since})",
+    FindingKind.EXTRAPOLATION: "forecasts asked for outside the fitted range, from {since}",
+    FindingKind.AUTOCORRELATION: "consecutive errors are correlated (rows from {since})",
+    FindingKind.HETEROSCEDASTICITY: (
+        "the error spread changes with the predictors (rows from {since})"
+    ),
+    FindingKind.STALE_FEED: "nothing new since {since}",
+    FindingKind.REJECTED_INPUT: "input refused ({since})",
+    FindingKind.NOT_ESTIMABLE: "can no longer be fitted (from {since})",
+}
+
+# A finding's state as a forecast owner reads it; the database and JSON keep the values
+# new / ongoing / cleared.
+STATE_WORDS: dict[str, str] = {
+    "new": "newly raised",
+    "ongoing": "still open",
+    "cleared": "no longer seen",
+}
+
+
+def where_text(model: str | None, series: str | None, feed: str | None) -> str:
+    """Where a finding is, series first: "depot-11 (delivery_hours)", "fuel_litres",
+    "feed copacker"."""
+    if model is None:
+        return f"feed {feed}"
+    return model if series is None else f"{series} ({model})"
+
+
+class _Finding(Protocol):
+    @property
+    def model(self) -> str | None: ...
+    @property
+    def series(self) -> str | None: ...
+    @property
+    def feed(self) -> str | None: ...
+    @property
+    def kind(self) -> FindingKind: ...
+    @property
+    def since_period(self) -> str | None: ...
+
+
+def finding_headline(finding: _Finding) -> str:
+    """What and where, in plain words: "depot-11 (delivery_hours): the relationship changed
+    around 2026-01-25"."""
+    what = HEADLINES[finding.kind].format(since=finding.since_period or "an undated period")
+    return f"{where_text(finding.model, finding.series, finding.feed)}: {what}"
+
+
 def statistic_text(
     kind: FindingKind, statistic: float | None, p_value: float | None
 ) -> str:
@@ -182,10 +240,13 @@ def misses_text(zone: str | None) -> str:
 
 __all__ = [
     "CAUTION",
+    "HEADLINES",
     "KIND_WORDS",
     "MISS_WORDS",
     "SEVERITY_MARKS",
     "SEVERITY_SHAPES",
+    "STATE_WORDS",
+    "finding_headline",
     "hit_rate_sentence",
     "join_words",
     "level_text",
@@ -198,4 +259,5 @@ __all__ = [
     "plural",
     "scope_text",
     "statistic_text",
+    "where_text",
 ]
