@@ -1,6 +1,6 @@
 """HTML pages: the opening sentence, findings in order of severity with a shape per severity,
 zone words beside their colours, autoescaped user text, no outside resources, and the pass's
-messages (one per recipient, acknowledged findings left out). Pages are parsed with
+messages (one per recipient, findings with an owner's note left out). Pages are parsed with
 ``html.parser``, so "no such element" means no element the browser would build either."""
 
 from __future__ import annotations
@@ -157,8 +157,9 @@ def test_pass_page_orders_by_severity_with_shapes(history: History) -> None:
     lede = page.find("p", "lede")[0]
     assert text_of(lede).startswith(f"Pass {last} (business clock 2025-02-24 08:00 "
                                     "Europe/Berlin, finished) raised 4 findings (1 critical, 2 "
-                                    "warnings and 1 notice; most urgent: slope sign reversed in "
-                                    "pick_hours), cleared 0 and issued 4 forecasts.")
+                                    "warnings and 1 notice; most urgent: pick_hours: a slope "
+                                    "reversed its sign (fit to ")
+    assert text_of(lede).endswith("), found 0 no longer seen and issued 4 forecasts.")
     sequence = _severity_sequence(page)
     assert sequence == ["critical", "warning", "warning", "notice"]  # the new findings
     assert [RANK[s] for s in sequence] == sorted((RANK[s] for s in sequence), reverse=True)
@@ -210,7 +211,7 @@ def test_pass_messages_one_per_recipient(history: History) -> None:
     assert depots.content.images  # the depots' new findings come with their charts
 
 
-def test_acknowledged_findings_are_not_sent(history: History) -> None:
+def test_findings_with_an_owners_note_are_not_sent(history: History) -> None:
     week = 50  # pass 51 raised only the rejected file on feed depots
     pass_id = history.pass_ids[week]
     with history.open() as store:
@@ -219,7 +220,7 @@ def test_acknowledged_findings_are_not_sent(history: History) -> None:
         report = render_pass_report(store, history.config, pass_id, write_models=False)
         assert {m.recipient for m in report.messages} == {"depots@example.org",
                                                           "warehouse@example.org"}
-        store.acknowledge_finding(raised[0].id, at=as_of(week))
+        store.note_finding(raised[0].id, at=as_of(week), by="owner", text="a known export fault")
         quiet = render_pass_report(store, history.config, pass_id, write_models=False)
     assert quiet.messages == ()
     assert quiet.path.exists()  # the page is written all the same
