@@ -6,10 +6,10 @@
 writes ``pass-<id>.html`` (with ``write_models``, every model's page and the index too) and
 returns the pass's new and cleared findings and, for each recipient, one ``OwnerMessage``
 covering all their models (DESIGN.md section 5 step 7): a finding on a model goes to its
-``owners``, a finding on a feed to the owners of every model that reads the feed. Findings with
-an owner's note are never sent; ``escalated`` names open findings whose severity rose in this pass (the
-pass knows; the database keeps only the new severity), which are sent again. A recipient with
-nothing to hear about gets no message, and a pass with nothing new sends nothing.
+``owners``, a finding on a feed to the owners of every model that reads the feed. Findings
+with an owner's note are never sent; ``escalated`` names open findings whose severity rose in
+this pass (the pass knows; the database keeps only the new severity), which are sent again. A
+recipient with nothing to hear about gets no message, and a pass with nothing new sends nothing.
 """
 
 from __future__ import annotations
@@ -196,8 +196,8 @@ def render_pass_report(
     """Write the pass's page (and the model pages and index) and build its messages.
 
     ``notify``, when given, is the pass's own list of findings to send (``findings_to_notify``:
-    raised, more severe, no longer seen; those with an owner's note left out): the messages cover exactly those,
-    and any among them neither raised nor cleared in this pass counts as more severe.
+    raised, more severe, no longer seen; those with an owner's note left out): the messages cover
+    exactly those, and any among them neither raised nor cleared in this pass counts as more severe.
     """
     record = store.get_pass(pass_id)
     if record is None:
