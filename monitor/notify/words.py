@@ -16,22 +16,8 @@ from zoneinfo import ZoneInfo
 from monitor.text import format_p_value
 from monitor.vocabulary import FindingKind, Severity
 
-# What each kind of finding is called in reports: a short phrase that says what it is.
-KIND_WORDS: dict[FindingKind, str] = {
-    FindingKind.COVERAGE: "coverage below nominal",
-    FindingKind.CLUSTERED_MISSES: "misses in runs",
-    FindingKind.SLOPE_SHIFT: "slope shift",
-    FindingKind.STRUCTURAL_BREAK: "structural break",
-    FindingKind.SIGNIFICANCE_LOST: "slope no longer significant",
-    FindingKind.SIGN_FLIP: "slope sign reversed",
-    FindingKind.WEAK_FIT: "weaker fit",
-    FindingKind.EXTRAPOLATION: "forecast outside the fitted range",
-    FindingKind.AUTOCORRELATION: "autocorrelated errors",
-    FindingKind.HETEROSCEDASTICITY: "error spread changes with the predictors",
-    FindingKind.STALE_FEED: "feed gone quiet",
-    FindingKind.REJECTED_INPUT: "input rejected",
-    FindingKind.NOT_ESTIMABLE: "can no longer be fitted",
-}
+# What each kind of finding is called in reports (from each kind's declaration).
+KIND_WORDS: dict[FindingKind, str] = {kind: kind.declaration.words for kind in FindingKind}
 
 # The shape drawn beside each severity word (pages) and its plain-text mark (text, e-mail).
 SEVERITY_SHAPES: dict[Severity, str] = {
@@ -125,25 +111,34 @@ def scope_text(model: str | None, series: str | None, feed: str | None) -> str:
     return f"{model}, series {series}"
 
 
-# The what of a finding's line, in plain words ("depot-11 (delivery_hours): the relationship
-# changed around 2026-01-25"); {since} is the period it names, as the feed writes it.
-HEADLINES: dict[FindingKind, str] = {
-    FindingKind.COVERAGE: "fewer actuals inside their intervals than promised, since {since}",
-    FindingKind.CLUSTERED_MISSES: "misses come in runs, since {since}",
-    FindingKind.SLOPE_SHIFT: "a slope changed, from {since}",
-    FindingKind.STRUCTURAL_BREAK: "the relationship changed around {since}",
-    FindingKind.SIGNIFICANCE_LOST: "a slope no longer clearly differs from zero (fit to {since})",
-    FindingKind.SIGN_FLIP: "a slope reversed its sign (fit to {since})",
-    FindingKind.WEAK_FIT: "the fit explains less than it did (fit to {since})",
-    FindingKind.EXTRAPOLATION: "forecasts asked for outside the fitted range, from {since}",
-    FindingKind.AUTOCORRELATION: "consecutive errors are correlated (rows from {since})",
-    FindingKind.HETEROSCEDASTICITY: (
-        "the error spread changes with the predictors (rows from {since})"
-    ),
-    FindingKind.STALE_FEED: "nothing new since {since}",
-    FindingKind.REJECTED_INPUT: "input refused ({since})",
-    FindingKind.NOT_ESTIMABLE: "can no longer be fitted (from {since})",
-}
+class StatisticValue:
+    """A finding's statistic inside its kind's ``statistic`` template (``KindDeclaration``).
+
+    Format specs: none (4 significant digits), ``3`` (3 significant digits), ``abs3`` (the size,
+    3 significant digits), ``percent``, ``rows`` (rows rejected, 0 = the whole file), or any
+    Python float spec such as ``.2f``.
+    """
+
+    def __init__(self, value: float) -> None:
+        self.value = value
+
+    def __format__(self, spec: str) -> str:
+        if spec == "":
+            return number(self.value)
+        if spec == "3":
+            return number(self.value, 3)
+        if spec == "abs3":
+            return number(abs(self.value), 3)
+        if spec == "percent":
+            return percent(self.value)
+        if spec == "rows":
+            return ("the whole file" if self.value == 0
+                    else f"{plural(int(self.value), 'row')} rejected")
+        return format(self.value, spec)
+
+
+# The what of a finding's line, in plain words (each kind's ``headline``).
+HEADLINES: dict[FindingKind, str] = {kind: kind.declaration.headline for kind in FindingKind}
 
 # A finding's state as a forecast owner reads it; the database and JSON keep the values
 # new / ongoing / cleared.
@@ -185,36 +180,14 @@ def finding_headline(finding: _Finding) -> str:
 def statistic_text(
     kind: FindingKind, statistic: float | None, p_value: float | None
 ) -> str:
-    """The statistic behind a finding, named for its kind (what the findings layer stores)."""
+    """The statistic behind a finding, named by its kind's declaration."""
     p = "" if p_value is None else f", {p_text(p_value)}"
-    if kind is FindingKind.NOT_ESTIMABLE:
-        return "no statistic: the fit itself is impossible"
+    template = kind.declaration.statistic
+    if "{value" not in template:
+        return template.format(p=p)
     if statistic is None:
         return "no statistic recorded" + p
-    named = {
-        FindingKind.COVERAGE: f"hit rate {percent(statistic)}; Kupiec test{p}",
-        FindingKind.CLUSTERED_MISSES: (
-            f"Christoffersen independence statistic {number(statistic, 3)}{p}"
-        ),
-        FindingKind.SLOPE_SHIFT: (
-            f"recent slope differs from the baseline's by {number(abs(statistic), 3)} combined "
-            f"standard errors{p}"
-        ),
-        FindingKind.STRUCTURAL_BREAK: (
-            f"monitoring statistic at {number(statistic, 3)} times its boundary{p}"
-        ),
-        FindingKind.SIGNIFICANCE_LOST: f"current slope {number(statistic)}{p}",
-        FindingKind.SIGN_FLIP: f"current slope {number(statistic)}{p}",
-        FindingKind.WEAK_FIT: f"R² {statistic:.2f}{p}",
-        FindingKind.EXTRAPOLATION: f"leverage {number(statistic, 3)}{p}",
-        FindingKind.AUTOCORRELATION: f"Durbin–Watson {statistic:.2f}{p}",
-        FindingKind.HETEROSCEDASTICITY: f"Breusch–Pagan statistic {number(statistic, 3)}{p}",
-        FindingKind.STALE_FEED: f"{statistic:.0f} days since the latest period{p}",
-        FindingKind.REJECTED_INPUT: (
-            "the whole file" if statistic == 0 else f"{plural(int(statistic), 'row')} rejected"
-        ),
-    }
-    return named.get(kind, f"{number(statistic)}{p}")
+    return template.format(value=StatisticValue(statistic), p=p)
 
 
 def hit_rate_sentence(hits: int, scored: int, level: float, what: str = "actuals") -> str:
@@ -246,6 +219,7 @@ __all__ = [
     "SEVERITY_MARKS",
     "SEVERITY_SHAPES",
     "STATE_WORDS",
+    "StatisticValue",
     "finding_headline",
     "hit_rate_sentence",
     "join_words",
