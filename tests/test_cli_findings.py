@@ -133,7 +133,7 @@ def test_rebaseline_moves_the_baseline_clears_and_monitors_afresh(
     assert main(["rebaseline", "receiving_hours", "--from", "2026-07-12",
                  "-c", _config(workspace)]) == 0
     out = capsys.readouterr().out
-    assert "baseline now 2026-07-12" in out
+    assert "receiving_hours: monitoring now starts from 2026-07-12 to " in out  # new wording
     open_now = _status(workspace, capsys)["findings"]
     assert not [f for f in open_now
                 if f["model"] == "receiving_hours" and f["kind"] == "structural_break"]

@@ -266,9 +266,9 @@ def _describe_coefficient(data: CoefficientData) -> str:
         span, since = "over the periods monitoring started from", "since then"
     else:
         span = (f"over {data.start_span[0]} to {data.start_span[1]}, the periods monitoring "
-                "started from,")
+                "started from")
         since = f"since {data.start_span[1]}"
-    text += f" against {number(estimate)} {span} ({number(lower)} to {number(upper)})"
+    text += f" against {number(estimate)} ({number(lower)} to {number(upper)}) {span}"
     start = min(max(data.after_baseline, 0), data.estimate.size)
     later = data.estimate.size - start
     if later == 0:
