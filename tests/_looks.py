@@ -8,6 +8,7 @@ it is absent (a user's clone) the check skips with a message, and fails in CI (t
 
 from __future__ import annotations
 
+import html
 import os
 import re
 from pathlib import Path
@@ -103,3 +104,11 @@ def assert_own_words(text: str, *, markup: str | None = None) -> None:
     if markup is not None:
         for piece, reason in RETIRED_MARKUP:
             assert piece not in markup, f"{reason} ({piece!r})"
+
+
+def page_words(markup: str) -> str:
+    """A page's words, one block element to a line: no style, script or chart markup."""
+    text = re.sub(r"<(style|script|svg)\b.*?</\1>", " ", markup, flags=re.S)
+    text = re.sub(r"<(br|/p|/li|/tr|/h\d|/dt|/dd|/div|/caption|/figcaption|/title)\b[^>]*>", "\n",
+                  text)
+    return html.unescape(re.sub(r"<[^>]+>", " ", text))

@@ -250,13 +250,16 @@ def render_pass_report(
 
 # Keys of a pass's counts that are bookkeeping rather than news for a reader.
 _INTERNAL_COUNTS = {"observation_mark", "timings", "stopped_early", "skipped"}
+# Counts whose key is not how a reader says it.
+_COUNT_WORDS = {"findings_cleared": "findings no longer seen"}
 
 
 def _work_done(record: PassRecord) -> list[tuple[str, str]]:
     """The pass's counts as (what, how many) lines: plain numbers and words only, plus what it
     skipped and why it stopped early, if it did."""
     counts = record.counts if isinstance(record.counts, dict) else {}
-    lines = [(str(key).replace("_", " "), str(value)) for key, value in sorted(counts.items())
+    lines = [(_COUNT_WORDS.get(str(key), str(key).replace("_", " ")), str(value))
+             for key, value in sorted(counts.items())
              if key not in _INTERNAL_COUNTS and isinstance(value, int | float | str)
              and not isinstance(value, bool)]
     for item in counts.get("skipped") or ():
