@@ -164,10 +164,10 @@ def render_table(
         "says whether the count of misses is about as expected for the nominal level, more than "
         "expected or far more than expected, by its cumulative binomial probability (below "
         "95 %, below 99.99 %, above: the Basel Committee's 1996 back-testing thresholds; the "
-        "JSON's zone green, yellow, red); width is the mean width of the prediction intervals and "
-        "score their mean interval score (Gneiting and Raftery 2007; lower is better). A low "
-        "p-value is a statistical signal, not proof; the intervals assume the model's "
-        "conditions hold."
+        "JSON's key zone holds their names); width is the mean width of the prediction "
+        "intervals and score their mean interval score (Gneiting and Raftery 2007; lower is "
+        "better). A low p-value is a statistical signal, not proof; the intervals assume the "
+        "model's conditions hold."
     ))
     return "\n".join(parts) + "\n"
 
