@@ -302,9 +302,8 @@ def structural_break_conditions(
             FindingKind.STRUCTURAL_BREAK.declaration.severity,
             float(ratio_a[i]), None, break_period[i],
             f"Since {_after_text(starts[i])}, the forecast errors{_series_label(name)} have "
-            f"added up past the monitoring boundary ({float(ratio_a[i]):.2f} times the "
-            "boundary): the relationship no longer holds as it did then, and the new one is "
-            f"estimated to start at {break_period[i]}.",
+            f"added up past the monitoring boundary ({float(ratio_a[i]):.2f} times it); the new "
+            f"relationship is estimated to start at {break_period[i]}.",
             "The relationship the forecasts rest on has probably changed: review recent "
             "periods, then rebaseline from the estimated break or refit with the cause.",
         ))
@@ -312,10 +311,10 @@ def structural_break_conditions(
 
 
 def _after_text(span: Span) -> str:
-    """"2025-12-28, the end of the periods monitoring started from (2025-01-05 to 2025-12-28)"."""
+    """"the periods monitoring started from (2025-01-05 to 2025-12-28)"."""
     if span is None or span[0] is None or span[1] is None:
         return "the periods monitoring started from"
-    return f"{span[1]}, the end of the periods monitoring started from ({_span_text(span)})"
+    return f"the periods monitoring started from ({_span_text(span)})"
 
 
 def significance_conditions(

@@ -147,7 +147,7 @@ def test_every_kind_draws(history: History) -> None:
             actuals_data(pick, None),
             hit_rate_data(depots, pooled=True),
             coefficient_data(store, depots, "South", "drops"),
-            monitoring_data(depots, "South"),
+            monitoring_data(store, depots, "South"),
             scatter_data(store, pick, None),
         ]
     assert all(data is not None for data in made)
