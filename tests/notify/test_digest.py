@@ -140,7 +140,10 @@ def test_digest_page_and_text(history: History) -> None:
     assert text.startswith("PLUMBLINE DIGEST FOR THE PERIOD ENDING 2025-02-24")
     assert "<" + "span" not in text and "&lt;" not in text and "&#39;" not in text
     assert SCRIPT_SERIES in text  # plain text is not escaped: it is not HTML
-    assert "▲ CRITICAL: structural break, delivery_hours, series South" in text
+    # each finding leads with what and where (the wording changed with issue 10)
+    flat = " ".join(text.split())
+    assert "▲ critical: South (delivery_hours): the relationship changed around " in flat, text
+    assert "Structural break, finding " in flat
     assert "A finding is a statistical signal, not proof" in text
 
 
