@@ -196,9 +196,10 @@ def test_pass_messages_one_per_recipient(history: History) -> None:
     # The stale warehouse feed reaches the owners of models on that feed only.
     assert "Feed warehouse has delivered nothing" in both.content.text
     assert "Feed warehouse" not in depots.content.text
-    assert "slope sign reversed" in both.content.text
-    assert "slope sign reversed" not in depots.content.text
-    assert depots.content.subject.startswith("Plumbline: 2 new findings (most severe: warning)")
+    # findings lead with what and where; the subject counts what was raised (issue 10 wording)
+    assert "pick_hours: a slope reversed its sign" in " ".join(both.content.text.split())
+    assert "reversed its sign" not in depots.content.text
+    assert depots.content.subject.startswith("Plumbline: 2 findings raised (most severe: warning)")
     for message in report.messages:
         content = message.content
         assert "\n" not in content.subject and content.subject.startswith("Plumbline: ")
