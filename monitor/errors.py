@@ -5,7 +5,9 @@
     ├── InputFileError             a file named on the command line cannot be used (exit 2)
     ├── ConfigError                the YAML config is invalid (exit 2)
     ├── ClockRefusedError          a pass's business clock is before the latest pass's (exit 2)
-    └── DatabaseLockedError        another process holds the database's writer lock (exit 2)
+    ├── DatabaseLockedError        another process holds the database's writer lock (exit 2)
+    └── DatabaseFaultError         the database file or its disk cannot be used: a garbled or
+                                   truncated file, a full disk, a read-only mount (exit 3)
 
 Every class carries ``exit_code``; the CLI prints the message on one line and exits with it.
 """
@@ -39,9 +41,18 @@ class DatabaseLockedError(PlumblineError):
     """Another process holds the advisory writer lock of the database."""
 
 
+class DatabaseFaultError(PlumblineError):
+    """The database cannot be read or written for a reason outside Plumbline: its file is
+    damaged (a garbled or truncated header), its disk is full, or it sits on a read-only mount.
+    Nothing half-done is kept: the transaction in progress was rolled back."""
+
+    exit_code = 3
+
+
 __all__ = [
     "ClockRefusedError",
     "ConfigError",
+    "DatabaseFaultError",
     "DatabaseLockedError",
     "InputFileError",
     "PlumblineError",

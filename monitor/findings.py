@@ -480,6 +480,9 @@ class RejectedInput:
     duplicate: bool
     rows_rejected: int
     reason: str
+    # A file the feed could not take or put in place (it cannot be moved, it failed to be read,
+    # it changed after it was read): the whole sentence, naming the file and why. A warning.
+    problem: str | None = None
 
 
 def rejected_input_conditions(
@@ -488,7 +491,8 @@ def rejected_input_conditions(
     """``rejected_input`` per feed: holds when this pass rejected a file or rows of that feed.
 
     One finding per feed (the store keeps one open finding per feed and kind); its message lists
-    what was rejected. ``warning`` when a whole file was refused, ``notice`` for rows or a
+    what was rejected. ``warning`` when a whole file was refused or a file is stuck (``problem``:
+    it cannot be read or moved, or changed after it was read), ``notice`` for rows or a
     duplicate. Every feed in ``feeds`` that ingested files in this pass gets a condition, so a
     feed whose files are clean again counts towards clearing.
     """
@@ -501,10 +505,12 @@ def rejected_input_conditions(
         if not items:
             out.append(Condition(key, False, Severity.NOTICE, None, None, None, "", ""))
             continue
-        whole = any(item.whole_file and not item.duplicate for item in items)
+        whole = any((item.whole_file and not item.duplicate) or item.problem for item in items)
         parts = []
         for item in items:
-            if item.duplicate:
+            if item.problem:
+                parts.append(item.problem)
+            elif item.duplicate:
                 parts.append(f"{item.file_name} was already ingested ({item.reason})")
             elif item.whole_file:
                 parts.append(f"{item.file_name} was refused ({item.reason})")

@@ -51,7 +51,7 @@ import numpy as np
 
 from monitor.analysis import BatchInput, BatchOutput, analyse_batch, looks_per_horizon
 from monitor.config import Feed, Model, PlumblineConfig, model_signature, models_of_feed
-from monitor.errors import ClockRefusedError
+from monitor.errors import ClockRefusedError, DatabaseFaultError
 from monitor.findings import (
     Condition,
     RejectedInput,
@@ -187,6 +187,7 @@ class _PassState:
     skipped: list[str] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
     conditions: list[tuple[Condition, int]] = field(default_factory=list)  # (condition, clear)
+    feed_problems: dict[str, list[str]] = field(default_factory=dict)  # files stuck, per feed
     outcomes_scored: int = 0
     changed: dict[str, set[str | None]] = field(default_factory=dict)
     series_analysed: int = 0
@@ -209,13 +210,23 @@ def run_pass(
     real_clock: Callable[[], datetime] = utc_now,
     notifier: PassNotifier | None = None,
     store: Store | None = None,
+    max_ahead: timedelta | None = None,
+    force_clock: bool = False,
 ) -> PassReport:
     """Run one pass at business clock ``as_of`` (default: the real clock). The caller holds the
-    writer lock (``monitor.lock.DatabaseLock``)."""
+    writer lock (``monitor.lock.DatabaseLock``).
+
+    ``max_ahead`` (``plumbline pass`` gives :func:`clock_tolerance`): a business clock further
+    ahead of the real clock is refused, since a pass recorded there would refuse every pass at
+    the real clock until then. ``force_clock`` lifts that limit, and lets a pass run earlier
+    than a latest pass that stands in the future of the real clock (the way back from such a
+    pass); it never lets a pass go back behind a latest pass in the real clock's past.
+    """
     own_store = store is None
     db = Store.open(config.database) if store is None else store
     try:
-        return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier)
+        return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier,
+                    None if force_clock else max_ahead, force_clock)
     finally:
         if own_store:
             db.close()
@@ -228,16 +239,34 @@ def _run(
     stop: threading.Event | None,
     real_clock: Callable[[], datetime],
     notifier: PassNotifier | None,
+    max_ahead: timedelta | None = None,
+    force_clock: bool = False,
 ) -> PassReport:
     if as_of.tzinfo is None:
         raise ValueError("as_of must carry a time zone")
     as_of = as_of.astimezone(UTC)
+    real_now = real_clock().astimezone(UTC)
+    if max_ahead is not None and as_of > real_now + max_ahead:
+        raise ClockRefusedError(
+            f"the business clock {as_of.isoformat()} is {_days(as_of - real_now)} ahead of the "
+            f"real clock ({real_now.isoformat(timespec='seconds')}), more than the "
+            f"{_days(max_ahead)} allowed (the longest cadence of a feed); a pass recorded there "
+            "would refuse every pass at the real clock until then. Check --as-of, or add "
+            "--force-clock if you mean it"
+        )
     latest = store.latest_pass()
     if latest is not None and as_of < latest.as_of:
-        raise ClockRefusedError(
-            f"the business clock {as_of.isoformat()} is earlier than the latest pass's "
-            f"({latest.as_of.isoformat()}); passes must move forward in time"
-        )
+        future = latest.as_of > real_now
+        if not (force_clock and future):
+            recovery = (
+                f"; the latest pass (id {latest.id}) stands in the future of the real clock, "
+                "probably a mistyped --as-of: 'plumbline pass --force-clock' continues from the "
+                "real clock (its results are kept)"
+            ) if future else ""
+            raise ClockRefusedError(
+                f"the business clock {as_of.isoformat()} is earlier than the latest pass's "
+                f"({latest.as_of.isoformat()}); passes must move forward in time{recovery}"
+            )
     # The last pass that did all its work: a pass stopped early or killed left its series to
     # the next one (its mark did not move), so its fits and forecasts count as this pass's.
     finished = next(
@@ -329,6 +358,8 @@ def _run(
         try:
             _stage(state, "notify", notify_all)
             counts["notified"] = True
+        except DatabaseFaultError:
+            raise
         except Exception as exc:
             state.skipped.append(f"notify: {type(exc).__name__}: {exc}")
         counts["skipped"] = list(state.skipped)
@@ -337,6 +368,18 @@ def _run(
     return PassReport(
         **{**report.__dict__, "skipped": tuple(state.skipped), "timings": dict(state.timings)}
     )
+
+
+def clock_tolerance(config: PlumblineConfig) -> timedelta:
+    """How far ahead of the real clock ``plumbline pass --as-of`` may go without
+    ``--force-clock``: the longest cadence of the config's date feeds (one day without any)."""
+    cadences = [f.cadence for f in config.feeds.values() if isinstance(f.cadence, timedelta)]
+    return max(cadences, default=timedelta(days=1))
+
+
+def _days(span: timedelta) -> str:
+    days = span.total_seconds() / 86400
+    return f"{days:.1f} days" if days < 10 else f"{days:.0f} days"
 
 
 # How far back a pass looks for earlier passes whose notify step a crash cut short.
@@ -415,8 +458,13 @@ def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[F
             result = ingest_feed(state.store, spec, pass_id=state.pass_id, real_clock=real_clock)
             reports.extend(result.reports)
             state.skipped.extend(f"feed {name}: {problem}" for problem in result.problems)
+            state.feed_problems.setdefault(name, []).extend(result.problems)
+        except DatabaseFaultError:
+            raise
         except Exception as exc:  # one bad feed never stops the others
-            state.skipped.append(f"feed {name}: ingest failed: {type(exc).__name__}: {exc}")
+            problem = f"ingest failed: {type(exc).__name__}: {exc}"
+            state.skipped.append(f"feed {name}: {problem}")
+            state.feed_problems.setdefault(name, []).append(problem)
     return reports
 
 
@@ -433,6 +481,8 @@ def _score_all(state: _PassState) -> None:
             ]
             if outcomes:
                 state.outcomes_scored += state.store.record_outcomes(state.pass_id, outcomes)
+        except DatabaseFaultError:
+            raise
         except Exception as exc:
             state.skipped.append(f"model {name}: scoring failed: {type(exc).__name__}: {exc}")
 
@@ -451,6 +501,8 @@ def _analyse_all(state: _PassState) -> None:
                 _audit_only_model(state, name, model, version)
             _coverage_conditions(state, name, model)
         except _Stopped:
+            raise
+        except DatabaseFaultError:
             raise
         except Exception as exc:
             state.skipped.append(f"model {name}: {type(exc).__name__}: {exc}")
@@ -931,7 +983,7 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
     touched_feeds: set[str] = set()
     rejections = [
         RejectedInput(r.feed, r.name, r.whole_file_rejected, r.duplicate, r.rows_rejected,
-                      _rejection_reason(r))
+                      _rejection_reason(r), problem=r.problem or None)
         for r in files if r.raises_finding
     ]
     # Files a crashed pass took since the last finished one count as taken now.
@@ -947,6 +999,10 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
                 record.outcome.value == "duplicate", record.rows_rejected, reason))
         taken_now.add(record.id)
         touched_feeds.add(record.feed)
+    for feed_name, problems in state.feed_problems.items():
+        rejections += [RejectedInput(feed_name, "", False, False, 0, "", problem=problem)
+                       for problem in problems]
+        touched_feeds.add(feed_name)
     clear_default = 2
     touched = sorted({r.feed for r in files} | touched_feeds)
     state.add(rejected_input_conditions(touched, rejections), clear_default)
@@ -1026,6 +1082,7 @@ __all__ = [
     "baseline_rows",
     "business_key",
     "cadence_steps",
+    "clock_tolerance",
     "files_waiting",
     "ingest_spec",
     "run_pass",

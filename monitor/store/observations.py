@@ -109,9 +109,19 @@ class FilesMixin(StoreBase):
         row = self._dict("SELECT * FROM files WHERE id = ?", (file_id,))
         return None if row is None else _file_record(row)
 
-    def file_by_sha256(self, sha256: str) -> FileRecord | None:
-        """The file whose rows were ingested with these bytes (outcome ``archived``), or None."""
-        row = self._dict("SELECT * FROM files WHERE sha256 = ? AND outcome = 'archived'", (sha256,))
+    def file_by_sha256(self, sha256: str, feed: str | None = None) -> FileRecord | None:
+        """The file whose rows were ingested with these bytes (outcome ``archived``), or None;
+        with ``feed``, in that feed only (duplicates are judged per feed)."""
+        if feed is None:
+            row = self._dict(
+                "SELECT * FROM files WHERE sha256 = ? AND outcome = 'archived' ORDER BY id",
+                (sha256,),
+            )
+        else:
+            row = self._dict(
+                "SELECT * FROM files WHERE sha256 = ? AND feed = ? AND outcome = 'archived'",
+                (sha256, feed),
+            )
         return None if row is None else _file_record(row)
 
     def files_awaiting_move(self, feed: str) -> list[FileRecord]:

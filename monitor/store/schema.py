@@ -262,10 +262,25 @@ _FINDINGS_DIGESTS_OUTBOX = (
     "CREATE INDEX outbox_due ON outbox(next_attempt_at) WHERE sent_at IS NULL",
 )
 
+_PER_FEED_DUPLICATES_AND_IDENTITY = (
+    # Duplicates are judged per feed: the same bytes dropped into two feeds are two deliveries.
+    "DROP INDEX files_ingested_sha256",
+    "CREATE UNIQUE INDEX files_ingested_sha256 ON files(feed, sha256) WHERE outcome = 'archived'",
+    # A random identity made when the database is created (and anew in a backup copy), mixed
+    # into every Message-ID, so two instances, a restore or a rebuilt database never reuse one.
+    """CREATE TABLE database_identity (
+        id INTEGER PRIMARY KEY CHECK (id = 1),
+        token TEXT NOT NULL
+    )""",
+    "INSERT INTO database_identity (id, token) VALUES (1, lower(hex(randomblob(16))))",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "passes, files, rejected rows, series, observations", _FILES_AND_OBSERVATIONS),
     Migration(2, "model versions, fits, forecasts, outcomes, baselines", _MODELS_FITS_FORECASTS),
     Migration(3, "findings, digests, the outbox", _FINDINGS_DIGESTS_OUTBOX),
+    Migration(4, "duplicate files per feed; the database's random identity",
+              _PER_FEED_DUPLICATES_AND_IDENTITY),
 )
 SCHEMA_VERSION = MIGRATIONS[-1].version
 
