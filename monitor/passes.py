@@ -89,6 +89,12 @@ from monitor.vocabulary import Finding, Outcome, classify_outcome
 EXTRAPOLATION_RANGE_SHARE = 0.25
 EXTRAPOLATION_LEVERAGE_RATIO = 3.0
 
+# An actual dated more than this many cadences after the business clock's date is refused as a
+# row: it cannot be real yet (a mistyped year, a wrong column), and a latest period in the future
+# would keep ``stale_feed`` from ever firing. A few cadences leave room for feeds that date a
+# period by its end while the business clock stands before it (common practice, no standard).
+FUTURE_ACTUAL_CADENCES = 4
+
 # Series of a model with at most this many series get their monitoring path stored with the fit
 # (for charts); larger models store it for series that raised an alarm only (DESIGN.md 11).
 PATH_SERIES_LIMIT = 25
@@ -412,8 +418,16 @@ def _stage(state: _PassState, name: str, work: Callable[[], Any]) -> Any:
 # --------------------------------------------------------------------------- 1. ingest
 
 
-def ingest_spec(name: str, feed: Feed, config: PlumblineConfig) -> IngestSpec:
-    """The ingest's view of one feed: which columns play which role for its models."""
+def ingest_spec(
+    name: str, feed: Feed, config: PlumblineConfig, as_of: datetime | None = None
+) -> IngestSpec:
+    """The ingest's view of one feed: which columns play which role for its models. With
+    ``as_of`` (the business clock), actuals dated more than ``FUTURE_ACTUAL_CADENCES`` cadences
+    after its date are refused as rows."""
+    latest_actual = None
+    if as_of is not None and feed.period_type == "date" and isinstance(feed.cadence, timedelta):
+        latest_actual = as_of.astimezone(config.zone).date() + FUTURE_ACTUAL_CADENCES * (
+            feed.cadence)
     models = models_of_feed(config, name).values()
     per = sorted({m.per for m in models if m.per})
     responses = tuple(sorted({m.response for m in models}))
@@ -436,6 +450,7 @@ def ingest_spec(name: str, feed: Feed, config: PlumblineConfig) -> IngestSpec:
         required=tuple(required),
         optional=tuple(optional),
         settle=feed.settle,
+        latest_actual=latest_actual,
     )
 
 
@@ -454,7 +469,7 @@ def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[F
     reports: list[FileReport] = []
     for name, feed in state.config.feeds.items():
         try:
-            spec = ingest_spec(name, feed, state.config)
+            spec = ingest_spec(name, feed, state.config, state.as_of)
             result = ingest_feed(state.store, spec, pass_id=state.pass_id, real_clock=real_clock)
             reports.extend(result.reports)
             state.skipped.extend(f"feed {name}: {problem}" for problem in result.problems)

@@ -12,6 +12,7 @@ exit status, the one ``plumbline:`` line, ``check``'s warnings, ``status`` and t
 from __future__ import annotations
 
 import contextlib
+import csv
 import itertools
 import os
 import signal
@@ -675,3 +676,146 @@ def test_message_ids_differ_between_two_databases_with_the_same_history(
     identities = {Workspace(tmp_path / n).query("SELECT token FROM database_identity")[0][0]
                   for n in ("first", "second")}
     assert len(identities) == 2 and all(len(token) == 32 for token in identities)
+
+
+# ------------------------------------------------------------------ 1. a file too large
+
+
+LIMITED_PASS = """
+import resource, sys
+from monitor.cli import main
+import monitor.passes, monitor.notify, monitor.commands.one_pass  # everything a pass imports
+size = int(open("/proc/self/status").read().split("VmSize:")[1].split()[0]) * 1024
+headroom = 400 * 2**20
+resource.setrlimit(resource.RLIMIT_AS, (size + headroom, size + headroom))
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+def test_a_file_too_large_to_read_leaves_the_other_feeds_going_with_a_finding(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    second = MODEL.replace("  delivery_hours:", "  delivery_hours_b:").replace(
+        "feed: depots", "feed: depots_b")
+    workspace = make_workspace(tmp_path, feeds=("depots", "depots_b"),
+                               models=MODEL + "\n" + second)
+    data = csv_bytes(COLUMNS, rows(range(1, HISTORY_WEEKS + 1), HISTORY_WEEKS + 1))
+    huge = workspace.inbox("depots") / "huge.csv"
+    with huge.open("wb") as handle:  # sparse: 2 GiB of NUL bytes that take no disk space
+        handle.truncate(2 * 2**30)
+    (workspace.inbox("depots") / "huge.csv.ready").touch()
+    workspace.drop("depots", "history.csv", data)
+    workspace.drop("depots_b", "history.csv", data)
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    # plumbline pass with its address space capped 400 MiB above what its imports take.
+    done = subprocess.run(
+        [sys.executable, "-c", LIMITED_PASS, "pass", "-c", str(workspace.config_path),
+         "--as-of", delivered(HISTORY_WEEKS).isoformat()],
+        env=env, capture_output=True, text=True, timeout=300, check=False,
+    )
+    assert done.returncode == 0, done.stderr
+    assert "Traceback" not in done.stderr
+    taken = workspace.query("SELECT feed, name, outcome FROM files ORDER BY feed, name")
+    assert taken == [("depots", "history.csv", "archived"), ("depots_b", "history.csv", "archived")]
+    assert huge.stat().st_size == 2 * 2**30  # left where it was, unchanged
+    findings = workspace.query("SELECT feed, severity, message FROM findings WHERE kind = ? "
+                               "AND state != 'cleared'", (FindingKind.REJECTED_INPUT.value,))
+    assert [(f[0], f[1]) for f in findings] == [("depots", "warning")]
+    assert "huge.csv: could not be taken (it is too large to read in the memory available " \
+           "(2,147,483,648 bytes)" in findings[0][2]
+    assert main(["status", "-c", str(workspace.config_path)]) == 0
+    assert "problem: pass 1 could not do everything: feed depots: huge.csv" in (
+        capsys.readouterr().out)
+
+
+# ------------------------------------------------------------------ 7, 11. rows and encodings
+
+
+def _rejected_reasons(workspace: Workspace, name: str) -> dict[int, str]:
+    path = workspace.rejected("depots") / f"{name}.rejected.csv"
+    with path.open(encoding="utf-8", newline="") as handle:
+        return {int(row[0]): row[1] for row in list(csv.reader(handle))[1:]}
+
+
+def test_an_actual_dated_far_beyond_the_business_clock_is_rejected_as_a_row(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    workspace = seeded(tmp_path)
+    typo = week_ending(13).replace(year=2204).isoformat()  # 2024 typed as 2204
+    data = csv_bytes(COLUMNS, [[typo, "north", 120, 66.1], *rows([13])[1:],
+                               *rows([], 14)])
+    workspace.drop("depots", "week_13.csv", data)
+    assert workspace.cli_pass(delivered(13)) == 0
+    reasons = _rejected_reasons(workspace, "week_13.csv")
+    assert list(reasons) == [2]
+    assert f"'week_ending' holds '{typo}', an actual dated after" in reasons[2]
+    # The feed's latest period stays in 2024, so a feed that stops is still seen as stale.
+    assert workspace.query("SELECT max(period) FROM observations WHERE is_plan = 0")[0][0] == (
+        week_ending(14 - 1).isoformat())
+    assert main(["pass", "-c", str(workspace.config_path), "--as-of",
+                 delivered(20).isoformat()]) == 0
+    stale = workspace.query("SELECT count(*) FROM findings WHERE kind = 'stale_feed'")
+    assert stale == [(1,)]
+
+
+def test_a_huge_field_in_an_unused_column_does_not_refuse_the_file(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    workspace = seeded(tmp_path)
+    columns = (*COLUMNS, "comment")
+    data = csv_bytes(columns, [[*row, "x" * (10 * 2**20) if i == 0 else "ok"]
+                               for i, row in enumerate(rows([13], 14))])
+    workspace.drop("depots", "week_13.csv", data)
+    assert workspace.cli_pass(delivered(13)) == 0
+    assert workspace.query("SELECT outcome, rows_ingested, rows_rejected FROM files "
+                           "WHERE name = 'week_13.csv'") == [("archived", 4, 0)]
+
+
+def test_utf16_is_named_as_such(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    workspace = seeded(tmp_path)
+    text = week_file(13).decode()
+    workspace.drop("depots", "bom.csv", text.encode("utf-16"))  # with a byte-order mark
+    workspace.drop("depots", "plain.csv", text.encode("utf-16-le"))  # without one
+    assert workspace.cli_pass(delivered(13)) == 0
+    outcomes = dict(workspace.query("SELECT name, outcome FROM files WHERE pass_id = 2"))
+    assert outcomes == {"bom.csv": "rejected", "plain.csv": "rejected"}
+    for name in ("bom.csv", "plain.csv"):
+        report = (workspace.rejected("depots") / f"{name}.errors.txt").read_text()
+        assert "the file is UTF-16LE text (UTF-16), not UTF-8" in report
+        assert "binary" not in report
+
+
+def test_values_whose_square_is_beyond_the_float_range_are_rejected_as_rows(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    workspace = seeded(tmp_path)
+    data = csv_bytes(COLUMNS, [[week_ending(13).isoformat(), "north", "1e200", 66.1],
+                               [week_ending(13).isoformat(), "south", 120, "-3e160"],
+                               *rows([14])])
+    workspace.drop("depots", "week_13.csv", data)
+    assert workspace.cli_pass(delivered(14)) == 0
+    reasons = _rejected_reasons(workspace, "week_13.csv")
+    assert list(reasons) == [2, 3]
+    assert "'drops' holds '1e200', too large to compute with" in reasons[2]
+    assert "'delivery_hours' holds '-3e160', too large" in reasons[3]
+    not_estimable = workspace.query("SELECT count(*) FROM findings WHERE kind = 'not_estimable'")
+    assert not_estimable == [(0,)]
+
+
+@pytest.mark.parametrize(("period", "phrase"), [
+    ("2024-W14", "an ISO week date"),
+    ("2024W141", "an ISO week date"),
+    ("20240407", "not an ISO 8601 date"),
+    ("20240407T000000", "not an ISO 8601 date"),
+])
+def test_week_and_compact_periods_are_refused(
+    period: str, phrase: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    workspace = seeded(tmp_path)
+    data = csv_bytes(COLUMNS, [[period, "north", 120, 66.1], *rows([13])[1:]])
+    workspace.drop("depots", "week_13.csv", data)
+    assert workspace.cli_pass(delivered(13)) == 0
+    reasons = _rejected_reasons(workspace, "week_13.csv")
+    assert list(reasons) == [2] and phrase in reasons[2]
+    stored = workspace.query("SELECT count(*) FROM observations WHERE period = '2024-04-07'")
+    assert stored == [(0,)]  # never read as the Monday or the day it might mean

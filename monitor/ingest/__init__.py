@@ -31,7 +31,7 @@ import logging
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Literal
 
@@ -57,6 +57,7 @@ from monitor.store import (
     RejectedRow,
     Revision,
     Store,
+    date_period_key,
 )
 from monitor.vocabulary import Finding, FindingKind, Severity
 
@@ -99,6 +100,9 @@ class IngestSpec:
     optional: tuple[str, ...] = ()
     settle: timedelta = timedelta(seconds=30)
     detect_rename: bool = True  # rule 2 of monitor.ingest.folders
+    # Actuals dated after this day are refused as rows (date periods; the pass gives a few
+    # cadences past its business clock's date). None: no limit.
+    latest_actual: date | None = None
 
     def __post_init__(self) -> None:
         if self.format not in ("csv", "parquet"):
@@ -115,9 +119,12 @@ class IngestSpec:
 
     @property
     def plan(self) -> ColumnPlan:
+        latest = None
+        if self.latest_actual is not None and self.period_type == "date":
+            latest = (self.latest_actual.isoformat(), date_period_key(self.latest_actual))
         return ColumnPlan(
             self.period_column, self.period_type, self.per_column, self.responses,
-            self.required, self.optional,
+            self.required, self.optional, latest,
         )
 
 
@@ -398,6 +405,9 @@ def _file_problem(store: Store, spec: IngestSpec, item: InboxFile, exc: Exceptio
     """One line on a file that could not be taken, saying truthfully where it and its rows are."""
     why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
     why = f"{type(exc).__name__}: {why}" if not isinstance(exc, OSError) else why
+    if isinstance(exc, MemoryError):
+        why = (f"it is too large to read in the memory available ({item.size:,} bytes); "
+               "send it in smaller files")
     pending = next(
         (r for r in store.files_awaiting_move(spec.feed) if r.name == item.name), None
     )

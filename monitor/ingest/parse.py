@@ -21,6 +21,18 @@ from monitor.store import ObservationRow, RejectedRow, date_period_key
 from monitor.text import did_you_mean
 
 _INTEGER = re.compile(r"^[+-]?\d+$")
+# A period is a calendar date written in full (2024-01-07). Python also reads ISO week dates
+# (2024-W02-1) and the compact forms (20240107) as dates; a feed gets them only by mistake, and
+# a week date read as its Monday would put the row on another day than its sender meant.
+_CALENDAR_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+_WEEK_DATE = re.compile(r"^\d{4}-?W\d{2}(-?\d)?$", re.IGNORECASE)
+# Numbers whose square is beyond the float range (about 1.8e308): sums of squares in a fit would
+# overflow to infinity, so such a value is refused as a row rather than spoiling its series.
+LARGEST_VALUE = 1e154
+
+# Fields of any size: a long text in a column the feed does not use must not refuse the file
+# (the csv module's default limit is 128 KiB). The whole file is in memory already.
+csv.field_size_limit(2**31 - 1)
 
 
 @dataclass(frozen=True)
@@ -33,6 +45,9 @@ class ColumnPlan:
     responses: tuple[str, ...]  # empty in every one of them: a plan row
     required: tuple[str, ...]  # a number in every row
     optional: tuple[str, ...]  # may be missing from the header, or empty
+    # Actuals dated after this period key are refused as rows (plan rows may be dated later):
+    # a few cadences past the business clock's date, so a mistyped year cannot hide a stale feed.
+    latest_actual: tuple[str, int] | None = None  # (as text, period key)
 
     @property
     def declared(self) -> tuple[str, ...]:
@@ -167,7 +182,7 @@ class _RowChecker:
                     value = None
                 else:
                     # parsed - parsed is 0.0 only for finite numbers
-                    if parsed - parsed != 0.0 or "_" in cell:
+                    if parsed - parsed != 0.0 or "_" in cell or abs(parsed) > LARGEST_VALUE:
                         return self._reject(cells, line)
                     value = parsed
             else:
@@ -181,6 +196,13 @@ class _RowChecker:
                 return self._reject(cells, line)
         responses = self.responses
         is_plan = responses > 0 and all(v is None for v in values[:responses])
+        latest = self.plan.latest_actual
+        if latest is not None and not is_plan and period[1] > latest[1]:
+            return RejectedRow(line, (
+                f"'{self.plan.period}' holds {_shown(period[0])}, an actual dated after "
+                f"{latest[0]}, far beyond the business clock; an actual cannot come from the "
+                "future (a mistyped date?)"
+            ), _texts(cells))
         return ObservationRow(series, period[0], period[1], is_plan, tuple(values), line)
 
     def _reject(self, cells: Sequence[Any], line: int) -> RejectedRow:
@@ -237,6 +259,9 @@ def _number(cell: Any) -> float | str | None:
         return f"holds a {type(cell).__name__} where a number is needed"
     if value - value != 0.0:
         return f"holds {_shown(str(cell).strip())}: NaN and infinity are not usable numbers"
+    if abs(value) > LARGEST_VALUE:
+        return (f"holds {_shown(str(cell).strip())}, too large to compute with (its square is "
+                "beyond the range of floating-point numbers; at most 1e154)")
     return value
 
 
@@ -263,6 +288,11 @@ def _date_period(cell: Any) -> tuple[str, int] | str:
     text = cell.strip()
     if not text:
         return "is empty"
+    if _WEEK_DATE.match(text):
+        return (f"holds {_shown(text)}, an ISO week date; write the calendar date of the period "
+                "(e.g. 2024-01-07)")
+    if not _CALENDAR_DATE.match(text[:10]):
+        return f"holds {_shown(text)}, which is not an ISO 8601 date (write e.g. 2024-01-07)"
     try:
         return text, date_period_key(date.fromisoformat(text))
     except ValueError:
@@ -348,8 +378,31 @@ def _csv_cells(text: str) -> Callable[[set[int]], dict[int, tuple[str, ...]]]:
     return cells_at
 
 
+def _utf16(data: bytes) -> str | None:
+    """"UTF-16LE" or "UTF-16BE" when the bytes look like UTF-16 text, else None."""
+    if data.startswith(b"\xff\xfe"):
+        return "UTF-16LE"
+    if data.startswith(b"\xfe\xff"):
+        return "UTF-16BE"
+    head = data[:200]
+    if len(head) >= 8:
+        odd, even = head[1::2], head[0::2]
+        if odd.count(0) >= 0.9 * len(odd) and even.count(0) == 0:
+            return "UTF-16LE"
+        if even.count(0) >= 0.9 * len(even) and odd.count(0) == 0:
+            return "UTF-16BE"
+    return None
+
+
 def parse_csv(data: bytes, plan: ColumnPlan) -> ParsedFile:
     """A UTF-8 CSV with a header: blank lines skipped, each other line a row to check."""
+    if data.startswith((b"\xff\xfe\x00\x00", b"\x00\x00\xfe\xff")):
+        return _refused("the file is UTF-32 text, not UTF-8; save or export the file as UTF-8")
+    encoding = _utf16(data)
+    if encoding is not None:
+        return _refused(
+            f"the file is {encoding} text (UTF-16), not UTF-8; save or export the file as UTF-8"
+        )
     nul = data.find(b"\x00")
     if nul >= 0:
         return _refused(
