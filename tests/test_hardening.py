@@ -179,6 +179,16 @@ def test_one_database_has_one_lock_whatever_path_reaches_it(
         assert main(["pass", "-c", str(other), "--as-of", delivered(13).isoformat()]) == 2
     line = one_error_line(capsys.readouterr().err)
     assert "is in use by process" in line
+    # The same file under a second name (a symbolic link to it): before the fix its lock file
+    # was another file, and two writers ran at once. Now such an alias is refused outright.
+    (workspace.database.parent / "alias.sqlite").symlink_to(workspace.database)
+    aliased = tmp_path / "ws" / "aliased.yaml"
+    aliased.write_text(workspace.config_path.read_text().replace(
+        "database: state/plumbline.sqlite", "database: state/alias.sqlite"))
+    with DatabaseLock(workspace.database):
+        assert main(["pass", "-c", str(aliased), "--as-of", delivered(13).isoformat()]) == 2
+    assert "is a symbolic link" in one_error_line(capsys.readouterr().err)
+    assert workspace.query("SELECT count(*) FROM passes")[0][0] == 1
     assert main(["pass", "-c", str(other), "--as-of", delivered(13).isoformat()]) == 0
 
 
@@ -819,3 +829,42 @@ def test_week_and_compact_periods_are_refused(
     assert list(reasons) == [2] and phrase in reasons[2]
     stored = workspace.query("SELECT count(*) FROM observations WHERE period = '2024-04-07'")
     assert stored == [(0,)]  # never read as the Monday or the day it might mean
+
+
+def test_the_daemon_logs_what_is_stuck_at_warning_level_with_controls_escaped(
+    tmp_path: Path,
+) -> None:
+    closed = free_port()  # nothing listens here: every send fails
+    workspace = seeded(tmp_path, extra=email_yaml(closed, timeout="1s"))
+    # A reports folder that cannot be made: a plain file stands where its parent should be,
+    # and its name carries an escape sequence.
+    blocker = tmp_path / "reports\x1b[31m"
+    blocker.write_text("not a folder")
+    text = workspace.config_path.read_text().replace("scan: 30s", "scan: 1s").replace(
+        "html_dir: reports", 'html_dir: "reports\\e[31m/pages"')
+    workspace.config_path.write_text(text)
+    workspace.drop("depots", "week_13.csv", BAD_WEEK)
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    daemon = subprocess.Popen(
+        [sys.executable, "-m", "monitor", "run", "-c", str(workspace.config_path)],
+        env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+    )
+    try:
+        deadline = time.monotonic() + 90
+        while not workspace.query("SELECT count(*) FROM outbox WHERE attempts > 0")[0][0]:
+            assert time.monotonic() < deadline and daemon.poll() is None
+            time.sleep(0.2)
+        time.sleep(1.0)
+        daemon.send_signal(signal.SIGTERM)
+        _, err = daemon.communicate(timeout=30)
+    finally:
+        if daemon.poll() is None:
+            daemon.kill()
+            daemon.wait()
+    assert daemon.returncode == 0
+    log = err.decode()
+    warnings = [line for line in log.splitlines() if " warning " in line]
+    assert any(" warning pass: pass 2 could not do everything: notify:" in line
+               for line in warnings), log
+    assert any(" warning outbox: 1 message(s) not sent yet" in line for line in warnings), log
+    assert "\x1b" not in log and "reports\\x1b[31m" in log
