@@ -188,7 +188,7 @@ def _check_email(config: PlumblineConfig, report: CheckReport) -> None:
         report.warn(
             "notify.email: security is none but a login is configured; Plumbline never sends a "
             "password over an unencrypted connection, so every send will fail: use starttls or "
-            "tls, or remove username_env and password_env"
+            "tls, or remove the login settings"
         )
 
 
