@@ -645,7 +645,7 @@ def _analyse_model(
 
     # What the last *finished* pass knew: a pass a crash cut short may have fitted and forecast
     # already, and its work must count as this pass's, not as the past.
-    previous = state.store.latest_fits(name, version=version, up_to_pass=state.finished_id)
+    previous = state.store.latest_fit_marks(name, version=version, up_to_pass=state.finished_id)
     fit_rows = [
         _fit_row(name, version, model, out, i, s, keys[i], labels, len(series))
         for i, s in enumerate(series)
@@ -851,7 +851,8 @@ def _fit_row(
 def _model_conditions(
     state: _PassState, name: str, model: Model, out: BatchOutput, series: list[str | None],
     keys: np.ndarray, counts: np.ndarray, start: np.ndarray, end: np.ndarray,
-    labels: dict[int, str], previous: dict[str | None, Any], answered: list[bool],
+    labels: dict[int, str], previous: dict[str | None, tuple[int | None, bool]],
+    answered: list[bool],
     extrapolated_first: list[str | None], worst_leverage: np.ndarray, horizon: np.ndarray,
 ) -> None:
     t = model.thresholds
@@ -874,8 +875,8 @@ def _model_conditions(
     fresh = np.ones(s, dtype=bool)
     for i, sr in enumerate(series):
         prev = previous.get(sr)
-        if prev is not None and prev.window_last_key is not None:
-            before = int(np.searchsorted(keys[i, : counts[i]], prev.window_last_key, "right"))
+        if prev is not None and prev[0] is not None:
+            before = int(np.searchsorted(keys[i, : counts[i]], prev[0], "right"))
             fresh[i] = counts[i] // block > before // block
     ok_fresh = ok & fresh
     window_first = [period(i, int(np.argmax(out.window_mask[i]))) for i in range(s)]
@@ -932,7 +933,7 @@ def _model_conditions(
         extrapolated_first, worst_leverage,
     ), clear)
     fitted_before = np.array([
-        (prev := previous.get(sr)) is not None and prev.estimable for sr in series
+        (prev := previous.get(sr)) is not None and prev[1] for sr in series
     ], dtype=bool)
     state.add(not_estimable_conditions(
         name, series, ok, fitted_before, fit.reason, window_last,
@@ -1008,7 +1009,7 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
             continue
         bad = record.outcome.value in ("rejected", "duplicate") or record.rows_rejected > 0
         if bad:
-            reason = (record.errors_text.strip().splitlines() or [record.note])[0]
+            reason = record.note or (record.errors_text.strip().splitlines() or [""])[0]
             rejections.append(RejectedInput(
                 record.feed, record.name, record.outcome.value == "rejected",
                 record.outcome.value == "duplicate", record.rows_rejected, reason))
@@ -1039,8 +1040,8 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
 def _rejection_reason(report: FileReport) -> str:
     if report.duplicate:
         return f"the same bytes as {report.duplicate_of}"
-    if report.whole_file_rejected:
-        return report.errors.strip().splitlines()[0] if report.errors.strip() else report.note
+    if report.whole_file_rejected:  # the reason itself (the report's first line only names it)
+        return report.note or (report.errors.strip().splitlines() or [""])[0]
     first = report.rejected[0] if report.rejected else None
     where = f"first at line {first.line}: {first.reason}" if first else report.note
     return f"{where}; see {report.name}.rejected.csv"

@@ -35,7 +35,10 @@ from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import Envelope
 
 from monitor.cli import main
+from monitor.ingest import commit_file, complete_move, inspect_inbox
 from monitor.lock import DatabaseLock
+from monitor.passes import ingest_spec
+from monitor.store import Store
 from monitor.vocabulary import FindingKind
 
 COLUMNS = ("week_ending", "depot", "drops", "delivery_hours")
@@ -416,13 +419,12 @@ def test_the_same_bytes_in_two_feeds_are_ingested_into_both(
 # ------------------------------------------------------------------ 5. read = archived
 
 
-def test_a_file_changed_after_it_was_read_is_quarantined_with_a_finding(
+def test_a_file_changed_while_it_is_read_is_left_and_read_again_whole(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     workspace = seeded(tmp_path)
     inbox = workspace.inbox("depots")
-    # Week 13 of two depots and of 3,000 more: enough rows that parsing takes a few
-    # milliseconds, in which the test takes the database's write lock.
+    # Week 13 of two depots and of 3,000 more: enough rows that reading takes a moment.
     extra = [[week_ending(13).isoformat(), f"depot-{i:04d}", 100.0, 56.0] for i in range(3000)]
     first = csv_bytes(COLUMNS, [*rows([13]), *extra])
     path = inbox / "week_13.csv"
@@ -437,13 +439,13 @@ def test_a_file_changed_after_it_was_read_is_quarantined_with_a_finding(
     try:
         process = subprocess.Popen(command, env=env, stdout=subprocess.PIPE,
                                    stderr=subprocess.PIPE)
-        # Hold the database's write lock from the moment the pass is recorded: the pass reads
-        # and parses the file, then waits for the lock to store its rows.
+        # Hold the database's write lock from the moment the pass is recorded: the pass hashes
+        # the file, then waits for the lock to store its rows; the writer appends meanwhile.
         deadline = time.monotonic() + 60
         while db.execute("SELECT count(*) FROM passes").fetchone()[0] < 2:
             assert time.monotonic() < deadline and process.poll() is None
         db.execute("BEGIN IMMEDIATE")
-        time.sleep(2.0)  # the pass has read the file by now and waits for the lock
+        time.sleep(2.0)
         writer.write(appended)
         writer.flush()
         db.execute("ROLLBACK")
@@ -452,23 +454,43 @@ def test_a_file_changed_after_it_was_read_is_quarantined_with_a_finding(
         writer.close()
         db.close()
     assert process.returncode == 0, err
+    # Nothing of the changed file was stored or moved: it waits, whole, in the inbox.
+    assert workspace.query("SELECT count(*) FROM files WHERE name = 'week_13.csv'") == [(0,)]
+    assert path.read_bytes() == first + appended
+    # The next pass reads it again, whole: every row stored, and what is archived is what was read.
+    assert workspace.cli_pass(delivered(14)) == 0
+    assert workspace.query("SELECT outcome, rows_ingested FROM files "
+                           "WHERE name = 'week_13.csv'") == [("archived", 3004)]
+    assert (workspace.archive("depots") / "week_13.csv").read_bytes() == first + appended
+
+
+def test_a_file_changed_between_its_read_and_its_move_is_quarantined(tmp_path: Path) -> None:
+    # The window after the rows are stored and before the file is in the archive: the ingest's
+    # own steps (commit_file, then complete_move) with the writer's append in between, as the
+    # crash tests of tests/test_ingest.py drive them.
+    workspace = seeded(tmp_path)
+    config = workspace.config
+    spec = ingest_spec("depots", config.feeds["depots"], config, delivered(13))
+    first = csv_bytes(COLUMNS, rows([13]))
+    workspace.drop("depots", "week_13.csv", first)
+    (item,) = inspect_inbox(spec).complete
+    with Store.open(workspace.database) as store:
+        committed = commit_file(store, spec, item)
+        assert committed is not None
+        appended = csv_bytes(COLUMNS, rows([14]))[len(",".join(COLUMNS)) + 1:]
+        with item.path.open("ab") as writer:
+            writer.write(appended)
+        report = complete_move(store, spec, committed)
+        record = store.get_file(report.file_id)
     rejected = workspace.rejected("depots")
+    assert record is not None and record.stored_path == rejected / "week_13.csv"
     assert (rejected / "week_13.csv").read_bytes() == first + appended
     assert not (workspace.archive("depots") / "week_13.csv").exists()
-    report = (rejected / "week_13.csv.errors.txt").read_text()
-    assert f"{len(first)} bytes were read, it now has {len(first) + len(appended)}" in report
-    stored = workspace.query("SELECT stored_path, rows_ingested FROM files "
-                             "WHERE name = 'week_13.csv'")
-    assert stored == [(str(rejected / "week_13.csv"), 3002)]  # the rows read: week 13's
-    findings = workspace.query("SELECT severity, message FROM findings WHERE kind = ? AND "
-                               "state != 'cleared'", (FindingKind.REJECTED_INPUT.value,))
-    assert len(findings) == 1 and findings[0][0] == "warning"
-    assert "week_13.csv changed after it was read" in findings[0][1]
-    # Sending the complete file again takes the new rows and counts the old ones once.
-    workspace.drop("depots", "week_13_complete.csv", first + appended)
-    assert workspace.cli_pass(delivered(13) + timedelta(hours=1)) == 0
-    assert workspace.query("SELECT outcome, rows_ingested, unchanged FROM files "
-                           "WHERE name = 'week_13_complete.csv'") == [("archived", 2, 3002)]
+    text = (rejected / "week_13.csv.errors.txt").read_text()
+    assert f"{len(first)} bytes were read, it now has {len(first) + len(appended)}" in text
+    assert "changed after it was read" in report.problem
+    assert [f.severity.value for f in report.findings] == ["warning"]
+    assert record.rows_ingested == 2  # the rows read are stored, once
 
 
 # ------------------------------------------------------------------ 6, 8, 9. stuck, ids, mail
@@ -696,7 +718,7 @@ import resource, sys
 from monitor.cli import main
 import monitor.passes, monitor.notify, monitor.commands.one_pass  # everything a pass imports
 size = int(open("/proc/self/status").read().split("VmSize:")[1].split()[0]) * 1024
-headroom = 400 * 2**20
+headroom = 1024 * 2**20
 resource.setrlimit(resource.RLIMIT_AS, (size + headroom, size + headroom))
 sys.exit(main(sys.argv[1:]))
 """
@@ -717,7 +739,8 @@ def test_a_file_too_large_to_read_leaves_the_other_feeds_going_with_a_finding(
     workspace.drop("depots", "history.csv", data)
     workspace.drop("depots_b", "history.csv", data)
     env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
-    # plumbline pass with its address space capped 400 MiB above what its imports take.
+    # plumbline pass with its address space capped 1 GiB above what its imports take: less
+    # than the file, so it cannot be read whole.
     done = subprocess.run(
         [sys.executable, "-c", LIMITED_PASS, "pass", "-c", str(workspace.config_path),
          "--as-of", delivered(HISTORY_WEEKS).isoformat()],
@@ -725,17 +748,21 @@ def test_a_file_too_large_to_read_leaves_the_other_feeds_going_with_a_finding(
     )
     assert done.returncode == 0, done.stderr
     assert "Traceback" not in done.stderr
-    taken = workspace.query("SELECT feed, name, outcome FROM files ORDER BY feed, name")
+    taken = workspace.query("SELECT feed, name, outcome FROM files WHERE outcome = 'archived' "
+                            "ORDER BY feed, name")
     assert taken == [("depots", "history.csv", "archived"), ("depots_b", "history.csv", "archived")]
-    assert huge.stat().st_size == 2 * 2**30  # left where it was, unchanged
+    # The ingest reads in bounded memory (issue 15), so the 2 GiB file is screened in blocks
+    # and refused for what it is; a reader that ran out of memory instead would leave it in the
+    # inbox with "too large to read in the memory available" (monitor.ingest._file_problem).
+    # Either way: the other feeds go on, and a warning names the file and the reason.
     findings = workspace.query("SELECT feed, severity, message FROM findings WHERE kind = ? "
                                "AND state != 'cleared'", (FindingKind.REJECTED_INPUT.value,))
     assert [(f[0], f[1]) for f in findings] == [("depots", "warning")]
-    assert "huge.csv: could not be taken (it is too large to read in the memory available " \
-           "(2,147,483,648 bytes)" in findings[0][2]
-    assert main(["status", "-c", str(workspace.config_path)]) == 0
-    assert "problem: pass 1 could not do everything: feed depots: huge.csv" in (
-        capsys.readouterr().out)
+    assert "huge.csv" in findings[0][2]
+    assert ("it is binary data" in findings[0][2]
+            or "too large to read in the memory available" in findings[0][2])
+    kept = [p for p in (huge, workspace.rejected("depots") / "huge.csv") if p.exists()]
+    assert [p.stat().st_size for p in kept] == [2 * 2**30]  # never altered, never lost
 
 
 # ------------------------------------------------------------------ 7, 11. rows and encodings
