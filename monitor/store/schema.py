@@ -262,12 +262,21 @@ _FINDINGS_DIGESTS_OUTBOX = (
     "CREATE INDEX outbox_due ON outbox(next_attempt_at) WHERE sent_at IS NULL",
 )
 
+# The calibrated interval issued beside the model's own (``interval_method: calibrated``): its
+# bounds and the factor q that scaled the model's half-width (monitor/stats/conformal.py). NULL
+# for a model that does not issue one and during a series' warm-up.
+_CALIBRATED_INTERVALS = (
+    "ALTER TABLE forecasts ADD COLUMN calibrated_lower REAL",
+    "ALTER TABLE forecasts ADD COLUMN calibrated_upper REAL",
+    "ALTER TABLE forecasts ADD COLUMN calibrated_factor REAL",
+)
+
 _PER_FEED_DUPLICATES_AND_IDENTITY = (
     # Duplicates are judged per feed: the same bytes dropped into two feeds are two deliveries.
     "DROP INDEX files_ingested_sha256",
     "CREATE UNIQUE INDEX files_ingested_sha256 ON files(feed, sha256) WHERE outcome = 'archived'",
-    # A random identity made when the database is created (and anew in a backup copy), mixed
-    # into every Message-ID, so two instances, a restore or a rebuilt database never reuse one.
+    # A random identity made when the database is created, mixed into every Message-ID with the
+    # moment of composing, so two instances, a restore or a rebuilt database never reuse one.
     """CREATE TABLE database_identity (
         id INTEGER PRIMARY KEY CHECK (id = 1),
         token TEXT NOT NULL
@@ -279,7 +288,8 @@ MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "passes, files, rejected rows, series, observations", _FILES_AND_OBSERVATIONS),
     Migration(2, "model versions, fits, forecasts, outcomes, baselines", _MODELS_FITS_FORECASTS),
     Migration(3, "findings, digests, the outbox", _FINDINGS_DIGESTS_OUTBOX),
-    Migration(4, "duplicate files per feed; the database's random identity",
+    Migration(4, "calibrated intervals beside forecasts", _CALIBRATED_INTERVALS),
+    Migration(5, "duplicate files per feed; the database's random identity",
               _PER_FEED_DUPLICATES_AND_IDENTITY),
 )
 SCHEMA_VERSION = MIGRATIONS[-1].version
