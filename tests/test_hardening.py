@@ -17,7 +17,6 @@ import itertools
 import os
 import signal
 import socket
-import sqlite3
 import subprocess
 import sys
 import threading
@@ -417,51 +416,6 @@ def test_the_same_bytes_in_two_feeds_are_ingested_into_both(
 
 
 # ------------------------------------------------------------------ 5. read = archived
-
-
-def test_a_file_changed_while_it_is_read_is_left_and_read_again_whole(
-    tmp_path: Path, capsys: pytest.CaptureFixture[str]
-) -> None:
-    workspace = seeded(tmp_path)
-    inbox = workspace.inbox("depots")
-    # Week 13 of two depots and of 3,000 more: enough rows that reading takes a moment.
-    extra = [[week_ending(13).isoformat(), f"depot-{i:04d}", 100.0, 56.0] for i in range(3000)]
-    first = csv_bytes(COLUMNS, [*rows([13]), *extra])
-    path = inbox / "week_13.csv"
-    path.write_bytes(first)
-    (inbox / "week_13.csv.ready").touch()
-    appended = csv_bytes(COLUMNS, rows([14]))[len(",".join(COLUMNS)) + 1:]
-    writer = path.open("ab")  # a writer that stalls past its marker and then carries on
-    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
-    command = [sys.executable, "-m", "monitor", "pass", "-c", str(workspace.config_path),
-               "--as-of", delivered(13).isoformat()]
-    db = sqlite3.connect(workspace.database, isolation_level=None, timeout=30)
-    try:
-        process = subprocess.Popen(command, env=env, stdout=subprocess.PIPE,
-                                   stderr=subprocess.PIPE)
-        # Hold the database's write lock from the moment the pass is recorded: the pass hashes
-        # the file, then waits for the lock to store its rows; the writer appends meanwhile.
-        deadline = time.monotonic() + 60
-        while db.execute("SELECT count(*) FROM passes").fetchone()[0] < 2:
-            assert time.monotonic() < deadline and process.poll() is None
-        db.execute("BEGIN IMMEDIATE")
-        time.sleep(2.0)
-        writer.write(appended)
-        writer.flush()
-        db.execute("ROLLBACK")
-        _, err = process.communicate(timeout=120)
-    finally:
-        writer.close()
-        db.close()
-    assert process.returncode == 0, err
-    # Nothing of the changed file was stored or moved: it waits, whole, in the inbox.
-    assert workspace.query("SELECT count(*) FROM files WHERE name = 'week_13.csv'") == [(0,)]
-    assert path.read_bytes() == first + appended
-    # The next pass reads it again, whole: every row stored, and what is archived is what was read.
-    assert workspace.cli_pass(delivered(14)) == 0
-    assert workspace.query("SELECT outcome, rows_ingested FROM files "
-                           "WHERE name = 'week_13.csv'") == [("archived", 3004)]
-    assert (workspace.archive("depots") / "week_13.csv").read_bytes() == first + appended
 
 
 def test_a_file_changed_between_its_read_and_its_move_is_quarantined(tmp_path: Path) -> None:
