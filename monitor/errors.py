@@ -6,6 +6,8 @@
     ├── ConfigError                the YAML config is invalid (exit 2)
     ├── ClockRefusedError          a pass's business clock is before the latest pass's (exit 2)
     ├── DatabaseLockedError        another process holds the database's writer lock (exit 2)
+    ├── ComputeUnavailableError    the Dask scheduler of ``compute:`` cannot be reached (exit 2)
+    ├── ComputeLostError           the cluster lost a batch mid-pass; the pass stopped (exit 2)
     └── DatabaseFaultError         the database file or its disk cannot be used: a garbled or
                                    truncated file, a full disk, a read-only mount (exit 3)
 
@@ -41,6 +43,17 @@ class DatabaseLockedError(PlumblineError):
     """Another process holds the advisory writer lock of the database."""
 
 
+class ComputeUnavailableError(PlumblineError):
+    """The analysis cluster named by ``compute:`` cannot be reached or started; raised before a
+    pass records anything."""
+
+
+class ComputeLostError(PlumblineError):
+    """The analysis cluster lost work it could not run again (workers died too often, or the
+    scheduler went away). The pass is recorded as stopped early, its mark unmoved, so the next
+    pass redoes it."""
+
+
 class DatabaseFaultError(PlumblineError):
     """The database cannot be read or written for a reason outside Plumbline: its file is
     damaged (a garbled or truncated header), its disk is full, or it sits on a read-only mount.
@@ -51,6 +64,8 @@ class DatabaseFaultError(PlumblineError):
 
 __all__ = [
     "ClockRefusedError",
+    "ComputeLostError",
+    "ComputeUnavailableError",
     "ConfigError",
     "DatabaseFaultError",
     "DatabaseLockedError",
