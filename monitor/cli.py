@@ -26,6 +26,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "one_pass",
     "run",
     "status",
+    "note",
     "ack",
     "rebaseline",
     "check",
