@@ -103,12 +103,20 @@ def _finite(value: float) -> bool:
     return not math.isnan(value)
 
 
-def _bh_reject(p_values: NDArray[np.float64], thresholds: DecisionThresholds) -> NDArray[np.bool_]:
-    """Each test at level ``significance``, and the family controlled by Benjamini–Hochberg at
-    ``fdr``: a series is flagged only when both reject. (BH alone would flag a lone series at
-    p <= fdr, looser than the configured test level.)"""
+def reject(
+    kind: FindingKind, p_values: NDArray[np.float64], thresholds: DecisionThresholds
+) -> NDArray[np.bool_]:
+    """Which tests of ``kind`` reject, as its declaration's ``family`` says (NaN = not tested).
+
+    Every test runs at level ``significance``; for a controlled family (``series``, ``slopes``)
+    the p-values of the model are also put through Benjamini–Hochberg (1995) at ``fdr`` and a
+    test rejects only when both do. (BH alone would flag a lone series at p <= fdr, looser than
+    the configured test level.)
+    """
     with np.errstate(invalid="ignore"):
         significant = p_values < thresholds.significance
+    if not kind.declaration.family.controlled:
+        return np.asarray(significant, dtype=bool)
     return benjamini_hochberg(p_values, thresholds.fdr).reject & significant
 
 
@@ -131,15 +139,17 @@ def coverage_conditions(
     """
     scored = np.asarray(audit.scored)
     p = np.where(scored >= thresholds.min_scored, audit.kupiec_p_value, np.nan)
-    reject = _bh_reject(p, thresholds)
+    rejected = reject(FindingKind.COVERAGE, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not _finite(float(p[i])):
             continue
         hit_rate = float(audit.hit_rate[i])
-        holds = bool(reject[i]) and hit_rate < audit.nominal
+        holds = bool(rejected[i]) and hit_rate < audit.nominal
         zone = audit.zone[i]
-        severity = Severity.CRITICAL if zone is CoverageZone.RED else Severity.WARNING
+        declared = FindingKind.COVERAGE.declaration
+        severity = (declared.raised_to if zone is CoverageZone.RED and declared.raised_to
+                    else declared.severity)
         out.append(Condition(
             FindingKey(FindingKind.COVERAGE, model, name, None), holds, severity,
             hit_rate, float(p[i]), since[i],
@@ -163,14 +173,15 @@ def clustered_miss_conditions(
     """``clustered_misses``: Christoffersen's (1998) independence test rejects after BH."""
     scored = np.asarray(audit.scored)
     p = np.where(scored >= thresholds.min_scored, audit.independence_p_value, np.nan)
-    reject = _bh_reject(p, thresholds)
+    rejected = reject(FindingKind.CLUSTERED_MISSES, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not _finite(float(p[i])):
             continue
         out.append(Condition(
-            FindingKey(FindingKind.CLUSTERED_MISSES, model, name, None), bool(reject[i]),
-            Severity.NOTICE, float(audit.independence_statistic[i]), float(p[i]), since[i],
+            FindingKey(FindingKind.CLUSTERED_MISSES, model, name, None), bool(rejected[i]),
+            FindingKind.CLUSTERED_MISSES.declaration.severity,
+            float(audit.independence_statistic[i]), float(p[i]), since[i],
             f"Misses{_series_label(name)} come in runs rather than one at a time "
             f"(independence p {format_p_value(float(p[i]))}): a miss makes the next one likelier.",
             "Look for autocorrelated errors or a lagging predictor; consider adding last "
@@ -222,8 +233,8 @@ def slope_shift_conditions(
     after_break = held & ~np.isnan(p_break).all(axis=1)
     p_block = np.where(after_break[:, None], np.nan, p)
     p_after = np.where(after_break[:, None], p_break, np.nan)
-    reject = (_bh_reject(p_block.ravel(), thresholds).reshape(shape)
-              | _bh_reject(p_after.ravel(), thresholds).reshape(shape))
+    rejected = (reject(FindingKind.SLOPE_SHIFT, p_block.ravel(), thresholds).reshape(shape)
+                | reject(FindingKind.SLOPE_SHIFT, p_after.ravel(), thresholds).reshape(shape))
     out: list[Condition] = []
     for i, name in enumerate(series):
         use_break = bool(after_break[i])
@@ -232,7 +243,7 @@ def slope_shift_conditions(
         if np.isnan(p_i).all():
             continue
         j = int(np.nanargmin(p_i))
-        holds = bool(reject[i].any())
+        holds = bool(rejected[i].any())
         t_value, p_j = float(stat_i[j]), float(p_i[j])
         if use_break:
             first = break_since[i] if break_since is not None else None
@@ -249,8 +260,8 @@ def slope_shift_conditions(
                 f"(p {format_p_value(p_j)})."
             )
         out.append(Condition(
-            FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds, Severity.WARNING,
-            t_value, p_j, first, message,
+            FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds,
+            FindingKind.SLOPE_SHIFT.declaration.severity, t_value, p_j, first, message,
             "Confirm whether the process changed; if it did, rebaseline the model "
             "(plumbline rebaseline) so forecasts use the new relationship.",
         ))
@@ -279,7 +290,7 @@ def structural_break_conditions(
     evaluated_a = np.asarray(evaluated, dtype=bool)
     p = np.where(evaluated_a, np.asarray(p_value, dtype=float), np.nan)
     ratio_a = np.asarray(ratio, dtype=float)
-    reject = _bh_reject(p, thresholds)
+    rejected = reject(FindingKind.STRUCTURAL_BREAK, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not evaluated_a[i]:
@@ -287,8 +298,9 @@ def structural_break_conditions(
         start = (f"; the new regime is estimated to start at {break_period[i]}"
                  if break_period[i] is not None else "")
         out.append(Condition(
-            FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(reject[i]),
-            Severity.CRITICAL, float(ratio_a[i]), float(p[i]), break_period[i],
+            FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(rejected[i]),
+            FindingKind.STRUCTURAL_BREAK.declaration.severity, float(ratio_a[i]), float(p[i]),
+            break_period[i],
             f"Since the baseline the forecast errors{_series_label(name)} have drifted past the "
             f"monitoring boundary ({float(ratio_a[i]):.2f} times the boundary, p "
             f"{format_p_value(float(p[i]))} over the monitoring horizon, controlled across the "
@@ -332,7 +344,8 @@ def significance_conditions(
         j_lost = int(np.argmax(lost)) if lost.any() else int(np.argmax(valid))
         out.append(Condition(
             FindingKey(FindingKind.SIGNIFICANCE_LOST, model, name, None), bool(lost.any()),
-            Severity.WARNING, float(b1[i, j_lost]), float(p1[i, j_lost]), since[i],
+            FindingKind.SIGNIFICANCE_LOST.declaration.severity,
+            float(b1[i, j_lost]), float(p1[i, j_lost]), since[i],
             f"The slope on {slopes[j_lost]}{_series_label(name)} was clearly non-zero at the "
             f"baseline but its current interval includes zero (p "
             f"{format_p_value(float(p1[i, j_lost]))}).",
@@ -342,7 +355,8 @@ def significance_conditions(
         j_flip = int(np.argmax(flip)) if flip.any() else j_lost
         out.append(Condition(
             FindingKey(FindingKind.SIGN_FLIP, model, name, None), bool(flip.any()),
-            Severity.CRITICAL, float(b1[i, j_flip]), float(p1[i, j_flip]), since[i],
+            FindingKind.SIGN_FLIP.declaration.severity,
+            float(b1[i, j_flip]), float(p1[i, j_flip]), since[i],
             f"The slope on {slopes[j_flip]}{_series_label(name)} is now significant with the "
             f"opposite sign to the baseline's ({float(b0[i, j_flip]):.4g} then, "
             f"{float(b1[i, j_flip]):.4g} now).",
@@ -372,7 +386,7 @@ def weak_fit_conditions(
         base_text = "" if math.isnan(r2_base[i]) else f" (baseline {r2_base[i]:.2f})"
         out.append(Condition(
             FindingKey(FindingKind.WEAK_FIT, model, name, None), bool(low or dropped),
-            Severity.NOTICE, float(r2[i]), None, since[i],
+            FindingKind.WEAK_FIT.declaration.severity, float(r2[i]), None, since[i],
             f"The current fit{_series_label(name)} explains less of the response: R² "
             f"{r2[i]:.2f}{base_text}.",
             "Intervals are wider and forecasts less informative; look for a missing predictor "
@@ -399,7 +413,8 @@ def extrapolation_conditions(
             continue
         out.append(Condition(
             FindingKey(FindingKind.EXTRAPOLATION, model, name, None), bool(flagged_a[i]),
-            Severity.NOTICE, None if math.isnan(lev[i]) else float(lev[i]), None,
+            FindingKind.EXTRAPOLATION.declaration.severity,
+            None if math.isnan(lev[i]) else float(lev[i]), None,
             first_period[i],
             f"A plan row{_series_label(name)} asks for a forecast outside the range of "
             "predictor values the model was fitted on; the straight line is an assumption "
@@ -426,7 +441,7 @@ def autocorrelation_conditions(
         direction = "positively" if dw[i] < 2 else "negatively"
         out.append(Condition(
             FindingKey(FindingKind.AUTOCORRELATION, model, name, None), bool(holds),
-            Severity.NOTICE, float(dw[i]), None, since[i],
+            FindingKind.AUTOCORRELATION.declaration.severity, float(dw[i]), None, since[i],
             f"Consecutive errors{_series_label(name)} look {direction} correlated "
             f"(Durbin–Watson {dw[i]:.2f}); the intervals assume independent errors and may be "
             "too narrow.",
@@ -446,14 +461,15 @@ def heteroscedasticity_conditions(
     """``heteroscedasticity``: Breusch–Pagan (Koenker) rejects after BH."""
     stat = np.asarray(statistic, dtype=float)
     p = np.asarray(p_value, dtype=float)
-    reject = _bh_reject(p, thresholds)
+    rejected = reject(FindingKind.HETEROSCEDASTICITY, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if math.isnan(p[i]):
             continue
         out.append(Condition(
-            FindingKey(FindingKind.HETEROSCEDASTICITY, model, name, None), bool(reject[i]),
-            Severity.NOTICE, float(stat[i]), float(p[i]), since[i],
+            FindingKey(FindingKind.HETEROSCEDASTICITY, model, name, None), bool(rejected[i]),
+            FindingKind.HETEROSCEDASTICITY.declaration.severity,
+            float(stat[i]), float(p[i]), since[i],
             f"The spread of the errors{_series_label(name)} changes with the predictors "
             f"(Breusch–Pagan p {format_p_value(float(p[i]))}); one interval width does not fit "
             "all plan rows.",
@@ -480,7 +496,7 @@ def not_estimable_conditions(
             continue
         out.append(Condition(
             FindingKey(FindingKind.NOT_ESTIMABLE, model, name, None), not bool(ok[i]),
-            Severity.WARNING, None, None, since[i],
+            FindingKind.NOT_ESTIMABLE.declaration.severity, None, None, since[i],
             f"The model{_series_label(name)} can no longer be fitted: {reasons[i] or 'unknown'}. "
             "No new forecasts are issued for it.",
             "Check the feed for a predictor that stopped varying or columns that now move "
@@ -506,7 +522,8 @@ def stale_feed_condition(
     limit = cadence * STALE_CADENCES
     days = overdue.total_seconds() / 86400
     return Condition(
-        FindingKey(FindingKind.STALE_FEED, None, None, feed), overdue > limit, Severity.WARNING,
+        FindingKey(FindingKind.STALE_FEED, None, None, feed), overdue > limit,
+        FindingKind.STALE_FEED.declaration.severity,
         days, None, latest_period_text,
         f"Feed {feed} has delivered nothing newer than {latest_period_text} "
         f"({days:.0f} days before now, more than 1.5 cadences); forecasts for its models are "
@@ -527,6 +544,11 @@ class RejectedInput:
     reason: str
 
 
+def _rejected_severity(whole_file: bool) -> Severity:
+    declared = FindingKind.REJECTED_INPUT.declaration
+    return declared.raised_to if whole_file and declared.raised_to else declared.severity
+
+
 def rejected_input_conditions(
     feeds: Iterable[str], rejections: Iterable[RejectedInput]
 ) -> list[Condition]:
@@ -544,7 +566,7 @@ def rejected_input_conditions(
     for feed, items in by_feed.items():
         key = FindingKey(FindingKind.REJECTED_INPUT, None, None, feed)
         if not items:
-            out.append(Condition(key, False, Severity.NOTICE, None, None, None, "", ""))
+            out.append(Condition(key, False, _rejected_severity(False), None, None, None, "", ""))
             continue
         whole = any(item.whole_file and not item.duplicate for item in items)
         parts = []
@@ -557,7 +579,7 @@ def rejected_input_conditions(
                 parts.append(f"{item.rows_rejected} row(s) of {item.file_name} were refused "
                              f"({item.reason})")
         out.append(Condition(
-            key, True, Severity.WARNING if whole else Severity.NOTICE,
+            key, True, _rejected_severity(whole),
             float(sum(item.rows_rejected for item in items)), None, None,
             f"Feed {feed}: " + "; ".join(parts) + ". Nothing was deleted or altered.",
             "See the report beside each file in the rejected folder; fix the export and drop a "
@@ -580,6 +602,7 @@ __all__ = [
     "extrapolation_conditions",
     "heteroscedasticity_conditions",
     "not_estimable_conditions",
+    "reject",
     "rejected_input_conditions",
     "should_notify",
     "significance_conditions",

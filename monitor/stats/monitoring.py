@@ -651,8 +651,8 @@ class MonitorResult:
     including that row, 0 if none), ``break_index`` / ``break_offset`` (the estimated first row of
     the new regime as an index into the new rows and as a 1-based count of monitored periods; -1 /
     0 if no alarm), ``statistic`` (Q at the latest monitored period, signed: positive means actuals
-    above forecasts), ``boundary`` (the boundary at that period; at j = 0 when none: sqrt(nu a^2) for csw, 0 for
-    a weighted boundary with gamma > 0),
+    above forecasts), ``boundary`` (the boundary at that period; at j = 0 when none: sqrt(nu a^2)
+    for csw, 0 for a weighted boundary with gamma > 0),
     ``latest_ratio`` (|statistic| / boundary) and ``max_ratio`` (largest |Q_j| / boundary so far;
     above 1 means crossed), ``periods_monitored``, ``horizon``, ``horizon_exhausted`` (the
     horizon's periods have all been monitored: with no alarm the caller rolls the baseline forward
