@@ -22,6 +22,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "one_pass",
     "run",
     "status",
+    "note",
     "ack",
     "rebaseline",
     "check",

@@ -15,7 +15,7 @@ Two halves, both pure (no database access; the pass reads and writes through ``m
    condition that does not (clearing it after ``thresholds.clear_after`` such passes in a row, so
    a one-pass lapse does not flap). ``should_notify`` below says which of those changes go into
    the pass's message: a finding raised, a finding whose severity rose, a finding cleared;
-   never one that is acknowledged (``plumbline ack``), and never a finding that merely continues.
+   never one with an owner's note (``plumbline note``), and never a finding that merely continues.
 """
 
 from __future__ import annotations
@@ -124,6 +124,29 @@ def _series_label(series: str | None) -> str:
     return "" if series is None else f" for {series}"
 
 
+# The periods a finding compares, named by their dates as the feed writes them (first, last);
+# None where the caller does not know them.
+Span = tuple[str | None, str | None] | None
+
+
+def _span_text(span: Span) -> str:
+    """"2025-01-05 to 2025-12-28", or a description when the dates are not known."""
+    if span is None or span[0] is None or span[1] is None:
+        return "the periods monitoring started from"
+    return f"{span[0]} to {span[1]}"
+
+
+def _start_text(span: Span) -> str:
+    """"over 2025-01-05 to 2025-12-28, the periods monitoring started from"."""
+    if span is None or span[0] is None or span[1] is None:
+        return "over the periods monitoring started from"
+    return f"over {span[0]} to {span[1]}, the periods monitoring started from"
+
+
+def _spans(spans: Sequence[Span] | None, count: int) -> Sequence[Span]:
+    return [None] * count if spans is None else spans
+
+
 def coverage_conditions(
     model: str,
     series: Sequence[str | None],
@@ -169,8 +192,8 @@ def coverage_conditions(
         zone = audit.zone[i]
         own_text = (
             f"{int(audit.hits[i])} of {int(scored[i])} actuals{_series_label(name)} fell inside "
-            f"their {audit.nominal:.0%} prediction intervals (hit rate {hit_rate:.0%}, "
-            f"zone {zone.value if zone else 'n/a'})"
+            f"their {audit.nominal:.0%} prediction intervals (hit rate {hit_rate:.0%}: "
+            f"{_misses_words(zone)})"
             + (f"; Kupiec p {format_p_value(float(p[i]))}" if own_judged else "")
         )
         if calibrated is None:
@@ -222,6 +245,15 @@ def coverage_conditions(
     return out
 
 
+def _misses_words(zone: CoverageZone | None) -> str:
+    """The count of misses in words: its Basel zone (Basel Committee 1996) said plainly."""
+    return {
+        CoverageZone.GREEN: "misses about as expected",
+        CoverageZone.YELLOW: "more misses than expected",
+        CoverageZone.RED: "far more misses than expected",
+    }.get(zone, "misses not graded") if zone is not None else "misses not graded"
+
+
 def clustered_miss_conditions(
     model: str,
     series: Sequence[str | None],
@@ -263,6 +295,8 @@ def slope_shift_conditions(
     break_p_value: ArrayLike | None = None,
     break_held: ArrayLike | None = None,
     break_since: Sequence[str | None] | None = None,
+    start_spans: Sequence[Span] | None = None,
+    recent_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
     """``slope_shift``: which slope moved, from one of two tests, each family under BH.
 
@@ -276,7 +310,9 @@ def slope_shift_conditions(
     which the monitoring statistic cannot: ``looks`` is how many disjoint recent windows the
     monitoring horizon allows (see ``monitor.analysis``), each p-value is multiplied by it
     (Bonferroni over the looks) and those series form a second BH family. A series holds when
-    any of its slopes rejects; the condition reports its smallest p-value.
+    any of its slopes rejects; the condition reports its smallest p-value. ``start_spans`` and
+    ``recent_spans`` (first, last period of each series' baseline and of its latest complete
+    recent block) name the two periods the block test compared in the message.
     """
     shape = (len(series), len(slopes))
     stat = np.asarray(statistic, dtype=float).reshape(shape)
@@ -294,6 +330,7 @@ def slope_shift_conditions(
     p_after = np.where(after_break[:, None], p_break, np.nan)
     rejected = (reject(FindingKind.SLOPE_SHIFT, p_block.ravel(), thresholds).reshape(shape)
                 | reject(FindingKind.SLOPE_SHIFT, p_after.ravel(), thresholds).reshape(shape))
+    starts, recents = _spans(start_spans, len(series)), _spans(recent_spans, len(series))
     out: list[Condition] = []
     for i, name in enumerate(series):
         use_break = bool(after_break[i])
@@ -314,9 +351,10 @@ def slope_shift_conditions(
         else:
             first = since[i]
             message = (
-                f"The slope on {slopes[j]}{_series_label(name)} in the recent window differs "
-                f"from the baseline's by {abs(t_value):.1f} combined standard errors "
-                f"(p {format_p_value(p_j)})."
+                f"The slope on {slopes[j]}{_series_label(name)} over "
+                f"{_span_text(recents[i]) if recents[i] else 'the latest periods'} differs from "
+                f"its slope {_start_text(starts[i])}, by {abs(t_value):.1f} combined standard "
+                f"errors (p {format_p_value(p_j)})."
             )
         out.append(Condition(
             FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds,
@@ -335,6 +373,8 @@ def structural_break_conditions(
     break_period: Sequence[str | None],
     evaluated: ArrayLike,
     thresholds: DecisionThresholds,
+    *,
+    start_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
     """``structural_break``: the sequential monitoring statistic's p-value rejects after BH.
 
@@ -344,8 +384,10 @@ def structural_break_conditions(
     Benjamini–Hochberg at ``fdr``, and each series must also reject at ``significance`` (so a
     single-series model keeps its per-series level: an alarm exactly when the boundary is
     crossed). ``ratio`` is the statistic over its boundary (above 1 = crossed); ``break_period``
-    the estimated first period of the new regime; ``evaluated`` False for series not monitored.
+    the estimated first period of the new regime; ``evaluated`` False for series not monitored;
+    ``start_spans`` the periods monitoring started from, to name them in the message.
     """
+    starts = _spans(start_spans, len(series))
     evaluated_a = np.asarray(evaluated, dtype=bool)
     p = np.where(evaluated_a, np.asarray(p_value, dtype=float), np.nan)
     ratio_a = np.asarray(ratio, dtype=float)
@@ -354,20 +396,27 @@ def structural_break_conditions(
     for i, name in enumerate(series):
         if not evaluated_a[i]:
             continue
-        start = (f"; the new regime is estimated to start at {break_period[i]}"
+        start = (f"; the new relationship is estimated to start at {break_period[i]}"
                  if break_period[i] is not None else "")
         out.append(Condition(
             FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(rejected[i]),
             FindingKind.STRUCTURAL_BREAK.declaration.severity, float(ratio_a[i]), float(p[i]),
             break_period[i],
-            f"Since the baseline the forecast errors{_series_label(name)} have drifted past the "
-            f"monitoring boundary ({float(ratio_a[i]):.2f} times the boundary, p "
+            f"Since {_after_text(starts[i])}, the forecast errors{_series_label(name)} have "
+            f"added up past the monitoring boundary ({float(ratio_a[i]):.2f} times it; p "
             f"{format_p_value(float(p[i]))} over the monitoring horizon, controlled across the "
             f"model's series){start}.",
             "The relationship the forecasts rest on has probably changed: review recent "
             "periods, then rebaseline from the estimated break or refit with the cause.",
         ))
     return out
+
+
+def _after_text(span: Span) -> str:
+    """"the periods monitoring started from (2025-01-05 to 2025-12-28)"."""
+    if span is None or span[0] is None or span[1] is None:
+        return "the periods monitoring started from"
+    return f"the periods monitoring started from ({_span_text(span)})"
 
 
 def significance_conditions(
@@ -380,8 +429,11 @@ def significance_conditions(
     current_p_value: ArrayLike,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    *,
+    start_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
-    """``significance_lost`` and ``sign_flip`` from the baseline's and the current slopes.
+    """``significance_lost`` and ``sign_flip`` from the baseline's and the current slopes
+    (``since``: the last period of the current fit; ``start_spans``: the baseline's periods).
 
     Lost: the baseline's slope was significant and the current fit's slope interval (at the
     ``significance`` level) contains 0, i.e. its p-value is at least ``significance``. Flip: the
@@ -393,6 +445,7 @@ def significance_conditions(
     b1 = np.asarray(current_estimate, dtype=float).reshape(shape)
     p1 = np.asarray(current_p_value, dtype=float).reshape(shape)
     alpha = thresholds.significance
+    starts = _spans(start_spans, len(series))
     out: list[Condition] = []
     for i, name in enumerate(series):
         valid = ~(np.isnan(p0[i]) | np.isnan(p1[i]))
@@ -405,9 +458,9 @@ def significance_conditions(
             FindingKey(FindingKind.SIGNIFICANCE_LOST, model, name, None), bool(lost.any()),
             FindingKind.SIGNIFICANCE_LOST.declaration.severity,
             float(b1[i, j_lost]), float(p1[i, j_lost]), since[i],
-            f"The slope on {slopes[j_lost]}{_series_label(name)} was clearly non-zero at the "
-            f"baseline but its current interval includes zero (p "
-            f"{format_p_value(float(p1[i, j_lost]))}).",
+            f"The slope on {slopes[j_lost]}{_series_label(name)} was clearly non-zero "
+            f"{_start_text(starts[i])}, but in the fit to {since[i] or 'the latest period'} "
+            f"its interval includes zero (p {format_p_value(float(p1[i, j_lost]))}).",
             f"Ask whether {slopes[j_lost]} still drives the response; forecasts from this model "
             "may be no better than the average.",
         ))
@@ -416,8 +469,9 @@ def significance_conditions(
             FindingKey(FindingKind.SIGN_FLIP, model, name, None), bool(flip.any()),
             FindingKind.SIGN_FLIP.declaration.severity,
             float(b1[i, j_flip]), float(p1[i, j_flip]), since[i],
-            f"The slope on {slopes[j_flip]}{_series_label(name)} is now significant with the "
-            f"opposite sign to the baseline's ({float(b0[i, j_flip]):.4g} then, "
+            f"The slope on {slopes[j_flip]}{_series_label(name)} in the fit to "
+            f"{since[i] or 'the latest period'} is significant with the opposite sign to its "
+            f"slope {_start_text(starts[i])} ({float(b0[i, j_flip]):.4g} then, "
             f"{float(b1[i, j_flip]):.4g} now).",
             "Stop using this model's forecasts until the reversal is understood: check the data "
             "feed for a changed unit or definition, then rebaseline or redesign.",
@@ -432,8 +486,11 @@ def weak_fit_conditions(
     baseline_r_squared: ArrayLike,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    *,
+    start_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
     """``weak_fit``: R² below ``min_r2`` (when set) or fallen by more than ``max_r2_drop``."""
+    starts = _spans(start_spans, len(series))
     r2 = np.asarray(r_squared, dtype=float)
     r2_base = np.asarray(baseline_r_squared, dtype=float)
     out: list[Condition] = []
@@ -442,12 +499,13 @@ def weak_fit_conditions(
             continue
         low = thresholds.min_r2 is not None and r2[i] < thresholds.min_r2
         dropped = not math.isnan(r2_base[i]) and (r2_base[i] - r2[i]) > thresholds.max_r2_drop
-        base_text = "" if math.isnan(r2_base[i]) else f" (baseline {r2_base[i]:.2f})"
+        base_text = "" if math.isnan(r2_base[i]) else (
+            f" against {r2_base[i]:.2f} {_start_text(starts[i])}")
         out.append(Condition(
             FindingKey(FindingKind.WEAK_FIT, model, name, None), bool(low or dropped),
             FindingKind.WEAK_FIT.declaration.severity, float(r2[i]), None, since[i],
-            f"The current fit{_series_label(name)} explains less of the response: R² "
-            f"{r2[i]:.2f}{base_text}.",
+            f"The fit{_series_label(name)} to {since[i] or 'the latest period'} explains less of "
+            f"the response: R² {r2[i]:.2f}{base_text}.",
             "Intervals are wider and forecasts less informative; look for a missing predictor "
             "or a change in how the data are recorded.",
         ))
