@@ -599,8 +599,9 @@ def _analyse_model(
     # What the last *finished* pass knew: a pass a crash cut short may have fitted and forecast
     # already, and its work must count as this pass's, not as the past.
     previous = state.store.latest_fit_marks(name, version=version, up_to_pass=state.finished_id)
+    plain = _PlainFits(out)
     fit_rows = [
-        _fit_row(name, version, model, out, i, s, keys[i], labels, len(series))
+        _fit_row(name, version, model, out, i, s, keys[i], labels, len(series), plain)
         for i, s in enumerate(series)
     ]
     fit_ids = state.store.record_fits(state.pass_id, fit_rows)
@@ -714,54 +715,101 @@ def _finite(value: float) -> float | None:
     return float(value) if math.isfinite(value) else None
 
 
+class _PlainFits:
+    """The arrays :func:`_fit_row` reads, converted once to Python lists (non-finite numbers as
+    None), so that building 10,000 fit records indexes lists instead of numpy arrays."""
+
+    def __init__(self, out: BatchOutput) -> None:
+        fit, base = out.fit, out.baseline_fit
+        self.coef = _plain(fit.coef)
+        self.standard_error = _plain(fit.standard_error)
+        self.t = _plain(fit.t)
+        self.p_value = _plain(fit.p_value)
+        self.lower = _plain(fit.lower)
+        self.upper = _plain(fit.upper)
+        self.n = np.asarray(fit.n).astype(np.int64).tolist()
+        self.residual_df = np.asarray(fit.residual_df).astype(np.int64).tolist()
+        self.r_squared = _plain(fit.r_squared)
+        self.adj_r_squared = _plain(fit.adj_r_squared)
+        self.residual_std_error = _plain(fit.residual_std_error)
+        self.f_statistic = _plain(fit.f_statistic)
+        self.f_p_value = _plain(fit.f_p_value)
+        self.exact_fit = np.asarray(fit.exact_fit).astype(bool).tolist()
+        self.estimable = np.asarray(fit.estimable).astype(bool).tolist()
+        self.durbin_watson = _plain(out.durbin_watson.statistic)
+        self.bp_statistic = _plain(out.breusch_pagan.statistic)
+        self.bp_p_value = _plain(out.breusch_pagan.p_value)
+        self.jb_statistic = _plain(out.jarque_bera.statistic)
+        self.jb_p_value = _plain(out.jarque_bera.p_value)
+        self.has_baseline = np.asarray(out.has_baseline).astype(bool).tolist()
+        self.base_r_squared = _plain(base.r_squared)
+        self.base_coef = _plain(base.coef)
+        self.base_lower = _plain(base.lower)
+        self.base_upper = _plain(base.upper)
+        self.base_p_value = _plain(base.p_value)
+        self.base_estimable = np.asarray(base.estimable).astype(bool).tolist()
+
+
+def _plain(values: Any) -> list[Any]:
+    array = np.asarray(values, dtype=np.float64)
+    objects = array.astype(object)
+    objects[~np.isfinite(array)] = None
+    listed: list[Any] = objects.tolist()
+    return listed
+
+
 def _fit_row(
     name: str, version: int, model: Model, out: BatchOutput, i: int, series: str | None,
-    key_row: np.ndarray, labels: dict[int, str], series_count: int,
+    key_row: np.ndarray, labels: dict[int, str], series_count: int, plain: _PlainFits,
 ) -> FitRow:
     fit = out.fit
     rows = np.flatnonzero(out.window_mask[i])
-    estimable = bool(fit.estimable[i])
+    estimable = plain.estimable[i]
+    coef, se, t, p = plain.coef[i], plain.standard_error[i], plain.t[i], plain.p_value[i]
+    lower, upper = plain.lower[i], plain.upper[i]
     coefficients = {
         term: {
-            "estimate": _finite(fit.coef[i, j]),
-            "standard_error": _finite(fit.standard_error[i, j]),
-            "t": _finite(fit.t[i, j]),
-            "p_value": _finite(fit.p_value[i, j]),
-            "lower": _finite(fit.lower[i, j]),
-            "upper": _finite(fit.upper[i, j]),
+            "estimate": coef[j],
+            "standard_error": se[j],
+            "t": t[j],
+            "p_value": p[j],
+            "lower": lower[j],
+            "upper": upper[j],
         }
         for j, term in enumerate(fit.terms)
     } if estimable else {}
     inference = {
-        "n": int(fit.n[i]),
-        "residual_df": int(fit.residual_df[i]),
-        "r_squared": _finite(fit.r_squared[i]),
-        "adj_r_squared": _finite(fit.adj_r_squared[i]),
-        "residual_std_error": _finite(fit.residual_std_error[i]),
-        "f_statistic": _finite(fit.f_statistic[i]),
-        "f_p_value": _finite(fit.f_p_value[i]),
-        "exact_fit": bool(fit.exact_fit[i]),
+        "n": plain.n[i],
+        "residual_df": plain.residual_df[i],
+        "r_squared": plain.r_squared[i],
+        "adj_r_squared": plain.adj_r_squared[i],
+        "residual_std_error": plain.residual_std_error[i],
+        "f_statistic": plain.f_statistic[i],
+        "f_p_value": plain.f_p_value[i],
+        "exact_fit": plain.exact_fit[i],
         "level": model.level,
     } if estimable else {}
     monitoring = out.monitoring
     diagnostics: dict[str, Any] = {
-        "durbin_watson": _finite(out.durbin_watson.statistic[i]),
-        "breusch_pagan": {"statistic": _finite(out.breusch_pagan.statistic[i]),
-                          "p_value": _finite(out.breusch_pagan.p_value[i])},
-        "jarque_bera": {"statistic": _finite(out.jarque_bera.statistic[i]),
-                        "p_value": _finite(out.jarque_bera.p_value[i])},
+        "durbin_watson": plain.durbin_watson[i],
+        "breusch_pagan": {"statistic": plain.bp_statistic[i],
+                          "p_value": plain.bp_p_value[i]},
+        "jarque_bera": {"statistic": plain.jb_statistic[i],
+                        "p_value": plain.jb_p_value[i]},
     }
-    if out.has_baseline[i]:
+    if plain.has_baseline[i]:
         base = out.baseline_fit
+        b_coef, b_lower = plain.base_coef[i], plain.base_lower[i]
+        b_upper, b_p = plain.base_upper[i], plain.base_p_value[i]
         diagnostics["baseline"] = {
-            "r_squared": _finite(base.r_squared[i]),
+            "r_squared": plain.base_r_squared[i],
             "coefficients": {
-                term: {"estimate": _finite(base.coef[i, j]),
-                       "lower": _finite(base.lower[i, j]),
-                       "upper": _finite(base.upper[i, j]),
-                       "p_value": _finite(base.p_value[i, j])}
+                term: {"estimate": b_coef[j],
+                       "lower": b_lower[j],
+                       "upper": b_upper[j],
+                       "p_value": b_p[j]}
                 for j, term in enumerate(base.terms)
-            } if base.estimable[i] else {},
+            } if plain.base_estimable[i] else {},
         }
     if monitoring.monitorable[i]:
         monitored = np.flatnonzero(out.monitor_mask[i])

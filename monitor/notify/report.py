@@ -27,6 +27,7 @@ from monitor.notify.html import (
     ChartBudget,
     attention_sentence,
     coverage_sentence,
+    model_page_name,
     pass_page_name,
     render,
     series_chart_data,
@@ -76,6 +77,18 @@ class ModelSection:
     sentence: str
     zone: str | None
     charts: list[ChartView]
+
+
+class _Histories(dict[str, ModelHistory]):
+    """Models' histories, each read from the store the first time it is asked for."""
+
+    def __init__(self, store: Store, config: PlumblineConfig) -> None:
+        super().__init__()
+        self.store, self.config = store, config
+
+    def __missing__(self, name: str) -> ModelHistory:
+        history = self[name] = load_model(self.store, self.config, name)
+        return history
 
 
 def _recipients(config: PlumblineConfig, record: FindingRecord) -> set[str]:
@@ -211,12 +224,19 @@ def render_pass_report(
     rising = set(escalated) | ((wanted or set()) - raised - closed)
     rose = [f for f in (store.get_finding(i) for i in sorted(rising))
             if f is not None and f.id not in raised and f.state.value != "cleared"]
-    histories = {name: load_model(store, config, name) for name in config.models}
+    histories = _Histories(store, config)  # each model read once, when first needed
     html, _ = _render("pass.html", store, config, record, histories, new, cleared, rose,
                       email=False)
     path = write_page(folder, pass_page_name(pass_id), html)
     if write_models:
-        write_model_pages(store, config, folder, histories=histories)
+        # Only the pages of models this pass changed (fits, forecasts, outcomes, findings), and
+        # any page not written yet: the others would come out the same.
+        changed = store.models_changed_in_pass(pass_id)
+        changed |= {f.model for f in (*new, *cleared, *rose) if f.model is not None}
+        names = [name for name in config.models
+                 if name in changed or not (folder / model_page_name(name)).exists()]
+        if names:
+            write_model_pages(store, config, folder, models=names, histories=histories)
     write_index(store, config, folder)
 
     messages = []
