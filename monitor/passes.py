@@ -886,6 +886,8 @@ def _fit_row(
             "periods_monitored": int(monitoring.periods_monitored[i]),
             "horizon": int(monitoring.horizon[i]),
             "critical_value": float(monitoring.critical_value[i]),
+            "p_value": float(monitoring.p_value[i]),
+            "boundary_family": monitoring.boundary_name,
             "break_period": (
                 _label(labels, int(key_row[monitoring.break_index[i]]))
                 if monitoring.break_index[i] >= 0 else None
@@ -973,18 +975,25 @@ def _model_conditions(
         period(i, int(monitoring.break_index[i])) if monitoring.break_index[i] >= 0 else None
         for i in range(s)
     ]
-    state.add(structural_break_conditions(
-        name, series, monitoring.crossed, monitoring.max_ratio, break_period,
-        monitoring.monitorable & (monitoring.periods_monitored > 0) & ok,
+    breaks = structural_break_conditions(
+        name, series, monitoring.p_value, monitoring.max_ratio, break_period,
+        monitoring.monitorable & (monitoring.periods_monitored > 0) & ok, t,
         start_spans=start_spans,
-    ), clear)
+    )
+    state.add(breaks, clear)
+    held = {c.key.series for c in breaks if c.holds}
+    break_held = np.array([sr in held for sr in series], dtype=bool)
 
-    # slope shift over the latest complete recent block
+    # slope shift: after a structural break, before vs after the estimated break; otherwise
+    # over the latest complete recent block
     if predictors:
         looks = looks_per_horizon(int(np.median(horizon)) if s else 1, model.recent)
         state.add(slope_shift_conditions(
             name, series, predictors, out.slope_shift.t, out.slope_shift.p_value, t,
             recent_first, looks=looks, start_spans=start_spans, recent_spans=recent_spans,
+            break_statistic=nan_if(out.break_tested[:, None], out.break_shift.t, np.nan),
+            break_p_value=nan_if(out.break_tested[:, None], out.break_shift.p_value, np.nan),
+            break_held=break_held, break_since=break_period,
         ), clear)
         base = out.baseline_fit
         comparable = (out.has_baseline & base.estimable & ok_fresh)[:, None]
