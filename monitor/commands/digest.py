@@ -82,7 +82,7 @@ def publish(
     content = digest_message(digest)
     if dry_run:
         message = compose_digest(email, content, period_end=digest.period_end, created_at=now,
-                                 pass_id=digest.pass_id)
+                                 pass_id=digest.pass_id, identity=store.identity)
         done["eml"] = str(write_eml(message.body, out_dir, message.eml_name))
         return done
     queued = enqueue_digest(store, email, content, period_end=digest.period_end,
