@@ -67,12 +67,8 @@ def test_each_notice_kind_stays_rare_on_stable_series(
     assert planted.count_with(kind) <= _most(n, RATE), planted.table()
 
 
-# structural_break's cross-series control and its robustness to autocorrelation are issue 14
-# items 2 and 5 (a separate change). Until they land, its rate is checked apart, marked as an
-# expected failure that must turn into a failure of the mark (strict) once it holds.
-BREAK_PENDING = pytest.mark.xfail(
-    strict=True, reason="issue 14 items 2 and 5: structural_break is not yet controlled across "
-    "series nor robust to autocorrelated errors")
+# structural_break is also checked on its own (issue 14 items 2 and 5, now landed), so a
+# regression names the kind.
 
 
 def _alarmed_without_break(result: PanelResult) -> int:
@@ -87,7 +83,6 @@ def test_warnings_and_criticals_stay_rare_on_stable_series(planted: PanelResult)
     assert _alarmed_without_break(planted) <= _most(n, RATE), planted.table()
 
 
-@BREAK_PENDING
 def test_structural_break_stays_rare_on_stable_series(planted: PanelResult) -> None:
     n = len(planted.untouched)
     assert planted.count_with(FindingKind.STRUCTURAL_BREAK) <= _most(n, RATE), planted.table()
@@ -139,7 +134,6 @@ def test_no_warning_or_critical_above_the_rate_with_autocorrelated_errors(
     assert _alarmed_without_break(autocorrelated) <= _most(n, RATE), autocorrelated.table()
 
 
-@BREAK_PENDING
 def test_structural_break_stays_rare_with_autocorrelated_errors(
     autocorrelated: PanelResult,
 ) -> None:
