@@ -30,6 +30,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "schema",
     "backup",
     "audit",
+    "forecasts",
     "digest",
 )
 

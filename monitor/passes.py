@@ -52,6 +52,7 @@ import numpy as np
 from monitor.analysis import BatchInput, BatchOutput, analyse_batch, looks_per_horizon
 from monitor.config import Feed, Model, PlumblineConfig, model_signature, models_of_feed
 from monitor.errors import ClockRefusedError
+from monitor.exports import ExportedFile, export_forecasts
 from monitor.findings import (
     Condition,
     RejectedInput,
@@ -113,6 +114,7 @@ class PassReport:
     findings_raised: tuple[int, ...] = ()
     findings_cleared: tuple[int, ...] = ()
     findings_to_notify: tuple[int, ...] = ()
+    exports: tuple[ExportedFile, ...] = ()
     skipped: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     stopped_early: str | None = None
@@ -277,9 +279,11 @@ def _run(
         # The mark moves only once the findings of what was analysed are recorded: a pass
         # stopped before that leaves the series to be analysed again by the next one.
         new_mark = analysed_mark
+        exported = _stage(state, "export", lambda: _export(state))
     except _Stopped as stop_at:
         stopped = stop_at.stage
         raised, cleared, notify = (), (), ()
+        exported = []
     report = PassReport(
         pass_id=record.id,
         as_of=as_of,
@@ -291,6 +295,7 @@ def _run(
         findings_raised=tuple(raised),
         findings_cleared=tuple(cleared),
         findings_to_notify=tuple(notify),
+        exports=tuple(exported),
         skipped=tuple(state.skipped),
         timings=state.timings,
         stopped_early=stopped,
@@ -309,6 +314,7 @@ def _run(
         "timings": {k: round(v, 4) for k, v in state.timings.items()},
         "stopped_early": stopped,
         "notify": list(report.findings_to_notify),
+        "exports": [str(e.path) for e in exported],
         "notified": notifier is None,
     }
     store.finish_pass(record.id, finished_at=real_clock(), counts=counts)
@@ -973,6 +979,22 @@ def _rejection_reason(report: FileReport) -> str:
     first = report.rejected[0] if report.rejected else None
     where = f"first at line {first.line}: {first.reason}" if first else report.note
     return f"{where}; see {report.name}.rejected.csv"
+
+
+# --------------------------------------------------------------------------- export
+
+
+def _export(state: _PassState) -> list[ExportedFile]:
+    """Write the forecasts this pass issued (and any a crashed pass since the last finished one
+    issued) into the export folder. A folder that cannot be written is reported in ``skipped``;
+    the forecasts stay in the database and ``plumbline forecasts`` lists them."""
+    try:
+        return export_forecasts(state.store, state.config,
+                                range(state.finished_id + 1, state.pass_id + 1))
+    except OSError as exc:
+        state.skipped.append(f"export: {exc.strerror or exc} ({exc.filename}); the forecasts are "
+                             "in the database: plumbline forecasts lists them")
+        return []
 
 
 # --------------------------------------------------------------------------- 6. findings

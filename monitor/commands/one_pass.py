@@ -9,6 +9,7 @@ import argparse
 import json
 import sys
 from datetime import datetime
+from pathlib import Path
 
 from monitor.commands._common import add_config_argument, config_from, parse_as_of
 from monitor.config import PlumblineConfig
@@ -63,6 +64,8 @@ def summary(report: PassReport) -> dict[str, object]:
         "forecasts_issued": report.forecasts_issued,
         "findings_raised": list(report.findings_raised),
         "findings_cleared": list(report.findings_cleared),
+        "exports": [{"model": e.model, "pass_id": e.pass_id, "path": str(e.path),
+                     "forecasts": e.forecasts} for e in report.exports],
         "skipped": list(report.skipped),
         "stopped_early": report.stopped_early,
         "timings": {k: round(v, 3) for k, v in report.timings.items()},
@@ -82,6 +85,14 @@ def sentence(report: PassReport) -> str:
     )
 
 
+def shown_path(path: Path) -> str:
+    """A path as people type it: relative to the working folder when inside it."""
+    try:
+        return str(path.relative_to(Path.cwd()))
+    except ValueError:
+        return str(path)
+
+
 def handle(args: argparse.Namespace) -> int:
     config = config_from(args)
     as_of = parse_as_of(args.as_of, config) if args.as_of else None
@@ -91,6 +102,9 @@ def handle(args: argparse.Namespace) -> int:
         print(json.dumps(summary(report), indent=2))
     else:
         print(sentence(report))
+        for exported in report.exports:
+            print(f"  {exported.forecasts} forecast(s) of {exported.model} exported to "
+                  f"{shown_path(exported.path)}")
         for line in report.skipped:
             print(f"  skipped: {line}")
         for f in report.files:

@@ -325,6 +325,22 @@ class Notify(_Section):
         return resolve_path(value, info)
 
 
+class Export(_Section):
+    """Where each pass writes the forecasts it issued."""
+
+    folder: Path = _field("export.folder")
+    format: Literal["csv", "parquet"] = _field("export.format")
+
+    @field_validator("folder", mode="after")
+    @classmethod
+    def _resolve_folder(cls, value: Path, info: ValidationInfo) -> Path:
+        return resolve_path(value, info)
+
+    def model_folder(self, model: str) -> Path:
+        """The folder of one model's forecast files."""
+        return self.folder / model
+
+
 class PlumblineConfig(_Section):
     """The whole file. After loading, every path is absolute (resolved against the file's folder),
     every default is filled in, and each model's ``owners`` is a list (``notify.email.to`` when
@@ -338,6 +354,7 @@ class PlumblineConfig(_Section):
     models: dict[Name, Model] = _field("models")
     schedule: Schedule = _field("schedule", section=True)
     notify: Notify = _field("notify", section=True)
+    export: Export = _field("export", section=True)
 
     _source: Path | None = PrivateAttr(default=None)
 
@@ -444,6 +461,7 @@ SECTIONS: dict[str, type[BaseModel]] = {
     "schedule": Schedule,
     "notify": Notify,
     "notify.email": Email,
+    "export": Export,
 }
 
 
@@ -510,6 +528,7 @@ __all__ = [
     "SECTIONS",
     "Baseline",
     "Email",
+    "Export",
     "Feed",
     "IntervalColumns",
     "Loc",

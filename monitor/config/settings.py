@@ -60,6 +60,8 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("schedule", None, "When the daemon scans the inboxes and builds the digest.",
             computed=_SEE_BELOW),
     Setting("notify", None, "Where findings and digests go.", computed=_SEE_BELOW),
+    Setting("export", None, "Where each pass writes the forecasts it issued, for other jobs "
+            "to take.", computed=_SEE_BELOW),
     # feeds.NAME
     Setting("feeds.NAME.inbox", ..., "Folder where new data files land."),
     Setting("feeds.NAME.archive", None, "Folder that ingested files move to, byte for byte.",
@@ -146,6 +148,13 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("schedule.digest", "0 8 * * mon",
             "When the digest is built and sent: a five-field cron expression read in "
             "`timezone`, or a duration."),
+    # export
+    Setting("export.folder", "exports",
+            "Folder of the forecast files: one subfolder per model, one file per pass that "
+            "issued forecasts for it (`exports/NAME/pass-000012.csv`), written under a temporary "
+            "name starting with `.` and renamed when complete."),
+    Setting("export.format", "csv",
+            "`csv` (UTF-8, a header line, `.` decimals, ISO 8601 times) or `parquet`."),
     # notify
     Setting("notify.html_dir", "reports", "Folder for the HTML pages and digests."),
     Setting("notify.email", None, "SMTP settings; without them Plumbline writes HTML only."),

@@ -335,6 +335,16 @@ class ForecastRecord:
 
 
 @dataclass(frozen=True)
+class IssuedForecast:
+    """A forecast as the ``forecasts`` command and the export list it: the record, plus its
+    actual and outcome once a pass has scored it (None until then)."""
+
+    forecast: ForecastRecord
+    actual: float | None
+    outcome: OutcomeKind | None
+
+
+@dataclass(frozen=True)
 class RecordedForecasts:
     ids: tuple[int, ...]  # aligned with the rows given, whether new or already there
     inserted: int

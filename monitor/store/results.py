@@ -22,6 +22,7 @@ from monitor.store.records import (
     FitRow,
     ForecastRecord,
     ForecastRow,
+    IssuedForecast,
     ModelVersionRecord,
     PassRecord,
     RecordedForecasts,
@@ -230,6 +231,54 @@ class ResultsMixin(StoreBase):
             (model, pass_id),
         )
         return [_forecast_record(row) for row in rows]
+
+    def issued_forecasts(
+        self,
+        *,
+        model: str | None = None,
+        series: str | None = None,
+        from_key: int | None = None,
+        to_key: int | None = None,
+        open_only: bool = False,
+        pass_ids: Sequence[int] | None = None,
+    ) -> list[IssuedForecast]:
+        """Every forecast issued, with its actual and outcome once scored, in issue order
+        (pass, then model, series and target period). Filters: one model, one series (its
+        ``per:`` value), target period keys from/to (inclusive), only those not scored yet,
+        only those issued by the passes given."""
+        clauses = ["1 = 1"]
+        params: list[Any] = []
+        if model is not None:
+            clauses.append("f.model = ?")
+            params.append(model)
+        if series is not None:
+            clauses.append("f.series_key = ?")
+            params.append(_skey(series))
+        if from_key is not None:
+            clauses.append("f.target_period_key >= ?")
+            params.append(from_key)
+        if to_key is not None:
+            clauses.append("f.target_period_key <= ?")
+            params.append(to_key)
+        if open_only:
+            clauses.append("o.id IS NULL")
+        if pass_ids is not None:
+            clauses.append(f"f.pass_id IN ({', '.join('?' for _ in pass_ids) or 'NULL'})")
+            params.extend(pass_ids)
+        rows = self._dicts(
+            "SELECT f.*, o.actual AS o_actual, o.outcome AS o_outcome FROM forecasts AS f "
+            "LEFT JOIN outcomes AS o ON o.forecast_id = f.id "
+            f"WHERE {' AND '.join(clauses)} "
+            "ORDER BY f.pass_id, f.model, f.series_key, f.target_period_key, f.id",
+            tuple(params),
+        )
+        return [
+            IssuedForecast(
+                _forecast_record(row), row["o_actual"],
+                None if row["o_outcome"] is None else OutcomeKind(row["o_outcome"]),
+            )
+            for row in rows
+        ]
 
     def forecasts_issued_after(self, model: str, pass_id: int) -> list[ForecastRecord]:
         """Forecasts of ``model`` issued by passes with an id above ``pass_id``."""
