@@ -103,12 +103,20 @@ def _finite(value: float) -> bool:
     return not math.isnan(value)
 
 
-def _bh_reject(p_values: NDArray[np.float64], thresholds: DecisionThresholds) -> NDArray[np.bool_]:
-    """Each test at level ``significance``, and the family controlled by Benjamini–Hochberg at
-    ``fdr``: a series is flagged only when both reject. (BH alone would flag a lone series at
-    p <= fdr, looser than the configured test level.)"""
+def reject(
+    kind: FindingKind, p_values: NDArray[np.float64], thresholds: DecisionThresholds
+) -> NDArray[np.bool_]:
+    """Which tests of ``kind`` reject, as its declaration's ``family`` says (NaN = not tested).
+
+    Every test runs at level ``significance``; for a controlled family (``series``, ``slopes``)
+    the p-values of the model are also put through Benjamini–Hochberg (1995) at ``fdr`` and a
+    test rejects only when both do. (BH alone would flag a lone series at p <= fdr, looser than
+    the configured test level.)
+    """
     with np.errstate(invalid="ignore"):
         significant = p_values < thresholds.significance
+    if not kind.declaration.family.controlled:
+        return np.asarray(significant, dtype=bool)
     return benjamini_hochberg(p_values, thresholds.fdr).reject & significant
 
 
@@ -131,15 +139,17 @@ def coverage_conditions(
     """
     scored = np.asarray(audit.scored)
     p = np.where(scored >= thresholds.min_scored, audit.kupiec_p_value, np.nan)
-    reject = _bh_reject(p, thresholds)
+    rejected = reject(FindingKind.COVERAGE, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not _finite(float(p[i])):
             continue
         hit_rate = float(audit.hit_rate[i])
-        holds = bool(reject[i]) and hit_rate < audit.nominal
+        holds = bool(rejected[i]) and hit_rate < audit.nominal
         zone = audit.zone[i]
-        severity = Severity.CRITICAL if zone is CoverageZone.RED else Severity.WARNING
+        declared = FindingKind.COVERAGE.declaration
+        severity = (declared.raised_to if zone is CoverageZone.RED and declared.raised_to
+                    else declared.severity)
         out.append(Condition(
             FindingKey(FindingKind.COVERAGE, model, name, None), holds, severity,
             hit_rate, float(p[i]), since[i],
@@ -163,14 +173,15 @@ def clustered_miss_conditions(
     """``clustered_misses``: Christoffersen's (1998) independence test rejects after BH."""
     scored = np.asarray(audit.scored)
     p = np.where(scored >= thresholds.min_scored, audit.independence_p_value, np.nan)
-    reject = _bh_reject(p, thresholds)
+    rejected = reject(FindingKind.CLUSTERED_MISSES, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not _finite(float(p[i])):
             continue
         out.append(Condition(
-            FindingKey(FindingKind.CLUSTERED_MISSES, model, name, None), bool(reject[i]),
-            Severity.NOTICE, float(audit.independence_statistic[i]), float(p[i]), since[i],
+            FindingKey(FindingKind.CLUSTERED_MISSES, model, name, None), bool(rejected[i]),
+            FindingKind.CLUSTERED_MISSES.declaration.severity,
+            float(audit.independence_statistic[i]), float(p[i]), since[i],
             f"Misses{_series_label(name)} come in runs rather than one at a time "
             f"(independence p {format_p_value(float(p[i]))}): a miss makes the next one likelier.",
             "Look for autocorrelated errors or a lagging predictor; consider adding last "
@@ -202,16 +213,17 @@ def slope_shift_conditions(
     stat = np.asarray(statistic, dtype=float).reshape(len(series), len(slopes))
     p = np.minimum(1.0, np.asarray(p_value, dtype=float).reshape(len(series), len(slopes))
                    * max(1, looks))
-    reject = _bh_reject(p.ravel(), thresholds).reshape(p.shape)
+    rejected = reject(FindingKind.SLOPE_SHIFT, p.ravel(), thresholds).reshape(p.shape)
     out: list[Condition] = []
     for i, name in enumerate(series):
         tested = ~np.isnan(p[i])
         if not tested.any():
             continue
         j = int(np.nanargmin(p[i]))
-        holds = bool(reject[i].any())
+        holds = bool(rejected[i].any())
         out.append(Condition(
-            FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds, Severity.WARNING,
+            FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds,
+            FindingKind.SLOPE_SHIFT.declaration.severity,
             float(stat[i, j]), float(p[i, j]), since[i],
             f"The slope on {slopes[j]}{_series_label(name)} in the recent window differs from "
             f"the baseline's by {abs(float(stat[i, j])):.1f} combined standard errors "
@@ -244,7 +256,8 @@ def structural_break_conditions(
             continue
         out.append(Condition(
             FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(crossed_a[i]),
-            Severity.CRITICAL, float(ratio_a[i]), None, break_period[i],
+            FindingKind.STRUCTURAL_BREAK.declaration.severity,
+            float(ratio_a[i]), None, break_period[i],
             f"Since the baseline the forecast errors{_series_label(name)} have drifted past the "
             f"monitoring boundary ({float(ratio_a[i]):.2f} times the boundary); the new regime "
             f"is estimated to start at {break_period[i]}.",
@@ -287,7 +300,8 @@ def significance_conditions(
         j_lost = int(np.argmax(lost)) if lost.any() else int(np.argmax(valid))
         out.append(Condition(
             FindingKey(FindingKind.SIGNIFICANCE_LOST, model, name, None), bool(lost.any()),
-            Severity.WARNING, float(b1[i, j_lost]), float(p1[i, j_lost]), since[i],
+            FindingKind.SIGNIFICANCE_LOST.declaration.severity,
+            float(b1[i, j_lost]), float(p1[i, j_lost]), since[i],
             f"The slope on {slopes[j_lost]}{_series_label(name)} was clearly non-zero at the "
             f"baseline but its current interval includes zero (p "
             f"{format_p_value(float(p1[i, j_lost]))}).",
@@ -297,7 +311,8 @@ def significance_conditions(
         j_flip = int(np.argmax(flip)) if flip.any() else j_lost
         out.append(Condition(
             FindingKey(FindingKind.SIGN_FLIP, model, name, None), bool(flip.any()),
-            Severity.CRITICAL, float(b1[i, j_flip]), float(p1[i, j_flip]), since[i],
+            FindingKind.SIGN_FLIP.declaration.severity,
+            float(b1[i, j_flip]), float(p1[i, j_flip]), since[i],
             f"The slope on {slopes[j_flip]}{_series_label(name)} is now significant with the "
             f"opposite sign to the baseline's ({float(b0[i, j_flip]):.4g} then, "
             f"{float(b1[i, j_flip]):.4g} now).",
@@ -327,7 +342,7 @@ def weak_fit_conditions(
         base_text = "" if math.isnan(r2_base[i]) else f" (baseline {r2_base[i]:.2f})"
         out.append(Condition(
             FindingKey(FindingKind.WEAK_FIT, model, name, None), bool(low or dropped),
-            Severity.NOTICE, float(r2[i]), None, since[i],
+            FindingKind.WEAK_FIT.declaration.severity, float(r2[i]), None, since[i],
             f"The current fit{_series_label(name)} explains less of the response: R² "
             f"{r2[i]:.2f}{base_text}.",
             "Intervals are wider and forecasts less informative; look for a missing predictor "
@@ -354,7 +369,8 @@ def extrapolation_conditions(
             continue
         out.append(Condition(
             FindingKey(FindingKind.EXTRAPOLATION, model, name, None), bool(flagged_a[i]),
-            Severity.NOTICE, None if math.isnan(lev[i]) else float(lev[i]), None,
+            FindingKind.EXTRAPOLATION.declaration.severity,
+            None if math.isnan(lev[i]) else float(lev[i]), None,
             first_period[i],
             f"A plan row{_series_label(name)} asks for a forecast outside the range of "
             "predictor values the model was fitted on; the straight line is an assumption "
@@ -381,7 +397,7 @@ def autocorrelation_conditions(
         direction = "positively" if dw[i] < 2 else "negatively"
         out.append(Condition(
             FindingKey(FindingKind.AUTOCORRELATION, model, name, None), bool(holds),
-            Severity.NOTICE, float(dw[i]), None, since[i],
+            FindingKind.AUTOCORRELATION.declaration.severity, float(dw[i]), None, since[i],
             f"Consecutive errors{_series_label(name)} look {direction} correlated "
             f"(Durbin–Watson {dw[i]:.2f}); the intervals assume independent errors and may be "
             "too narrow.",
@@ -401,14 +417,15 @@ def heteroscedasticity_conditions(
     """``heteroscedasticity``: Breusch–Pagan (Koenker) rejects after BH."""
     stat = np.asarray(statistic, dtype=float)
     p = np.asarray(p_value, dtype=float)
-    reject = _bh_reject(p, thresholds)
+    rejected = reject(FindingKind.HETEROSCEDASTICITY, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if math.isnan(p[i]):
             continue
         out.append(Condition(
-            FindingKey(FindingKind.HETEROSCEDASTICITY, model, name, None), bool(reject[i]),
-            Severity.NOTICE, float(stat[i]), float(p[i]), since[i],
+            FindingKey(FindingKind.HETEROSCEDASTICITY, model, name, None), bool(rejected[i]),
+            FindingKind.HETEROSCEDASTICITY.declaration.severity,
+            float(stat[i]), float(p[i]), since[i],
             f"The spread of the errors{_series_label(name)} changes with the predictors "
             f"(Breusch–Pagan p {format_p_value(float(p[i]))}); one interval width does not fit "
             "all plan rows.",
@@ -435,7 +452,7 @@ def not_estimable_conditions(
             continue
         out.append(Condition(
             FindingKey(FindingKind.NOT_ESTIMABLE, model, name, None), not bool(ok[i]),
-            Severity.WARNING, None, None, since[i],
+            FindingKind.NOT_ESTIMABLE.declaration.severity, None, None, since[i],
             f"The model{_series_label(name)} can no longer be fitted: {reasons[i] or 'unknown'}. "
             "No new forecasts are issued for it.",
             "Check the feed for a predictor that stopped varying or columns that now move "
@@ -461,7 +478,8 @@ def stale_feed_condition(
     limit = cadence * STALE_CADENCES
     days = overdue.total_seconds() / 86400
     return Condition(
-        FindingKey(FindingKind.STALE_FEED, None, None, feed), overdue > limit, Severity.WARNING,
+        FindingKey(FindingKind.STALE_FEED, None, None, feed), overdue > limit,
+        FindingKind.STALE_FEED.declaration.severity,
         days, None, latest_period_text,
         f"Feed {feed} has delivered nothing newer than {latest_period_text} "
         f"({days:.0f} days before now, more than 1.5 cadences); forecasts for its models are "
@@ -482,6 +500,11 @@ class RejectedInput:
     reason: str
 
 
+def _rejected_severity(whole_file: bool) -> Severity:
+    declared = FindingKind.REJECTED_INPUT.declaration
+    return declared.raised_to if whole_file and declared.raised_to else declared.severity
+
+
 def rejected_input_conditions(
     feeds: Iterable[str], rejections: Iterable[RejectedInput]
 ) -> list[Condition]:
@@ -499,7 +522,7 @@ def rejected_input_conditions(
     for feed, items in by_feed.items():
         key = FindingKey(FindingKind.REJECTED_INPUT, None, None, feed)
         if not items:
-            out.append(Condition(key, False, Severity.NOTICE, None, None, None, "", ""))
+            out.append(Condition(key, False, _rejected_severity(False), None, None, None, "", ""))
             continue
         whole = any(item.whole_file and not item.duplicate for item in items)
         parts = []
@@ -512,7 +535,7 @@ def rejected_input_conditions(
                 parts.append(f"{item.rows_rejected} row(s) of {item.file_name} were refused "
                              f"({item.reason})")
         out.append(Condition(
-            key, True, Severity.WARNING if whole else Severity.NOTICE,
+            key, True, _rejected_severity(whole),
             float(sum(item.rows_rejected for item in items)), None, None,
             f"Feed {feed}: " + "; ".join(parts) + ". Nothing was deleted or altered.",
             "See the report beside each file in the rejected folder; fix the export and drop a "
@@ -535,6 +558,7 @@ __all__ = [
     "extrapolation_conditions",
     "heteroscedasticity_conditions",
     "not_estimable_conditions",
+    "reject",
     "rejected_input_conditions",
     "should_notify",
     "significance_conditions",

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from enum import StrEnum
+from typing import Literal, Self
 
 
 class Severity(StrEnum):
@@ -25,22 +26,126 @@ class Severity(StrEnum):
 _SEVERITY_RANK = {Severity.NOTICE: 0, Severity.WARNING: 1, Severity.CRITICAL: 2}
 
 
-class FindingKind(StrEnum):
-    """The kinds of finding of DESIGN.md section 7."""
+class EvidenceFamily(StrEnum):
+    """How a kind's evidence is controlled across series (DESIGN.md section 7).
 
-    COVERAGE = "coverage"
-    CLUSTERED_MISSES = "clustered_misses"
-    SLOPE_SHIFT = "slope_shift"
-    STRUCTURAL_BREAK = "structural_break"
-    SIGNIFICANCE_LOST = "significance_lost"
-    SIGN_FLIP = "sign_flip"
-    WEAK_FIT = "weak_fit"
-    EXTRAPOLATION = "extrapolation"
-    AUTOCORRELATION = "autocorrelation"
-    HETEROSCEDASTICITY = "heteroscedasticity"
-    STALE_FEED = "stale_feed"
-    REJECTED_INPUT = "rejected_input"
-    NOT_ESTIMABLE = "not_estimable"
+    ``series``: one p-value per series, each tested at ``thresholds.significance`` and the family
+    of a model's series controlled by Benjamini–Hochberg (1995) at ``thresholds.fdr``.
+    ``slopes``: the same over every (series, slope) test of the model. ``own_level``: a test at its
+    own level per series, not corrected across series. ``rule``: a stated rule, not a test.
+    ``fact``: a fact about a feed or its input (nothing is estimated).
+    """
+
+    SERIES = "series"
+    SLOPES = "slopes"
+    OWN_LEVEL = "own_level"
+    RULE = "rule"
+    FACT = "fact"
+
+    @property
+    def controlled(self) -> bool:
+        """Whether Benjamini–Hochberg runs across the model's series for this family."""
+        return self in (EvidenceFamily.SERIES, EvidenceFamily.SLOPES)
+
+
+@dataclass(frozen=True)
+class KindDeclaration:
+    """Everything about a finding kind that is not its rule's arithmetic, declared once.
+
+    ``words``: what reports call it (a short phrase). ``severity``: the severity it is raised at;
+    ``raised_to`` a higher one its rule may give instead, ``raised_when`` says when (words for
+    the README's table). ``family``: how its evidence is controlled across series. ``rebaseline``:
+    whether ``plumbline rebaseline`` clears it (it compares with the baseline). ``scope``: on a
+    series of a model, or on a feed. ``statistic``: how reports name the number behind it, a
+    template whose ``{value}`` takes a spec of ``monitor.notify.words.StatisticValue`` and whose
+    ``{p}`` is ", p 0.0123" when there is a p-value.
+    """
+
+    words: str
+    severity: Severity
+    family: EvidenceFamily
+    statistic: str
+    rebaseline: bool = False
+    raised_to: Severity | None = None
+    raised_when: str | None = None
+    scope: Literal["series", "feed"] = "series"
+
+    @property
+    def severities(self) -> tuple[Severity, ...]:
+        return (self.severity,) if self.raised_to is None else (self.severity, self.raised_to)
+
+
+class FindingKind(StrEnum):
+    """The kinds of finding of DESIGN.md section 7, each with its declaration.
+
+    Adding a kind is one member here (its value is what JSON, the database and the README use)
+    plus its rule in ``monitor/findings.py`` and its test; see DEVELOPERS.md, "How to add a
+    finding kind". Reports, the rebaseline command, the README check and the pass read the rest
+    from ``kind.declaration``.
+    """
+
+    declaration: KindDeclaration
+
+    def __new__(cls, value: str, *declaration: KindDeclaration) -> Self:
+        member = str.__new__(cls, value)
+        member._value_ = value
+        if declaration:
+            member.declaration = declaration[0]
+        return member
+
+    COVERAGE = "coverage", KindDeclaration(
+        "coverage below nominal", Severity.WARNING, EvidenceFamily.SERIES,
+        "hit rate {value:percent}; Kupiec test{p}",
+        raised_to=Severity.CRITICAL, raised_when="in the red zone",
+    )
+    CLUSTERED_MISSES = "clustered_misses", KindDeclaration(
+        "misses in runs", Severity.NOTICE, EvidenceFamily.SERIES,
+        "Christoffersen independence statistic {value:3}{p}",
+    )
+    SLOPE_SHIFT = "slope_shift", KindDeclaration(
+        "slope shift", Severity.WARNING, EvidenceFamily.SLOPES,
+        "recent slope differs from the baseline's by {value:abs3} combined standard errors{p}",
+        rebaseline=True,
+    )
+    STRUCTURAL_BREAK = "structural_break", KindDeclaration(
+        "structural break", Severity.CRITICAL, EvidenceFamily.OWN_LEVEL,
+        "monitoring statistic at {value:3} times its boundary{p}", rebaseline=True,
+    )
+    SIGNIFICANCE_LOST = "significance_lost", KindDeclaration(
+        "slope no longer significant", Severity.WARNING, EvidenceFamily.OWN_LEVEL,
+        "current slope {value}{p}", rebaseline=True,
+    )
+    SIGN_FLIP = "sign_flip", KindDeclaration(
+        "slope sign reversed", Severity.CRITICAL, EvidenceFamily.OWN_LEVEL,
+        "current slope {value}{p}", rebaseline=True,
+    )
+    WEAK_FIT = "weak_fit", KindDeclaration(
+        "weaker fit", Severity.NOTICE, EvidenceFamily.RULE, "R² {value:.2f}{p}", rebaseline=True,
+    )
+    EXTRAPOLATION = "extrapolation", KindDeclaration(
+        "forecast outside the fitted range", Severity.NOTICE, EvidenceFamily.RULE,
+        "leverage {value:3}{p}",
+    )
+    AUTOCORRELATION = "autocorrelation", KindDeclaration(
+        "autocorrelated errors", Severity.NOTICE, EvidenceFamily.RULE,
+        "Durbin–Watson {value:.2f}{p}",
+    )
+    HETEROSCEDASTICITY = "heteroscedasticity", KindDeclaration(
+        "error spread changes with the predictors", Severity.NOTICE, EvidenceFamily.SERIES,
+        "Breusch–Pagan statistic {value:3}{p}",
+    )
+    STALE_FEED = "stale_feed", KindDeclaration(
+        "feed gone quiet", Severity.WARNING, EvidenceFamily.FACT,
+        "{value:.0f} days since the latest period{p}", scope="feed",
+    )
+    REJECTED_INPUT = "rejected_input", KindDeclaration(
+        "input rejected", Severity.NOTICE, EvidenceFamily.FACT, "{value:rows}",
+        raised_to=Severity.WARNING, raised_when="for a refused file", scope="feed",
+    )
+    NOT_ESTIMABLE = "not_estimable", KindDeclaration(
+        "can no longer be fitted", Severity.WARNING, EvidenceFamily.FACT,
+        "no statistic: the fit itself is impossible",
+    )
 
 
 class FindingState(StrEnum):
@@ -114,10 +219,12 @@ class Finding:
 
 
 __all__ = [
+    "EvidenceFamily",
     "Finding",
     "FindingKind",
     "FindingState",
     "Forecast",
+    "KindDeclaration",
     "Outcome",
     "OutcomeKind",
     "Severity",

@@ -186,6 +186,29 @@ def test_every_finding_kind_is_explained_in_the_findings_table() -> None:
         assert len(rule) > 40 and len(action) > 20, f"{kind}: rule or action missing"
 
 
+def test_findings_table_agrees_with_each_kinds_declaration() -> None:
+    """The README's row of a kind names the severities, the cross-series control and the
+    rebaseline behaviour that its declaration in ``monitor.vocabulary`` gives."""
+    section = _section(README, lambda title: title.startswith("What each finding means"))
+    rows: dict[str, list[str]] = {}
+    for line in section.splitlines():
+        match = re.match(r"^\| `(\w+)` \|(.*)\|$", line)
+        if match:
+            rows[match.group(1)] = [cell.strip() for cell in match.group(2).split(" | ")]
+    for kind in FindingKind:
+        declared = kind.declaration
+        severity, rule, _ = rows[kind.value]
+        named = {s for s in Severity if f"`{s.value}`" in severity}
+        assert named == set(declared.severities), f"{kind}: severities {named}"
+        if declared.raised_when is not None:
+            assert declared.raised_when in severity, f"{kind}: when it is raised higher"
+        assert ("*BH*" in rule) == declared.family.controlled, f"{kind}: BH mark"
+    rebaseline = re.search(r"`plumbline rebaseline MODEL` clears .*?\(([^)]*)\)", section, re.S)
+    assert rebaseline is not None
+    listed = set(re.findall(r"`(\w+)`", rebaseline.group(1)))
+    assert listed == {kind.value for kind in FindingKind if kind.declaration.rebaseline}
+
+
 def test_findings_table_states_the_thresholds_the_code_uses() -> None:
     from monitor import findings, passes
 

@@ -4,9 +4,9 @@ confirmed change (DESIGN.md section 7).
 The new baseline is the model's baseline length (``window`` rows) starting at ``--from`` (a
 period as the feed writes it), or, without ``--from``, the latest full window. Fewer rows than
 that are accepted when at least p + 2 exist after ``--from``: the baseline then ends at the
-latest actual. Open findings that compare with the old baseline (structural break, slope shift,
-significance lost, sign flip, weak fit) are cleared, and monitoring starts again after the new
-baseline's end from the next pass on.
+latest actual. Open findings that compare with the old baseline (the kinds declared with
+``rebaseline=True`` in ``monitor.vocabulary``) are cleared, and monitoring starts again after
+the new baseline's end from the next pass on.
 """
 
 from __future__ import annotations
@@ -24,10 +24,8 @@ from monitor.store import BaselineRow, date_period_key
 from monitor.text import did_you_mean
 from monitor.vocabulary import FindingKind
 
-BASELINE_KINDS = (
-    FindingKind.STRUCTURAL_BREAK, FindingKind.SLOPE_SHIFT, FindingKind.SIGNIFICANCE_LOST,
-    FindingKind.SIGN_FLIP, FindingKind.WEAK_FIT,
-)
+# The kinds whose declaration says a rebaseline clears them (they compare with the baseline).
+BASELINE_KINDS = tuple(kind for kind in FindingKind if kind.declaration.rebaseline)
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

@@ -15,22 +15,8 @@ from monitor.figures import level_text, number, percent
 from monitor.text import format_p_value
 from monitor.vocabulary import FindingKind, Severity
 
-# What each kind of finding is called in reports: a short phrase that says what it is.
-KIND_WORDS: dict[FindingKind, str] = {
-    FindingKind.COVERAGE: "coverage below nominal",
-    FindingKind.CLUSTERED_MISSES: "misses in runs",
-    FindingKind.SLOPE_SHIFT: "slope shift",
-    FindingKind.STRUCTURAL_BREAK: "structural break",
-    FindingKind.SIGNIFICANCE_LOST: "slope no longer significant",
-    FindingKind.SIGN_FLIP: "slope sign reversed",
-    FindingKind.WEAK_FIT: "weaker fit",
-    FindingKind.EXTRAPOLATION: "forecast outside the fitted range",
-    FindingKind.AUTOCORRELATION: "autocorrelated errors",
-    FindingKind.HETEROSCEDASTICITY: "error spread changes with the predictors",
-    FindingKind.STALE_FEED: "feed gone quiet",
-    FindingKind.REJECTED_INPUT: "input rejected",
-    FindingKind.NOT_ESTIMABLE: "can no longer be fitted",
-}
+# What each kind of finding is called in reports (from each kind's declaration).
+KIND_WORDS: dict[FindingKind, str] = {kind: kind.declaration.words for kind in FindingKind}
 
 # The shape drawn beside each severity word (pages) and its plain-text mark (text, e-mail).
 SEVERITY_SHAPES: dict[Severity, str] = {
@@ -95,39 +81,43 @@ def scope_text(model: str | None, series: str | None, feed: str | None) -> str:
     return f"{model}, series {series}"
 
 
+class StatisticValue:
+    """A finding's statistic inside its kind's ``statistic`` template (``KindDeclaration``).
+
+    Format specs: none (4 significant digits), ``3`` (3 significant digits), ``abs3`` (the size,
+    3 significant digits), ``percent``, ``rows`` (rows rejected, 0 = the whole file), or any
+    Python float spec such as ``.2f``.
+    """
+
+    def __init__(self, value: float) -> None:
+        self.value = value
+
+    def __format__(self, spec: str) -> str:
+        if spec == "":
+            return number(self.value)
+        if spec == "3":
+            return number(self.value, 3)
+        if spec == "abs3":
+            return number(abs(self.value), 3)
+        if spec == "percent":
+            return percent(self.value)
+        if spec == "rows":
+            return ("the whole file" if self.value == 0
+                    else f"{plural(int(self.value), 'row')} rejected")
+        return format(self.value, spec)
+
+
 def statistic_text(
     kind: FindingKind, statistic: float | None, p_value: float | None
 ) -> str:
-    """The statistic behind a finding, named for its kind (what the findings layer stores)."""
+    """The statistic behind a finding, named by its kind's declaration."""
     p = "" if p_value is None else f", {p_text(p_value)}"
-    if kind is FindingKind.NOT_ESTIMABLE:
-        return "no statistic: the fit itself is impossible"
+    template = kind.declaration.statistic
+    if "{value" not in template:
+        return template.format(p=p)
     if statistic is None:
         return "no statistic recorded" + p
-    named = {
-        FindingKind.COVERAGE: f"hit rate {percent(statistic)}; Kupiec test{p}",
-        FindingKind.CLUSTERED_MISSES: (
-            f"Christoffersen independence statistic {number(statistic, 3)}{p}"
-        ),
-        FindingKind.SLOPE_SHIFT: (
-            f"recent slope differs from the baseline's by {number(abs(statistic), 3)} combined "
-            f"standard errors{p}"
-        ),
-        FindingKind.STRUCTURAL_BREAK: (
-            f"monitoring statistic at {number(statistic, 3)} times its boundary{p}"
-        ),
-        FindingKind.SIGNIFICANCE_LOST: f"current slope {number(statistic)}{p}",
-        FindingKind.SIGN_FLIP: f"current slope {number(statistic)}{p}",
-        FindingKind.WEAK_FIT: f"R² {statistic:.2f}{p}",
-        FindingKind.EXTRAPOLATION: f"leverage {number(statistic, 3)}{p}",
-        FindingKind.AUTOCORRELATION: f"Durbin–Watson {statistic:.2f}{p}",
-        FindingKind.HETEROSCEDASTICITY: f"Breusch–Pagan statistic {number(statistic, 3)}{p}",
-        FindingKind.STALE_FEED: f"{statistic:.0f} days since the latest period{p}",
-        FindingKind.REJECTED_INPUT: (
-            "the whole file" if statistic == 0 else f"{plural(int(statistic), 'row')} rejected"
-        ),
-    }
-    return named.get(kind, f"{number(statistic)}{p}")
+    return template.format(value=StatisticValue(statistic), p=p)
 
 
 def hit_rate_sentence(hits: int, scored: int, level: float, what: str = "actuals") -> str:
@@ -144,6 +134,7 @@ __all__ = [
     "KIND_WORDS",
     "SEVERITY_MARKS",
     "SEVERITY_SHAPES",
+    "StatisticValue",
     "hit_rate_sentence",
     "join_words",
     "level_text",
