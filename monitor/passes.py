@@ -70,7 +70,14 @@ from monitor.findings import (
     structural_break_conditions,
     weak_fit_conditions,
 )
-from monitor.ingest import FileReport, IngestSpec, ingest_feed, inspect_inbox
+from monitor.ingest import (
+    FileReport,
+    InboxNote,
+    IngestSpec,
+    inbox_notes,
+    ingest_feed,
+    inspect_inbox,
+)
 from monitor.stats.coverage import audit_batch
 from monitor.store import (
     BaselineRow,
@@ -115,6 +122,7 @@ class PassReport:
     findings_cleared: tuple[int, ...] = ()
     findings_to_notify: tuple[int, ...] = ()
     exports: tuple[ExportedFile, ...] = ()
+    not_taken: tuple[InboxNote, ...] = ()  # files left in an inbox, why, and what to do
     skipped: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     stopped_early: str | None = None
@@ -122,6 +130,17 @@ class PassReport:
     @property
     def nothing_to_do(self) -> bool:
         return self.pass_id is None
+
+    @property
+    def files_taken(self) -> tuple[FileReport, ...]:
+        """Files whose rows were taken (archived, or empty): never a refused file."""
+        return tuple(f for f in self.files
+                     if not (f.whole_file_rejected or f.duplicate))
+
+    @property
+    def files_refused(self) -> tuple[FileReport, ...]:
+        """Files refused as a whole or as a duplicate: moved to rejected/, nothing taken."""
+        return tuple(f for f in self.files if f.whole_file_rejected or f.duplicate)
 
 
 class PassNotifier(Protocol):
@@ -187,6 +206,7 @@ class _PassState:
     finished_id: int  # the latest finished pass before this one (0: none)
     stop: threading.Event | None
     skipped: list[str] = field(default_factory=list)
+    not_taken: list[InboxNote] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
     conditions: list[tuple[Condition, int]] = field(default_factory=list)  # (condition, clear)
     outcomes_scored: int = 0
@@ -258,7 +278,8 @@ def _run(
         and latest.counts.get("notified", True)
         and not files_waiting(store, config, real_clock)
     ):
-        return PassReport(None, as_of, timings={"total": time.perf_counter() - started})
+        return PassReport(None, as_of, not_taken=tuple(files_not_taken(config, real_clock)),
+                          timings={"total": time.perf_counter() - started})
 
     record = store.record_pass(as_of=as_of, started_at=real_clock())
     state = _PassState(store, config, as_of, record.id, mark, finished.id if finished else 0,
@@ -296,6 +317,7 @@ def _run(
         findings_cleared=tuple(cleared),
         findings_to_notify=tuple(notify),
         exports=tuple(exported),
+        not_taken=tuple(state.not_taken),
         skipped=tuple(state.skipped),
         timings=state.timings,
         stopped_early=stopped,
@@ -303,7 +325,8 @@ def _run(
     state.timings["total"] = time.perf_counter() - started
     counts = {
         "observation_mark": new_mark,
-        "files": len(files),
+        "files": len(report.files_taken),
+        "files_refused": len(report.files_refused),
         "outcomes_scored": report.outcomes_scored,
         "series_analysed": report.series_analysed,
         "fits": report.fits_recorded,
@@ -399,6 +422,8 @@ def ingest_spec(name: str, feed: Feed, config: PlumblineConfig) -> IngestSpec:
         required=tuple(required),
         optional=tuple(optional),
         settle=feed.settle,
+        delimiter=feed.delimiter,
+        decimal=feed.decimal,
     )
 
 
@@ -413,6 +438,19 @@ def files_waiting(
     return False
 
 
+def files_not_taken(
+    config: PlumblineConfig, real_clock: Callable[[], datetime] = utc_now
+) -> list[InboxNote]:
+    """Files in the inboxes that a scan now would leave there, each with why and what to do."""
+    notes: list[InboxNote] = []
+    for name, feed in config.feeds.items():
+        spec = ingest_spec(name, feed, config)
+        survey = inspect_inbox(spec, real_clock=real_clock)
+        notes.extend(inbox_notes(name, feed.settle.total_seconds(), survey,
+                                 now=real_clock().timestamp()))
+    return notes
+
+
 def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[FileReport]:
     reports: list[FileReport] = []
     for name, feed in state.config.feeds.items():
@@ -420,6 +458,7 @@ def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[F
             spec = ingest_spec(name, feed, state.config)
             result = ingest_feed(state.store, spec, pass_id=state.pass_id, real_clock=real_clock)
             reports.extend(result.reports)
+            state.not_taken.extend(result.notes)
             state.skipped.extend(f"feed {name}: {problem}" for problem in result.problems)
         except Exception as exc:  # one bad feed never stops the others
             state.skipped.append(f"feed {name}: ingest failed: {type(exc).__name__}: {exc}")
@@ -947,7 +986,7 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
             continue
         bad = record.outcome.value in ("rejected", "duplicate") or record.rows_rejected > 0
         if bad:
-            reason = (record.errors_text.strip().splitlines() or [record.note])[0]
+            reason = record.note or (record.errors_text.strip().splitlines() or [""])[0]
             rejections.append(RejectedInput(
                 record.feed, record.name, record.outcome.value == "rejected",
                 record.outcome.value == "duplicate", record.rows_rejected, reason))
@@ -975,10 +1014,11 @@ def _rejection_reason(report: FileReport) -> str:
     if report.duplicate:
         return f"the same bytes as {report.duplicate_of}"
     if report.whole_file_rejected:
-        return report.errors.strip().splitlines()[0] if report.errors.strip() else report.note
+        return report.note  # the refusal, with a hint when the file's separator differs
     first = report.rejected[0] if report.rejected else None
     where = f"first at line {first.line}: {first.reason}" if first else report.note
-    return f"{where}; see {report.name}.rejected.csv"
+    hint = f". {report.note}" if first and report.note else ""
+    return f"{where}; see {report.name}.rejected.csv{hint}"
 
 
 # --------------------------------------------------------------------------- export
@@ -1048,6 +1088,7 @@ __all__ = [
     "baseline_rows",
     "business_key",
     "cadence_steps",
+    "files_not_taken",
     "files_waiting",
     "ingest_spec",
     "run_pass",

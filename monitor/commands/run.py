@@ -50,7 +50,8 @@ def scan_job(config: PlumblineConfig) -> JobFunction:
             report = run_pass(config, stop_requested=stop, notifier=pass_notifier(),
                               store=store)
         return {
-            "pass_id": report.pass_id, "files": len(report.files),
+            "pass_id": report.pass_id, "files": len(report.files_taken),
+            "refused": len(report.files_refused),
             "forecasts": report.forecasts_issued, "raised": len(report.findings_raised),
             "cleared": len(report.findings_cleared), "skipped": len(report.skipped),
             "stopped_early": report.stopped_early,

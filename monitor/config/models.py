@@ -67,6 +67,8 @@ class Feed(_Section):
     archive: Path = _field("feeds.NAME.archive")
     rejected: Path = _field("feeds.NAME.rejected")
     format: Literal["csv", "parquet"] = _field("feeds.NAME.format")
+    delimiter: Literal[",", ";", "\t"] = _field("feeds.NAME.delimiter")
+    decimal: Literal[".", ","] = _field("feeds.NAME.decimal")
     period: ColumnName = _field("feeds.NAME.period")
     period_type: Literal["date", "integer"] = _field("feeds.NAME.period_type")
     settle: Duration = _field("feeds.NAME.settle")
@@ -119,9 +121,18 @@ class Feed(_Section):
 
     @model_validator(mode="after")
     def _declared_columns(self) -> Feed:
-        if self.columns is None:
-            return self
         problems: list[Problem] = []
+        if self.decimal == "," and self.delimiter == ",":
+            problems.append(Problem(("decimal",), "with decimal ',' the fields cannot also be "
+                                    "separated by ','; set delimiter: ';' (the usual pair)"))
+        if self.format == "parquet":
+            problems += [Problem((key,), f"{key} applies to CSV feeds only; Parquet files carry "
+                                 "typed columns")
+                         for key in ("delimiter", "decimal") if key in self.model_fields_set]
+        if self.columns is None:
+            if problems:
+                raise problems_error(problems)
+            return self
         seen: set[str] = set()
         for index, column in enumerate(self.columns):
             if column in seen:

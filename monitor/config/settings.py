@@ -70,6 +70,12 @@ SETTINGS: tuple[Setting, ...] = (
             "Folder for files that cannot be used, each with a `NAME.errors.txt` saying why.",
             computed="`rejected` beside the inbox"),
     Setting("feeds.NAME.format", "csv", "`csv` (UTF-8 with a header line) or `parquet`."),
+    Setting("feeds.NAME.delimiter", ",",
+            "The character between a CSV file's fields: `,`, `;` or a tab (`\"\\t\"`). Files "
+            "saved by a spreadsheet in many locales use `;`."),
+    Setting("feeds.NAME.decimal", ".",
+            "The decimal mark of a CSV file's numbers: `.` or `,` (`1234,5`; then the delimiter "
+            "cannot be `,`). Thousands separators are refused either way."),
     Setting("feeds.NAME.period", ..., "Column holding each row's period."),
     Setting("feeds.NAME.period_type", "date",
             "`date` (ISO 8601, e.g. 2024-01-07) or `integer` (years, sequence numbers)."),

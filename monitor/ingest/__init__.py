@@ -35,11 +35,21 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Literal
 
+from monitor.ingest.dialect import (
+    DEFAULT_DECIMAL,
+    DEFAULT_DELIMITER,
+    decimal_comma_hint,
+    needs_rewrite,
+    separator_hint,
+    standard_csv,
+)
 from monitor.ingest.folders import (
     MARKER_SUFFIX,
     InboxFile,
+    InboxNote,
     InboxSurvey,
     free_name,
+    inbox_notes,
     is_temporary_name,
     move_no_clobber,
     read_stable,
@@ -98,6 +108,8 @@ class IngestSpec:
     optional: tuple[str, ...] = ()
     settle: timedelta = timedelta(seconds=30)
     detect_rename: bool = True  # rule 2 of monitor.ingest.folders
+    delimiter: str = DEFAULT_DELIMITER  # CSV only: see monitor.ingest.dialect
+    decimal: str = DEFAULT_DECIMAL
 
     def __post_init__(self) -> None:
         if self.format not in ("csv", "parquet"):
@@ -172,6 +184,7 @@ class FeedIngest:
     waiting: tuple[str, ...]  # files not complete yet: they stay and raise nothing
     ignored: tuple[tuple[str, str], ...]  # (name, why) never read as data
     problems: tuple[str, ...] = ()
+    notes: tuple[InboxNote, ...] = ()  # why each file left in the inbox was not taken
 
     @property
     def findings(self) -> tuple[Finding, ...]:
@@ -219,6 +232,7 @@ def ingest_feed(
     if survey.problem:
         problems.append(survey.problem)
     waiting = [item.name for item in survey.waiting]
+    changing: list[str] = []
     for item in survey.complete:
         try:
             report = ingest_file(store, spec, item, pass_id=pass_id, real_clock=real_clock)
@@ -235,6 +249,7 @@ def ingest_feed(
             continue
         if report is None:
             waiting.append(item.name)
+            changing.append(item.name)
         else:
             reports.append(report)
     for record in store.files_awaiting_move(spec.feed):
@@ -242,7 +257,10 @@ def ingest_feed(
             f"{record.name} was recorded (file id {record.id}) but is neither in the inbox nor "
             f"at {record.stored_path}; if it turns up in the inbox it will be moved"
         )
-    return FeedIngest(spec.feed, tuple(reports), tuple(waiting), survey.ignored, tuple(problems))
+    notes = inbox_notes(spec.feed, spec.settle.total_seconds(), survey,
+                        now=_seconds(real_clock), changing=tuple(changing))
+    return FeedIngest(spec.feed, tuple(reports), tuple(waiting), survey.ignored, tuple(problems),
+                      notes)
 
 
 def ingest_file(
@@ -374,7 +392,23 @@ def _holds(path: Path, sha: str) -> bool:
 def _parse(data: bytes, spec: IngestSpec) -> ParsedFile:
     if spec.format == "parquet":
         return parse_parquet(data, spec.plan)
-    return parse_csv(data, spec.plan)
+    readable = data
+    if needs_rewrite(spec.delimiter, spec.decimal):
+        rewritten = standard_csv(data, spec.delimiter, spec.decimal)
+        if isinstance(rewritten, str):
+            return ParsedFile((), (), (), (), refusal=rewritten)
+        readable = rewritten
+    parsed = parse_csv(readable, spec.plan)
+    if parsed.refusal is not None:
+        hint = separator_hint(data, spec.feed, spec.delimiter, spec.decimal)
+        if hint:
+            parsed = dataclasses.replace(parsed, refusal=parsed.refusal + hint)
+    elif parsed.rejected:
+        hint = decimal_comma_hint(
+            [cell for row in parsed.rejected[:50] for cell in row.cells], spec.feed, spec.decimal)
+        if hint:
+            parsed = dataclasses.replace(parsed, note=f"{parsed.note} {hint}".strip())
+    return parsed
 
 
 def _slots(spec: IngestSpec, outcome: FileOutcome, rows_rejected: bool) -> list[tuple[Path, str]]:
@@ -501,12 +535,13 @@ def _findings(spec: IngestSpec, report: FileReport) -> tuple[Finding, ...]:
         word = "row" if spec.format == "parquet" else "line"
         sample = "" if first is None else f" (the first, {word} {first.line}: {first.reason})"
         total = report.rows_rejected + report.rows_ingested + report.unchanged
+        hint = f" {report.note}" if report.note else ""
         return (
             finding(
                 Severity.NOTICE, float(report.rows_rejected),
                 f"{report.rows_rejected} of {total} rows of {report.name} were rejected{sample}; "
                 f"the other rows were ingested. The rejected rows are listed in "
-                f"{spec.rejected / (where.name + '.rejected.csv')}.",
+                f"{spec.rejected / (where.name + '.rejected.csv')}.{hint}",
                 "Correct the listed rows and send them in a new file; rows already ingested "
                 "are recognised and not counted twice.",
             ),
@@ -519,11 +554,13 @@ __all__ = [
     "FeedIngest",
     "FileReport",
     "InboxFile",
+    "InboxNote",
     "InboxSurvey",
     "IngestSpec",
     "RealClock",
     "commit_file",
     "complete_move",
+    "inbox_notes",
     "ingest_feed",
     "ingest_file",
     "inspect_inbox",
