@@ -5,7 +5,12 @@ from __future__ import annotations
 import argparse
 from datetime import UTC, datetime
 
-from monitor.commands._common import add_config_argument, config_from, open_existing_store
+from monitor.commands._common import (
+    add_config_argument,
+    config_from,
+    finding_id,
+    open_existing_store,
+)
 from monitor.errors import UsageError
 
 
@@ -16,7 +21,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "and keeps its lifecycle, but no message mentions it again.",
     )
     add_config_argument(parser)
-    parser.add_argument("id", type=int, help="the finding's id")
+    parser.add_argument("id", type=finding_id, help="the finding's id (12 or #12)")
     parser.set_defaults(handler=handle)
 
 

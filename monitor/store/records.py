@@ -10,12 +10,15 @@ from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from enum import StrEnum
 from pathlib import Path
-from typing import Any, NamedTuple
+from typing import TYPE_CHECKING, Any, NamedTuple
 
-import numpy as np
-from numpy.typing import NDArray
-
+if TYPE_CHECKING:
+    import numpy as np
+    from numpy.typing import NDArray
+else:
+    from monitor.store.lazy import np
 from monitor.errors import PlumblineError
+from monitor.store.lazy import is_numpy_value
 from monitor.vocabulary import Finding, FindingKind, FindingState, OutcomeKind, Severity
 
 
@@ -66,7 +69,7 @@ def _series(key: str) -> str | None:
 
 def _plain(value: Any) -> Any:
     """A JSON-ready copy: numpy scalars and arrays to Python, NaN and infinities to null."""
-    if isinstance(value, np.ndarray | np.generic):
+    if is_numpy_value(value):
         return _plain(value.tolist())
     if isinstance(value, float):
         return value if math.isfinite(value) else None

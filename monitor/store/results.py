@@ -8,10 +8,13 @@ from collections.abc import Iterable, Mapping, Sequence
 from datetime import datetime
 from itertools import compress
 from operator import itemgetter
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
-from numpy.typing import NDArray
+if TYPE_CHECKING:
+    import numpy as np
+    from numpy.typing import NDArray
+else:
+    from monitor.store.lazy import np
 
 from monitor.store.base import StoreBase
 from monitor.store.records import (
