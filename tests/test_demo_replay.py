@@ -194,3 +194,18 @@ def test_export_folder_holds_one_file_per_pass_and_model_equal_to_the_command(
     written = {Path(p) for report in replayed.passes for p in
                (str(e.path) for e in report.exports)}
     assert written == {config.export.model_folder(m) / f"pass-{p:06d}.csv" for m, p in exported}
+
+
+def test_the_demo_index_links_the_pass_pages_it_wrote(replayed: ReplayResult) -> None:
+    from monitor.commands.demo import DEMO_PASS_PAGES, render_pass_pages
+
+    pages = render_pass_pages(replayed.config)
+    render_digest(replayed.config)  # writes the index too
+    assert 1 < len(pages) <= DEMO_PASS_PAGES
+    folder = replayed.config.notify.html_dir
+    index = (folder / "index.html").read_text(encoding="utf-8")
+    linked = set(re.findall(r'href="(pass-\d+\.html)"', index))
+    assert linked == {page.name for page in pages}
+    for page in pages:
+        assert page.is_file()
+        assert page.stem.split("-")[1] in page.read_text(encoding="utf-8")

@@ -34,7 +34,6 @@ from monitor.notify import build_digest, digest_message, write_digest
 from monitor.notify.mail import compose_digest, deliver_outbox, enqueue_digest, write_eml
 from monitor.store import Store
 
-
 PREVIEW_RECIPIENT = "recipients-not-configured@example.invalid"
 PREVIEW_SENDER = "plumbline@example.invalid"
 

@@ -241,6 +241,7 @@ class SeriesDetail:
     fit: FitView | None
     findings: list[FindingView]
     charts: list[ChartView]
+    warming: str = ""  # without a fit: how many rows it has, and how many the first fit needs
 
 
 @dataclass(frozen=True)
@@ -269,6 +270,7 @@ class ModelPage:
     forecasts: list[ForecastView]
     charts_note: str
     table_note: str
+    warming_note: str = ""
 
 
 def build_model_page(
@@ -303,6 +305,10 @@ def build_model_page(
         coverage_chart = None if chart is None else chart_view(chart)
     single = history.series == [None] or model.per is None
     featured = [None] if single else history.flagged[:DETAIL_CAP]
+    needed = max(model.min_rows, model.parameter_count + 2) if model.fitted else 0
+    counts = store.actual_row_counts(model.feed) if model.fitted else {}
+    warming = {s: n for s, n in sorted(counts.items(), key=lambda kv: kv[0] or "")
+               if s not in history.latest_fits and n < needed}
     details = []
     for series in featured:
         fit = history.latest_fits.get(series)
@@ -318,6 +324,7 @@ def build_model_page(
                                                   significance=model.thresholds.significance),
             findings=ordered_findings(history.findings_of(series)),
             charts=[chart_view(c) for c in charts if c is not None],
+            warming="" if fit is not None else warming_text(counts.get(series, 0), needed),
         ))
     flagged_count = len(history.flagged)
     if single:
@@ -354,12 +361,25 @@ def build_model_page(
         details_note=details_note,
         forecasts=[forecast_view(f) for f in _first_forecasts(history, windows[52])],
         table_note=_table_note(history),
+        warming_note="" if single or not warming else (
+            f"Warming up ({plural(len(warming), 'series', 'series')} with fewer than {needed} rows "
+            "with an actual, the first fit's minimum): "
+            + ", ".join(f"{series_label(s)} {n}" for s, n in list(warming.items())[:20])
+            + (" …" if len(warming) > 20 else "") + "."),
         charts_note=(
             "" if not budget.skipped else
             f"No charts for {plural(budget.skipped, 'further series', 'further series')} (at most "
             f"{chart_cap} charts per model)."
         ),
     )
+
+
+def warming_text(rows: int, needed: int) -> str:
+    """What a series without a fit is waiting for."""
+    if needed and rows < needed:
+        return (f"Warming up: {plural(rows, 'row')} with an actual so far; the first fit needs "
+                f"{needed} (min_rows, and at least p + 2), so {needed - rows} more.")
+    return "No fit recorded yet: the next pass with new rows for this series fits it."
 
 
 def _css_key(name: str) -> str:
@@ -496,12 +516,17 @@ def write_index(store: Store, config: PlumblineConfig, out_dir: Path | None = No
         note = "no open findings" if not count else f"{plural(count, 'open finding')}"
         if model_page_name(name) in present:
             models.append(IndexEntry(model_page_name(name), name, note))
+    # Every pass whose page is in the folder, newest first (the latest 60 of them).
+    page_ids = sorted((int(m.group(1)) for n in present
+                       if (m := re.fullmatch(r"pass-(\d+)\.html", n))), reverse=True)
     passes = []
-    for record in store.list_passes(limit=60):
-        if pass_page_name(record.id) in present:
-            passes.append(IndexEntry(pass_page_name(record.id), f"Pass {record.id}",
-                                     f"business clock {local_time(record.as_of, config.zone)}, "
-                                     f"{record.status}"))
+    for pass_id in page_ids[:60]:
+        record = store.get_pass(pass_id)
+        if record is None:
+            continue
+        passes.append(IndexEntry(pass_page_name(record.id), f"Pass {record.id}",
+                                 f"business clock {local_time(record.as_of, config.zone)}, "
+                                 f"{record.status}"))
     text = render(
         "index.html",
         page_title="Reports",

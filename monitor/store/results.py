@@ -283,6 +283,17 @@ class ResultsMixin(StoreBase):
             for row in rows
         ]
 
+    def actual_row_counts(self, feed: str) -> dict[str | None, int]:
+        """Rows with an actual (not plan rows), current revisions only, per series of a feed:
+        what a series warming up has so far."""
+        cursor = self._conn.execute(
+            "SELECT s.key, count(*) FROM observations AS o JOIN series AS s "
+            "ON s.id = o.series_id WHERE s.feed = ? AND o.is_plan = 0 AND o.current = 1 "
+            "GROUP BY s.key",
+            (feed,),
+        )
+        return {_series(key): int(count) for key, count in cursor}
+
     def forecasts_issued_after(self, model: str, pass_id: int) -> list[ForecastRecord]:
         """Forecasts of ``model`` issued by passes with an id above ``pass_id``."""
         rows = self._dicts(
