@@ -623,7 +623,7 @@ def _analyse_model(
 
     # What the last *finished* pass knew: a pass a crash cut short may have fitted and forecast
     # already, and its work must count as this pass's, not as the past.
-    previous = state.store.latest_fits(name, version=version, up_to_pass=state.finished_id)
+    previous = state.store.latest_fit_marks(name, version=version, up_to_pass=state.finished_id)
     fit_rows = [
         _fit_row(name, version, model, out, i, s, keys[i], labels, len(series))
         for i, s in enumerate(series)
@@ -829,7 +829,8 @@ def _fit_row(
 def _model_conditions(
     state: _PassState, name: str, model: Model, out: BatchOutput, series: list[str | None],
     keys: np.ndarray, counts: np.ndarray, start: np.ndarray, end: np.ndarray,
-    labels: dict[int, str], previous: dict[str | None, Any], answered: list[bool],
+    labels: dict[int, str], previous: dict[str | None, tuple[int | None, bool]],
+    answered: list[bool],
     extrapolated_first: list[str | None], worst_leverage: np.ndarray, horizon: np.ndarray,
 ) -> None:
     t = model.thresholds
@@ -852,8 +853,8 @@ def _model_conditions(
     fresh = np.ones(s, dtype=bool)
     for i, sr in enumerate(series):
         prev = previous.get(sr)
-        if prev is not None and prev.window_last_key is not None:
-            before = int(np.searchsorted(keys[i, : counts[i]], prev.window_last_key, "right"))
+        if prev is not None and prev[0] is not None:
+            before = int(np.searchsorted(keys[i, : counts[i]], prev[0], "right"))
             fresh[i] = counts[i] // block > before // block
     ok_fresh = ok & fresh
     window_first = [period(i, int(np.argmax(out.window_mask[i]))) for i in range(s)]
@@ -910,7 +911,7 @@ def _model_conditions(
         extrapolated_first, worst_leverage,
     ), clear)
     fitted_before = np.array([
-        (prev := previous.get(sr)) is not None and prev.estimable for sr in series
+        (prev := previous.get(sr)) is not None and prev[1] for sr in series
     ], dtype=bool)
     state.add(not_estimable_conditions(
         name, series, ok, fitted_before, fit.reason, window_last,

@@ -28,12 +28,15 @@ import dataclasses
 import hashlib
 import io
 import logging
+import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Literal
+from typing import BinaryIO, Literal
+
+import numpy as np
 
 from monitor.ingest.dialect import (
     DEFAULT_DECIMAL,
@@ -52,13 +55,23 @@ from monitor.ingest.folders import (
     inbox_notes,
     is_temporary_name,
     move_no_clobber,
-    read_stable,
     same_file,
     sha256_of,
     survey_inbox,
     write_new_file,
 )
-from monitor.ingest.parse import ColumnPlan, ParsedFile, parse_csv, parse_parquet, read_header
+from monitor.ingest.parse import (
+    DEFAULT_BLOCK_BYTES,
+    ByteScreen,
+    ColumnPlan,
+    ParsedFile,
+    Refused,
+    Withheld,
+    duplicate_rejections,
+    open_csv,
+    open_parquet,
+    read_header,
+)
 from monitor.store import (
     FileOutcome,
     FileRecord,
@@ -110,6 +123,7 @@ class IngestSpec:
     detect_rename: bool = True  # rule 2 of monitor.ingest.folders
     delimiter: str = DEFAULT_DELIMITER  # CSV only: see monitor.ingest.dialect
     decimal: str = DEFAULT_DECIMAL
+    batch_bytes: int = DEFAULT_BLOCK_BYTES  # how much of a file is read and checked at a time
 
     def __post_init__(self) -> None:
         if self.format not in ("csv", "parquet"):
@@ -291,50 +305,70 @@ def commit_file(
     The file stays where it is; :func:`complete_move` does the rest. Returns None when the file
     changed while being read.
     """
-    data = read_stable(item.path, item.mtime_ns)
-    if data is None:
+    screened = _screen_file(item.path, item.mtime_ns, csv_text=spec.format == "csv")
+    if screened is None:
         return None
-    sha = hashlib.sha256(data).hexdigest()
+    sha = screened.sha256
     received = datetime.fromtimestamp(_seconds(real_clock), UTC)
     for pending in store.files_awaiting_move(spec.feed):
         if pending.sha256 == sha:  # this very file, recorded before a crash
             return _committed_from_store(store, spec, pending, item.path)
     earlier = store.file_by_sha256(sha)
     taken = [record.stored_path for record in store.files_awaiting_move(spec.feed)]
+    rule = item.rule or "settled"
     if earlier is not None:
         name = free_name(item.name, _slots(spec, FileOutcome.DUPLICATE, False), taken)
         record = store.record_file(
-            feed=spec.feed, name=item.name, sha256=sha, size=len(data), received_at=received,
-            outcome=FileOutcome.DUPLICATE, stored_path=spec.rejected / name, pass_id=pass_id,
-            errors_text=_duplicate_text(spec, item.name, sha, earlier), duplicate_of=earlier.id,
-            note=f"the same content as {earlier.name}, ingested before",
+            feed=spec.feed, name=item.name, sha256=sha, size=screened.size,
+            received_at=received, outcome=FileOutcome.DUPLICATE, stored_path=spec.rejected / name,
+            pass_id=pass_id, errors_text=_duplicate_text(spec, item.name, sha, earlier),
+            duplicate_of=earlier.id, note=f"the same content as {earlier.name}, ingested before",
         )
-        return Committed(record, item.path, item.rule or "settled", earlier=earlier)
-    parsed = _parse(data, spec)
-    if parsed.refusal is not None:
-        outcome, folder = FileOutcome.REJECTED, spec.rejected
-    elif parsed.is_empty:
-        outcome, folder = FileOutcome.EMPTY, spec.archive
-    else:
-        outcome, folder = FileOutcome.ARCHIVED, spec.archive
-    name = free_name(item.name, _slots(spec, outcome, bool(parsed.rejected)), taken)
-    errors = "" if parsed.refusal is None else _refusal_text(spec, item.name, parsed.refusal)
-    counts: ObservationCounts | None = None
-    with store.transaction():
-        record = store.record_file(
-            feed=spec.feed, name=item.name, sha256=sha, size=len(data), received_at=received,
-            outcome=outcome, stored_path=folder / name, pass_id=pass_id,
-            rows_rejected=len(parsed.rejected), errors_text=errors,
-            note=parsed.refusal or parsed.note,
-        )
-        if parsed.rejected:
-            store.record_rejected_rows(record.id, parsed.rejected)
-        if parsed.rows:
-            counts = store.insert_observations(spec.feed, record.id, parsed.columns, parsed.rows)
-    stored = store.get_file(record.id)
-    assert stored is not None
-    rule = item.rule or "settled"
-    return Committed(stored, item.path, rule, parsed, counts, None, parsed.rejected)
+        return Committed(record, item.path, rule, earlier=earlier)
+    refusal = screened.problem
+    header: tuple[str, ...] = ()
+    if refusal is None:
+        try:
+            with store.transaction():  # the file's record and all its rows, or nothing
+                record = store.record_file(
+                    feed=spec.feed, name=item.name, sha256=sha, size=screened.size,
+                    received_at=received, outcome=FileOutcome.ARCHIVED,
+                    stored_path=spec.archive / item.name, pass_id=pass_id,
+                )
+                try:
+                    with store.transaction():
+                        stored = _store_rows(store, spec, record.id, item.path, screened, {})
+                except _Retry as retry:  # a key appears twice: read again, holding its rows back
+                    with store.transaction():
+                        stored = _store_rows(
+                            store, spec, record.id, item.path, screened, retry.repeated
+                        )
+                outcome = FileOutcome.ARCHIVED if stored.rows_seen else FileOutcome.EMPTY
+                name = free_name(item.name, _slots(spec, outcome, bool(stored.rows_rejected)),
+                                 taken)
+                store.settle_file(
+                    record.id, outcome=outcome, stored_path=spec.archive / name,
+                    rows_rejected=stored.rows_rejected, note=stored.note,
+                )
+        except Refused as refused:
+            refusal, header = refused.reason, refused.header
+        except _Changed:
+            return None
+        else:
+            final = store.get_file(record.id)
+            assert final is not None
+            parsed = ParsedFile(stored.header, stored.columns, (), stored.rejected,
+                                line_word=stored.line_word)
+            return Committed(final, item.path, rule, parsed, stored.counts, None, stored.rejected)
+    name = free_name(item.name, _slots(spec, FileOutcome.REJECTED, False), taken)
+    record = store.record_file(
+        feed=spec.feed, name=item.name, sha256=sha, size=screened.size, received_at=received,
+        outcome=FileOutcome.REJECTED, stored_path=spec.rejected / name, pass_id=pass_id,
+        errors_text=_refusal_text(spec, item.name, refusal), note=refusal,
+    )
+    word = "row" if spec.format == "parquet" else "line"
+    parsed = ParsedFile(header, (), (), (), refusal=refusal, line_word=word)
+    return Committed(record, item.path, rule, parsed, None, None, ())
 
 
 def complete_move(
@@ -364,7 +398,11 @@ def complete_move(
     if committed.rejected:
         rows_path = spec.rejected / (target.name + ".rejected.csv")
         header, word = _header_for_side_file(spec, committed, target)
-        write_new_file(rows_path, _rejected_csv(committed.rejected, header, word))
+        rows = (
+            committed.rejected if record.rows_rejected <= len(committed.rejected)
+            else store.iter_rejected_rows(record.id)
+        )
+        write_new_file(rows_path, _rejected_csv(rows, header, word))
         side_files.append(rows_path)
     marker = committed.source.with_name(record.name + MARKER_SUFFIX)
     if marker.exists() and committed.source.parent == spec.inbox:
@@ -389,26 +427,224 @@ def _holds(path: Path, sha: str) -> bool:
         return False
 
 
-def _parse(data: bytes, spec: IngestSpec) -> ParsedFile:
-    if spec.format == "parquet":
-        return parse_parquet(data, spec.plan)
-    readable = data
-    if needs_rewrite(spec.delimiter, spec.decimal):
-        rewritten = standard_csv(data, spec.delimiter, spec.decimal)
-        if isinstance(rewritten, str):
-            return ParsedFile((), (), (), (), refusal=rewritten)
-        readable = rewritten
-    parsed = parse_csv(readable, spec.plan)
-    if parsed.refusal is not None:
-        hint = separator_hint(data, spec.feed, spec.delimiter, spec.decimal)
-        if hint:
-            parsed = dataclasses.replace(parsed, refusal=parsed.refusal + hint)
-    elif parsed.rejected:
+REPORTED_REJECTIONS = 1000  # rejected rows a FileReport carries (NAME.rejected.csv has all)
+
+
+@dataclass(frozen=True)
+class _Screened:
+    sha256: str
+    size: int
+    mtime_ns: int
+    problem: str | None  # why the bytes cannot be CSV text (NUL bytes, not UTF-8)
+
+
+class _Changed(Exception):
+    """The file's bytes changed while it was read."""
+
+
+class _Retry(Exception):
+    """Keys appear more than once in the file: read it again holding their rows back."""
+
+    def __init__(self, repeated: dict[tuple[str | None, int], list[int]]) -> None:
+        super().__init__(f"{len(repeated)} keys repeated")
+        self.repeated = repeated
+
+
+@dataclass(frozen=True)
+class _Stored:
+    header: tuple[str, ...]
+    columns: tuple[str, ...]
+    line_word: str
+    rows_seen: int
+    rows_rejected: int
+    rejected: tuple[RejectedRow, ...]  # the first REPORTED_REJECTIONS, by line
+    counts: ObservationCounts | None
+    note: str
+
+
+def _screen_file(path: Path, expected_mtime_ns: int | None, *, csv_text: bool) -> _Screened | None:
+    """Hash the file (and, for CSV, look for NUL bytes and bytes that are not UTF-8) in blocks;
+    None when it changed while (or since it was surveyed and) read."""
+    digest = hashlib.sha256()
+    screen = ByteScreen() if csv_text else None
+    size = 0
+    try:
+        with path.open("rb") as handle:
+            before = os.fstat(handle.fileno())
+            for block in iter(lambda: handle.read(1 << 20), b""):
+                digest.update(block)
+                if screen is not None:
+                    screen.feed(block)
+                size += len(block)
+            after = os.fstat(handle.fileno())
+    except FileNotFoundError:
+        return None
+    if (before.st_size, before.st_mtime_ns) != (after.st_size, after.st_mtime_ns):
+        return None
+    if size != after.st_size:
+        return None
+    if expected_mtime_ns is not None and after.st_mtime_ns != expected_mtime_ns:
+        return None
+    return _Screened(
+        digest.hexdigest(), size, after.st_mtime_ns, None if screen is None else screen.finish()
+    )
+
+
+class _HashingReader:
+    """A binary file read through, hashing what passes."""
+
+    def __init__(self, handle: BinaryIO) -> None:
+        self.handle = handle
+        self.digest = hashlib.sha256()
+        self.size = 0
+
+    def read(self, size: int = -1) -> bytes:
+        data = self.handle.read(size)
+        self.digest.update(data)
+        self.size += len(data)
+        return data
+
+    def drain(self) -> None:
+        while self.read(1 << 20):
+            pass
+
+
+def _store_rows(
+    store: Store,
+    spec: IngestSpec,
+    file_id: int,
+    path: Path,
+    screened: _Screened,
+    withhold: dict[tuple[str | None, int], list[int]],
+) -> _Stored:
+    """Read the file in batches and store each: rejected rows, then the rows (bulk inserts).
+
+    Raises :class:`Refused` (the file cannot be used), :class:`_Changed` (its bytes are not the
+    ones hashed) or :class:`_Retry` (keys repeated in the file, not all in ``withhold``); the
+    caller's transaction then undoes whatever was written.
+    """
+    plan = spec.plan
+    with path.open("rb") as handle:
+        before = os.fstat(handle.fileno())
+        hashing = _HashingReader(handle)
+        if spec.format == "parquet":
+            reading = open_parquet(handle, plan, block_bytes=spec.batch_bytes)
+        elif needs_rewrite(spec.delimiter, spec.decimal):
+            # Another locale's CSV (monitor.ingest.dialect): rewritten whole into the standard
+            # form, then read like any file; the hash is still of the bytes as sent.
+            rewritten = standard_csv(hashing.read(), spec.delimiter, spec.decimal)
+            if isinstance(rewritten, str):
+                raise Refused(rewritten, ())
+            reading = open_csv(io.BytesIO(rewritten), plan, block_bytes=spec.batch_bytes)
+        else:
+            reading = open_csv(hashing, plan, block_bytes=spec.batch_bytes)  # type: ignore[arg-type]
+        if reading.refusal is not None:
+            raise Refused(reading.refusal + _separator_hint(path, spec), reading.header)
+        codes: dict[str | None, int] = {}
+        who: list[np.ndarray] = []
+        when: list[np.ndarray] = []
+        where: list[np.ndarray] = []
+        rejected: list[RejectedRow] = []
+        held: list[Withheld] = []
+        rows_rejected = rows_seen = 0
+        inserting = True
+        counts: list[ObservationCounts] = []
+        for chunk in (reading.batches(withhold) if reading.batches is not None else ()):
+            if chunk.rejected:
+                store.record_rejected_rows(file_id, chunk.rejected)
+                rows_rejected += len(chunk.rejected)
+                room = REPORTED_REJECTIONS - len(rejected)
+                rejected.extend(chunk.rejected[: max(room, 0)])
+            held.extend(chunk.withheld)
+            batch = chunk.rows
+            rows_seen += len(chunk.rejected) + len(chunk.withheld) + len(batch)
+            if not len(batch):
+                continue
+            code_of = np.array([codes.setdefault(s, len(codes)) for s in batch.series], np.int64)
+            series_codes, period_keys = code_of[batch.series_index], batch.row_keys()
+            who.append(series_codes)
+            when.append(period_keys)
+            where.append(batch.line)
+            if inserting and _repeated(series_codes, period_keys, batch.line):
+                inserting = False  # the file will be read again: write nothing more
+            if inserting:
+                counts.append(
+                    store.insert_observations(spec.feed, file_id, reading.columns, batch)
+                )
+        if spec.format == "parquet":
+            same = sha256_of(path) == screened.sha256
+        else:
+            hashing.drain()
+            same = hashing.digest.hexdigest() == screened.sha256
+        after = os.fstat(handle.fileno())
+    if not same or (before.st_size, before.st_mtime_ns) != (after.st_size, after.st_mtime_ns):
+        raise _Changed
+    if who:
+        repeated = _repeated(np.concatenate(who), np.concatenate(when), np.concatenate(where))
+        if repeated:
+            names = {code: name for name, code in codes.items()}
+            raise _Retry({(names[c], k): lines for (c, k), lines in repeated.items()})
+    if held:
+        twice = duplicate_rejections(plan, held, withhold, reading.line_word)
+        store.record_rejected_rows(file_id, twice)
+        rows_rejected += len(twice)
+        rejected = sorted([*rejected, *twice], key=lambda r: r.line)[:REPORTED_REJECTIONS]
+    note = "" if rows_seen else (reading.note or reading.empty_note)
+    if rejected and spec.format == "csv":
         hint = decimal_comma_hint(
-            [cell for row in parsed.rejected[:50] for cell in row.cells], spec.feed, spec.decimal)
-        if hint:
-            parsed = dataclasses.replace(parsed, note=f"{parsed.note} {hint}".strip())
-    return parsed
+            [cell for row in rejected[:50] for cell in row.cells], spec.feed, spec.decimal)
+        note = f"{note} {hint}".strip()
+    return _Stored(
+        header=reading.header,
+        columns=reading.columns,
+        line_word=reading.line_word,
+        rows_seen=rows_seen,
+        rows_rejected=rows_rejected,
+        rejected=tuple(rejected),
+        counts=_sum_counts(counts),
+        note=note,
+    )
+
+
+def _separator_hint(path: Path, spec: IngestSpec) -> str:
+    """For a refused CSV whose fields another separator splits: the sentence naming it."""
+    if spec.format != "csv":
+        return ""
+    try:
+        with path.open("rb") as handle:
+            head = handle.read(1 << 16)
+    except OSError:
+        return ""
+    return separator_hint(head, spec.feed, spec.delimiter, spec.decimal)
+
+
+def _repeated(
+    series: np.ndarray, keys: np.ndarray, lines: np.ndarray
+) -> dict[tuple[int, int], list[int]]:
+    """(series code, period key) pairs given by more than one row → their lines, in order."""
+    order = np.lexsort((lines, keys, series))
+    s, k = series[order], keys[order]
+    same = (s[1:] == s[:-1]) & (k[1:] == k[:-1])
+    if not same.any():
+        return {}
+    found: dict[tuple[int, int], list[int]] = {}
+    for i in np.flatnonzero(same):
+        pair = (int(s[i]), int(k[i]))
+        group = found.setdefault(pair, [int(lines[order[i]])])
+        group.append(int(lines[order[i + 1]]))
+    return found
+
+
+def _sum_counts(counts: list[ObservationCounts]) -> ObservationCounts | None:
+    if not counts:
+        return None
+    return ObservationCounts(
+        sum(c.new_actuals for c in counts),
+        sum(c.revisions for c in counts),
+        sum(c.plans for c in counts),
+        sum(c.unchanged for c in counts),
+        tuple(r for c in counts for r in c.revised),
+    )
 
 
 def _slots(spec: IngestSpec, outcome: FileOutcome, rows_rejected: bool) -> list[tuple[Path, str]]:
@@ -426,7 +662,7 @@ def _committed_from_store(
 ) -> Committed:
     """What :func:`complete_move` needs, rebuilt from the database after a crash."""
     earlier = None if record.duplicate_of is None else store.get_file(record.duplicate_of)
-    rejected = tuple(store.rejected_rows(record.id))
+    rejected = tuple(store.rejected_rows(record.id, limit=REPORTED_REJECTIONS))
     return Committed(record, source, "recovered", None, None, earlier, rejected)
 
 
@@ -445,13 +681,20 @@ def _header_for_side_file(
     return (header if isinstance(header, tuple) else ()), word
 
 
-def _rejected_csv(rows: tuple[RejectedRow, ...], header: tuple[str, ...], word: str) -> bytes:
+def _rejected_csv(
+    rows: Iterable[RejectedRow], header: tuple[str, ...], word: str
+) -> Iterator[bytes]:
+    """NAME.rejected.csv in pieces of about a thousand rows."""
     buffer = io.StringIO(newline="")
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow([word, "reason", *header])
-    for row in rows:
+    for number, row in enumerate(rows, start=1):
         writer.writerow([row.line, row.reason, *row.cells])
-    return buffer.getvalue().encode("utf-8")
+        if number % 1000 == 0:
+            yield buffer.getvalue().encode("utf-8")
+            buffer.seek(0)
+            buffer.truncate()
+    yield buffer.getvalue().encode("utf-8")
 
 
 def _refusal_text(spec: IngestSpec, name: str, reason: str) -> str:

@@ -279,11 +279,13 @@ def _copy_across(source: Path, target: Path) -> None:
     os.unlink(temporary)
 
 
-def write_new_file(target: Path, content: bytes) -> None:
-    """Write a side file atomically (temporary name, fsync, rename), replacing only our own."""
+def write_new_file(target: Path, content: bytes | Iterable[bytes]) -> None:
+    """Write a side file atomically (temporary name, fsync, rename), replacing only our own.
+    ``content`` may come in pieces (a long list of rejected rows)."""
     temporary = target.with_name(f".{target.name}.{os.getpid()}.tmp")
     with temporary.open("wb") as writer:
-        writer.write(content)
+        for piece in [content] if isinstance(content, bytes) else content:
+            writer.write(piece)
         writer.flush()
         os.fsync(writer.fileno())
     os.replace(temporary, target)

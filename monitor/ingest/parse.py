@@ -8,16 +8,21 @@ reason in words. Line numbers are the file's own: the header is line 1 of a CSV;
 
 from __future__ import annotations
 
+import codecs
 import csv
 import io
+import math
 import re
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, time
 from decimal import Decimal
-from typing import Any
+from typing import Any, BinaryIO
 
-from monitor.store import ObservationRow, RejectedRow, date_period_key
+import numpy as np
+from numpy.typing import NDArray
+
+from monitor.store import ObservationBatch, ObservationRow, RejectedRow, date_period_key
 from monitor.text import did_you_mean
 
 _INTEGER = re.compile(r"^[+-]?\d+$")
@@ -280,6 +285,8 @@ def _integer_period(cell: Any) -> tuple[str, int] | str:
     if isinstance(cell, bool) or cell is None:
         return "is empty" if cell is None else f"holds {cell} where an integer period is needed"
     if isinstance(cell, int):
+        if not -(2**63) <= cell < 2**63:
+            return f"holds {cell}, an integer period beyond the range that can be stored"
         return str(cell), cell
     if not isinstance(cell, str):
         return f"holds {cell!r} where an integer period is needed"
@@ -288,157 +295,728 @@ def _integer_period(cell: Any) -> tuple[str, int] | str:
         return "is empty"
     if not _INTEGER.match(text):
         return f"holds {_shown(text)}, which is not an integer period"
-    return text, int(text)
-
-
-def _finish(
-    plan: ColumnPlan,
-    header: tuple[str, ...],
-    checker: _RowChecker,
-    good: list[ObservationRow],
-    bad: list[RejectedRow],
-    line_word: str,
-    cells_at: Callable[[set[int]], dict[int, tuple[str, ...]]],
-) -> ParsedFile:
-    """Reject every row of a key that appears more than once; the file is what remains."""
-    periods_of: dict[str | None, set[int]] = {}
-    repeated: set[tuple[str | None, int]] = set()
-    for row in good:
-        periods = periods_of.setdefault(row.series, set())
-        if row.period_key in periods:
-            repeated.add((row.series, row.period_key))
-        periods.add(row.period_key)
-    del periods_of
-    if repeated:
-        lines_of: dict[tuple[str | None, int], list[int]] = {}
-        kept: list[ObservationRow] = []
-        for row in good:
-            key = (row.series, row.period_key)
-            if key in repeated:
-                lines_of.setdefault(key, []).append(row.line)
-            else:
-                kept.append(row)
-        cells = cells_at({line for lines in lines_of.values() for line in lines})
-        for (series, _), lines in lines_of.items():
-            first = next(row for row in good if row.line == lines[0])
-            who = "" if series is None else f"{plan.per} {series!r}, "
-            where = ", ".join(str(n) for n in lines)
-            reason = (
-                f"{who}{plan.period} {first.period} appears {len(lines)} times in the file "
-                f"({line_word}s {where}); a key may appear only once in a file, so none of "
-                "these rows was used"
-            )
-            bad.extend(RejectedRow(line, reason, cells.get(line, ())) for line in lines)
-        good = kept
-    bad.sort(key=lambda rejected: rejected.line)
-    return ParsedFile(header, checker.columns, tuple(good), tuple(bad), line_word=line_word)
-
-
-def _csv_cells(text: str) -> Callable[[set[int]], dict[int, tuple[str, ...]]]:
-    def cells_at(lines: set[int]) -> dict[int, tuple[str, ...]]:
-        found: dict[int, tuple[str, ...]] = {}
-        reader = csv.reader(io.StringIO(text, newline=""), strict=True)
-        ended_at = 0
-        for record in reader:
-            if ended_at + 1 in lines:
-                found[ended_at + 1] = tuple(record)
-            ended_at = reader.line_num
-        return found
-
-    return cells_at
-
-
-def parse_csv(data: bytes, plan: ColumnPlan) -> ParsedFile:
-    """A UTF-8 CSV with a header: blank lines skipped, each other line a row to check."""
-    nul = data.find(b"\x00")
-    if nul >= 0:
-        return _refused(
-            f"the file holds NUL bytes (the first at byte {nul}): it is binary data, not CSV text"
-        )
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        line = data.count(b"\n", 0, exc.start) + 1
-        return _refused(
-            f"the file is not UTF-8 text: byte 0x{data[exc.start]:02x} at offset {exc.start} "
-            f"(line {line}) cannot be decoded; save or export the file as UTF-8"
-        )
-    if not text.strip():
-        return _empty("the file is empty", ())
-    reader = csv.reader(io.StringIO(text, newline=""), strict=True)
-    header: tuple[str, ...] | None = None
-    checker: _RowChecker | None = None
-    good: list[ObservationRow] = []
-    bad: list[RejectedRow] = []
-    ended_at = 0
-    try:
-        for record in reader:
-            line = ended_at + 1
-            ended_at = reader.line_num
-            if not record or (not record[0].strip() and all(not c.strip() for c in record)):
-                continue
-            if header is None:
-                header = tuple(cell.strip() for cell in record)
-                problem = check_header(plan, header)
-                if problem is not None:
-                    return _refused(problem, header)
-                checker = _RowChecker(plan, header, "line")
-                continue
-            assert checker is not None
-            checked = checker.check(record, line)
-            if isinstance(checked, RejectedRow):
-                bad.append(checked)
-            else:
-                good.append(checked)
-    except csv.Error as exc:
-        return _refused(f"line {reader.line_num} cannot be read as CSV: {exc}", header or ())
-    if header is None or checker is None:
-        return _empty("the file is empty", ())
-    if not good and not bad:
-        return _empty("the file has a header and no rows", header)
-    return _finish(plan, header, checker, good, bad, "line", _csv_cells(text))
+    value = int(text)
+    if not -(2**63) <= value < 2**63:
+        return f"holds {_shown(text)}, an integer period beyond the range that can be stored"
+    return text, value
 
 
 def _arrow() -> tuple[Any, Any]:
-    """pyarrow and its Parquet reader, imported on first use (slow to import; Parquet only)."""
+    """pyarrow and its Parquet reader, imported on first use (slow to import)."""
     import pyarrow as pa  # type: ignore[import-untyped]
     import pyarrow.parquet as pq  # type: ignore[import-untyped]
 
     return pa, pq
 
 
-def parse_parquet(data: bytes, plan: ColumnPlan) -> ParsedFile:
-    """A Parquet file: its column names are the header; ``line`` is the row number."""
-    pa, pq = _arrow()
-    try:
-        table = pq.read_table(io.BytesIO(data))
-    except (pa.ArrowException, OSError, ValueError, TypeError, IndexError) as exc:
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        return _refused(f"the file is not a readable Parquet file ({first})")
-    header = tuple(str(name) for name in table.column_names)
-    problem = check_header(plan, header, csv_text=False)
-    if problem is not None:
-        return _refused(problem, header)
-    if table.num_rows == 0:
-        return _empty("the file has columns and no rows", header, "row")
-    checker = _RowChecker(plan, header, "row")
-    try:
-        columns = [table.column(i).to_pylist() for i in range(len(header))]
-    except (pa.ArrowException, ValueError, OverflowError) as exc:
-        return _refused(f"the Parquet values cannot be read ({exc})", header)
+# ----------------------------------------------------------------------------- reading in batches
+#
+# A file is read in blocks of about ``block_bytes`` and each block's rows are checked as arrays:
+# pyarrow splits the fields and converts the numbers, numpy finds the lines, and only rows with
+# something doubtful (a cell that is not a plain number, a bad period, a ragged line) go through
+# the row checker above, which gives the reasons in words. The rows a block yields are exactly
+# those the row checker would give for the same lines (tests/test_ingest_batches.py compares
+# them). Where a block cannot be read that way (quotes, a lone carriage return, a line longer
+# than the csv module's field limit) the rest of the file is read by the csv module, row by row,
+# still in batches.
+
+DEFAULT_BLOCK_BYTES = 8 << 20  # about 200,000 rows of a narrow feed
+_FIELD_LIMIT = 131_072  # csv.field_size_limit()'s default: a longer line goes the csv way
+_NUMBER = r"^[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?$"
+_SIGNIFICANT = np.ones(256, dtype=bool)  # a byte that makes a line non-blank for sure
+_SIGNIFICANT[[9, 10, 11, 12, 13, 28, 29, 30, 31, 32, ord(",")]] = False
+_SIGNIFICANT[128:] = False  # non-ASCII: maybe Unicode white space; checked in Python
+
+
+class Refused(Exception):
+    """The file cannot be used as a whole (raised part-way through reading it)."""
+
+    def __init__(self, reason: str, header: Sequence[str] = ()) -> None:
+        super().__init__(reason)
+        self.reason = reason
+        self.header = tuple(header)
+
+
+@dataclass(frozen=True)
+class Withheld:
+    """A row held back from its batch because its key appears more than once in the file."""
+
+    line: int
+    series: str | None
+    period: str
+    period_key: int
+    cells: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Chunk:
+    """One batch of a file: the rows to store, the rows rejected, the rows withheld."""
+
+    rows: ObservationBatch
+    rejected: tuple[RejectedRow, ...]
+    withheld: tuple[Withheld, ...] = ()
+
+
+Keys = Mapping[tuple[str | None, int], Any]
+
+
+@dataclass
+class Reading:
+    """An opened file: its header, or why it is refused or empty, and its batches."""
+
+    header: tuple[str, ...]
+    columns: tuple[str, ...] = ()
+    line_word: str = "line"
+    refusal: str | None = None
+    note: str = ""
+    empty_note: str = "the file has a header and no rows"
+    batches: Callable[[Keys], Iterator[Chunk]] | None = None
+
+
+def _batch_of(rows: Sequence[ObservationRow], width: int) -> ObservationBatch:
+    """Rows checked one by one, as arrays."""
+    series: dict[str | None, int] = {}
+    periods: dict[tuple[str, int], int] = {}
+    count = len(rows)
+    series_index = np.fromiter(
+        (series.setdefault(r.series, len(series)) for r in rows), np.int64, count
+    )
+    period_index = np.fromiter(
+        (periods.setdefault((r.period, r.period_key), len(periods)) for r in rows), np.int64, count
+    )
+    values = np.full((count, width), math.nan)
+    for i, row in enumerate(rows):
+        values[i] = [math.nan if v is None else v for v in row.values]
+    return ObservationBatch(
+        series=tuple(series),
+        series_index=series_index,
+        periods=tuple(text for text, _ in periods),
+        period_keys=tuple(key for _, key in periods),
+        period_index=period_index,
+        is_plan=np.fromiter((r.is_plan for r in rows), bool, count),
+        values=values,
+        line=np.fromiter((r.line for r in rows), np.int64, count),
+    )
+
+
+def _joined(parts: Sequence[ObservationBatch], width: int) -> ObservationBatch:
+    """Several batches as one, rows in line order."""
+    parts = [part for part in parts if len(part)]
+    if not parts:
+        return _batch_of([], width)
+    if len(parts) == 1:
+        return parts[0]
+    series: list[str | None] = []
+    periods: list[str] = []
+    keys: list[int] = []
+    series_index, period_index = [], []
+    for part in parts:
+        series_index.append(part.series_index + len(series))
+        period_index.append(part.period_index + len(periods))
+        series.extend(part.series)
+        periods.extend(part.periods)
+        keys.extend(part.period_keys)
+    line = np.concatenate([part.line for part in parts])
+    order = np.argsort(line, kind="stable")
+    return ObservationBatch(
+        series=tuple(series),
+        series_index=np.concatenate(series_index)[order],
+        periods=tuple(periods),
+        period_keys=tuple(keys),
+        period_index=np.concatenate(period_index)[order],
+        is_plan=np.concatenate([part.is_plan for part in parts])[order],
+        values=np.concatenate([part.values for part in parts])[order],
+        line=line[order],
+    )
+
+
+def _withhold(
+    batch: ObservationBatch, keys: Keys, cells_of: Callable[[int], tuple[str, ...]]
+) -> tuple[ObservationBatch, tuple[Withheld, ...]]:
+    """Take the rows whose (series, period key) is in ``keys`` out of the batch."""
+    if not keys or not len(batch):
+        return batch, ()
+    row_keys = batch.row_keys().tolist()
+    hit = np.fromiter(
+        ((batch.series[s], k) in keys for s, k in zip(batch.series_index.tolist(), row_keys,
+                                                        strict=True)),
+        bool, len(batch),
+    )
+    if not hit.any():
+        return batch, ()
+    held = tuple(
+        Withheld(
+            int(batch.line[i]), batch.series[int(batch.series_index[i])],
+            batch.periods[int(batch.period_index[i])], row_keys[i], cells_of(int(batch.line[i])),
+        )
+        for i in np.flatnonzero(hit)
+    )
+    keep = ~hit
+    kept = ObservationBatch(
+        batch.series, batch.series_index[keep], batch.periods, batch.period_keys,
+        batch.period_index[keep], batch.is_plan[keep], batch.values[keep], batch.line[keep],
+    )
+    return kept, held
+
+
+def _python_rows(
+    lines: Iterable[str],
+    plan: ColumnPlan,
+    first_line: int,
+    header: tuple[str, ...],
+    keys: Keys,
+    rows_per_batch: int,
+) -> Iterator[Chunk]:
+    """The csv module's way, row by row (any CSV that is valid UTF-8), in batches."""
+    reader = csv.reader(lines, strict=True)
+    checker = _RowChecker(plan, header, "line")
     good: list[ObservationRow] = []
     bad: list[RejectedRow] = []
-    for number, cells in enumerate(zip(*columns, strict=True), start=1):
-        checked = checker.check(cells, number)
-        if isinstance(checked, RejectedRow):
-            bad.append(checked)
+    cells: dict[int, tuple[str, ...]] = {}
+    ended_at = first_line - 1
+
+    def flush() -> Chunk:
+        batch, held = _withhold(_batch_of(good, len(checker.columns)), keys, cells.__getitem__)
+        chunk = Chunk(batch, tuple(bad), held)
+        good.clear()
+        bad.clear()
+        cells.clear()
+        return chunk
+
+    try:
+        for record in reader:
+            line = ended_at + 1
+            ended_at = first_line - 1 + reader.line_num
+            if not record or (not record[0].strip() and all(not c.strip() for c in record)):
+                continue
+            checked = checker.check(record, line)
+            if isinstance(checked, RejectedRow):
+                bad.append(checked)
+            else:
+                good.append(checked)
+                if keys:
+                    cells[line] = tuple(record)
+            if len(good) + len(bad) >= rows_per_batch:
+                yield flush()
+    except csv.Error as exc:
+        raise Refused(
+            f"line {first_line - 1 + reader.line_num} cannot be read as CSV: {exc}", header
+        ) from None
+    if good or bad:
+        yield flush()
+
+
+class _Blocks:
+    """A binary stream cut into blocks that end at a line end (the last may not)."""
+
+    def __init__(self, stream: BinaryIO, block_bytes: int) -> None:
+        self.stream = stream
+        self.block_bytes = max(int(block_bytes), 1)
+        self.carry = b""
+        self.first = True
+
+    def next(self) -> bytes:
+        """The next block of whole lines; b"" at the end."""
+        while True:
+            data = self.stream.read(self.block_bytes)
+            if self.first:
+                self.first = False
+                if data.startswith(b"\xef\xbb\xbf"):
+                    data = data[3:]
+            if not data:
+                block, self.carry = self.carry, b""
+                return block
+            buffer = self.carry + data if self.carry else data
+            cut = buffer.rfind(b"\n") + 1
+            if cut == 0:
+                self.carry = buffer
+                continue
+            self.carry = buffer[cut:]
+            return buffer[:cut]
+
+    def rest(self, pending: bytes) -> Iterator[str]:
+        """``pending`` and the rest of the stream as text lines (the csv module's input)."""
+        raw = _ChainedRaw(pending + self.carry, self.stream)
+        self.carry = b""
+        text = io.TextIOWrapper(io.BufferedReader(raw, 1 << 16), encoding="utf-8", newline="")
+        return iter(text)
+
+
+class _ChainedRaw(io.RawIOBase):
+    def __init__(self, head: bytes, stream: BinaryIO) -> None:
+        self.head = memoryview(head)
+        self.stream = stream
+
+    def readable(self) -> bool:
+        return True
+
+    def readinto(self, buffer: Any) -> int:
+        if self.head.nbytes:
+            size = min(len(buffer), self.head.nbytes)
+            buffer[:size] = self.head[:size]
+            self.head = self.head[size:]
+            return size
+        data = self.stream.read(len(buffer))
+        buffer[: len(data)] = data
+        return len(data)
+
+
+class _FastCsv:
+    """Blocks of a CSV without quotes: one physical line is one row."""
+
+    def __init__(self, plan: ColumnPlan, header: tuple[str, ...], checker: _RowChecker) -> None:
+        self.plan = plan
+        self.checker = checker
+        self.width = len(header)
+        self.names = [f"c{i}" for i in range(self.width)]
+        self.period_cache: dict[str, tuple[str, int] | str] = {}
+        self.series_cache: dict[str, str | None] = {}
+        needed = [checker.period_at, *([] if checker.per_at is None else [checker.per_at])]
+        needed += checker.value_at
+        self.needed = sorted(set(needed))
+
+    def chunk(self, buf: bytes, first_line: int, keys: Keys) -> Chunk | None:
+        """The block's rows, or None when the block must be read the csv module's way."""
+        if b'"' in buf or buf.count(b"\r") != buf.count(b"\r\n"):
+            return None
+        arr = np.frombuffer(buf, np.uint8)
+        newlines = np.flatnonzero(arr == 10)
+        ends = newlines if buf.endswith(b"\n") else np.append(newlines, len(buf))
+        starts = np.concatenate(([0], newlines + 1))[: ends.size]
+        crlf = (ends > starts) & (arr[np.maximum(ends - 1, 0)] == 13)
+        ends = ends - crlf
+        length = ends - starts
+        if length.size and int(length.max()) > _FIELD_LIMIT:
+            return None
+        line_numbers = first_line + np.arange(ends.size, dtype=np.int64)
+        nonempty = np.flatnonzero(length > 0)
+        marked = np.zeros(ends.size, bool)
+        if nonempty.size:
+            marked[nonempty] = np.logical_or.reduceat(_SIGNIFICANT[arr], starts[nonempty])
+        blank = ~marked
+        for i in np.flatnonzero(~marked & (length > 0)):  # white space or commas only, maybe
+            cells = buf[starts[i] : ends[i]].decode("utf-8").split(",")
+            blank[i] = all(not c.strip() for c in cells)
+        commas = np.flatnonzero(arr == 44)
+        fields = np.searchsorted(commas, ends) - np.searchsorted(commas, starts) + 1
+        ragged = ~blank & (fields != self.width)
+        take = ~blank & ~ragged
+
+        def cells_of(line: int) -> tuple[str, ...]:
+            i = line - first_line
+            return tuple(buf[starts[i] : ends[i]].decode("utf-8").split(","))
+
+        rejected: list[RejectedRow] = []
+        extra: list[ObservationRow] = []
+        for i in np.flatnonzero(ragged):
+            line = int(line_numbers[i])
+            checked = self.checker.check(cells_of(line), line)
+            assert isinstance(checked, RejectedRow)
+            rejected.append(checked)
+        rows = np.flatnonzero(take)
+        batch = _batch_of([], len(self.checker.columns))
+        if rows.size:
+            if rows.size == int((length > 0).sum()):
+                text = buf  # empty lines aside (which pyarrow skips), every line is a row
+            else:
+                text = b"\n".join(buf[starts[i] : ends[i]] for i in rows.tolist())
+            table = self._read(text)
+            if table is None or table.num_rows != rows.size:
+                return None
+            batch = self._checked(table, line_numbers[rows], cells_of, rejected, extra)
+        if extra:
+            batch = _joined([batch, _batch_of(extra, len(self.checker.columns))],
+                            len(self.checker.columns))
+        batch, held = _withhold(batch, keys, cells_of)
+        rejected.sort(key=lambda r: r.line)
+        return Chunk(batch, tuple(rejected), held)
+
+    def _read(self, text: bytes) -> Any:
+        pa, pacsv = _arrow_csv()
+        try:
+            return pacsv.read_csv(
+                pa.BufferReader(text),
+                read_options=pacsv.ReadOptions(
+                    column_names=self.names, block_size=len(text) + 1024, use_threads=False
+                ),
+                parse_options=pacsv.ParseOptions(newlines_in_values=False),
+                convert_options=pacsv.ConvertOptions(
+                    column_types={self.names[i]: pa.string() for i in self.needed},
+                    include_columns=[self.names[i] for i in self.needed],
+                    strings_can_be_null=False,
+                    quoted_strings_can_be_null=False,
+                ),
+            )
+        except (pa.ArrowException, ValueError):
+            return None
+
+    def _checked(
+        self,
+        table: Any,
+        lines: NDArray[np.int64],
+        cells_of: Callable[[int], tuple[str, ...]],
+        rejected: list[RejectedRow],
+        extra: list[ObservationRow],
+    ) -> ObservationBatch:
+        """Check the rows' cells as arrays; doubtful rows go to the row checker."""
+        pa, _ = _arrow_csv()
+        import pyarrow.compute as pc  # type: ignore[import-untyped]
+
+        checker = self.checker
+        count = table.num_rows
+        doubt = np.zeros(count, bool)
+
+        def column(at: int) -> Any:
+            return table.column(self.names[at]).combine_chunks()
+
+        encoded = column(checker.period_at).dictionary_encode()
+        period_index = np.asarray(encoded.indices, dtype=np.int64)
+        texts: list[str] = []
+        keys: list[int] = []
+        for raw in encoded.dictionary.to_pylist():
+            found = self.period_cache.get(raw)
+            if found is None:
+                found = checker.parse_period(raw)
+                if len(self.period_cache) < 100_000:
+                    self.period_cache[raw] = found
+            if isinstance(found, str):
+                texts.append("")
+                keys.append(0)
+                doubt |= period_index == len(texts) - 1
+            else:
+                texts.append(found[0])
+                keys.append(found[1])
+        if checker.per_at is None:
+            series: tuple[str | None, ...] = (None,)
+            series_index = np.zeros(count, np.int64)
         else:
-            good.append(checked)
-    def cells_at(lines: set[int]) -> dict[int, tuple[str, ...]]:
-        return {n: _texts([column[n - 1] for column in columns]) for n in lines}
+            encoded = column(checker.per_at).dictionary_encode()
+            series_index = np.asarray(encoded.indices, dtype=np.int64)
+            names: list[str | None] = []
+            for raw in encoded.dictionary.to_pylist():
+                name = self.series_cache.get(raw, "")
+                if name == "":
+                    name = _per_value(raw)
+                    if len(self.series_cache) < 1_000_000:
+                        self.series_cache[raw] = name
+                names.append(name)
+                if name is None:
+                    doubt |= series_index == len(names) - 1
+            series = tuple(names)
+        values = np.empty((count, len(checker.columns)))
+        for j, at in enumerate(checker.value_at):
+            cells = column(at)
+            empty = pc.equal(cells, "").to_numpy(zero_copy_only=False)
+            number = pc.match_substring_regex(cells, _NUMBER).to_numpy(zero_copy_only=False)
+            plain = cells
+            if not number.all():
+                plain = pc.if_else(number, cells, pa.scalar(None, pa.string()))
+            converted = pc.cast(plain, pa.float64()).to_numpy(zero_copy_only=False)
+            converted = np.where(number, converted, math.nan)
+            doubt |= ~number & ~empty
+            doubt |= number & ~np.isfinite(converted)
+            values[:, j] = converted
+        required = list(checker.required)
+        if required:
+            doubt |= np.isnan(values[:, required]).any(axis=1)
+        responses = checker.responses
+        is_plan: NDArray[np.bool_] = np.zeros(count, bool)
+        if responses:
+            is_plan = np.asarray(np.isnan(values[:, :responses]).all(axis=1))
+        for i in np.flatnonzero(doubt):
+            line = int(lines[i])
+            checked = checker.check(cells_of(line), line)
+            (rejected if isinstance(checked, RejectedRow) else extra).append(checked)  # type: ignore[arg-type]
+        keep = ~doubt
+        return ObservationBatch(
+            series=series,
+            series_index=series_index[keep],
+            periods=tuple(texts),
+            period_keys=tuple(keys),
+            period_index=period_index[keep],
+            is_plan=is_plan[keep],
+            values=values[keep],
+            line=lines[keep],
+        )
 
-    return _finish(plan, header, checker, good, bad, "row", cells_at)
 
+def _arrow_csv() -> tuple[Any, Any]:
+    import pyarrow as pa
+    import pyarrow.csv as pacsv  # type: ignore[import-untyped]
+
+    return pa, pacsv
+
+
+def open_csv(
+    stream: BinaryIO, plan: ColumnPlan, *, block_bytes: int = DEFAULT_BLOCK_BYTES
+) -> Reading:
+    """Open a CSV stream (UTF-8 without NUL bytes: see :func:`screen_bytes`) for batch reading.
+
+    The header is read at once (a refusal or an empty file is known then); ``Reading.batches``
+    yields the rows in blocks of about ``block_bytes`` and raises :class:`Refused` when the file
+    turns out to be broken part-way (a bad quote).
+    """
+    blocks = _Blocks(stream, block_bytes)
+    rows_per_batch = max(block_bytes // 40, 1)
+    first = blocks.next()
+    line = 1  # the number of the first line of ``first``
+    header: tuple[str, ...] | None = None
+    body = b""
+    # The header: the first record that is not blank.
+    while first and header is None:
+        if b'"' in first or first.count(b"\r") != first.count(b"\r\n"):
+            break  # quotes or lone carriage returns: the csv module finds it
+        parts = first.split(b"\n")
+        for number, raw in enumerate(parts[:-1] if first.endswith(b"\n") else parts):
+            record = raw.rstrip(b"\r").decode("utf-8").split(",")
+            if not any(cell.strip() for cell in record):
+                continue
+            header = tuple(cell.strip() for cell in record)
+            body = first[sum(len(part) + 1 for part in parts[: number + 1]) :]
+            line += number + 1
+            break
+        else:
+            line += first.count(b"\n")
+            first = blocks.next()
+    text: Iterator[str] | None = None
+    if header is None and first:
+        text = blocks.rest(first)
+        reader = csv.reader(text, strict=True)
+        try:
+            for record in reader:
+                if record and any(cell.strip() for cell in record):
+                    header = tuple(cell.strip() for cell in record)
+                    break
+        except csv.Error as exc:
+            return Reading((), refusal=f"line {line - 1 + reader.line_num} cannot be read as "
+                                       f"CSV: {exc}")
+        line += reader.line_num
+    if header is None:
+        return Reading((), note="the file is empty")
+    problem = check_header(plan, header)
+    if problem is not None:
+        return Reading(header, refusal=problem)
+    checker = _RowChecker(plan, header, "line")
+    found = header
+
+    def batches(keys: Keys) -> Iterator[Chunk]:
+        nonlocal line
+        if text is not None:  # the csv module's way from the header on
+            yield from _python_rows(text, plan, line, found, keys, rows_per_batch)
+            return
+        fast = _FastCsv(plan, found, checker)
+        block = body
+        while True:
+            if not block:
+                block = blocks.next()
+                if not block:
+                    return
+            chunk = fast.chunk(block, line, keys)
+            if chunk is None:
+                yield from _python_rows(blocks.rest(block), plan, line, found, keys,
+                                        rows_per_batch)
+                return
+            line += block.count(b"\n")
+            block = b""
+            yield chunk
+
+    return Reading(header, checker.columns, batches=batches)
+
+
+def open_parquet(
+    source: Any, plan: ColumnPlan, *, block_bytes: int = DEFAULT_BLOCK_BYTES
+) -> Reading:
+    """Open a Parquet file (a path or a seekable binary stream) for batch reading: its column
+    names are the header, ``line`` is the row number."""
+    pa, pq = _arrow()
+    try:
+        reader = pq.ParquetFile(source)
+        header = tuple(str(name) for name in reader.schema_arrow.names)
+    except (pa.ArrowException, OSError, ValueError, TypeError, IndexError) as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        return Reading((), line_word="row",
+                       refusal=f"the file is not a readable Parquet file ({first})")
+    problem = check_header(plan, header, csv_text=False)
+    if problem is not None:
+        return Reading(header, line_word="row", refusal=problem)
+    if reader.metadata.num_rows == 0:
+        return Reading(header, line_word="row", note="the file has columns and no rows")
+    checker = _RowChecker(plan, header, "row")
+    rows_per_batch = max(block_bytes // (16 * max(len(header), 1)), 1)
+
+    def batches(keys: Keys) -> Iterator[Chunk]:
+        number = 0
+        try:
+            for record_batch in reader.iter_batches(batch_size=rows_per_batch):
+                columns = [record_batch.column(i).to_pylist() for i in range(len(header))]
+                good: list[ObservationRow] = []
+                bad: list[RejectedRow] = []
+                for cells in zip(*columns, strict=True):
+                    number += 1
+                    checked = checker.check(cells, number)
+                    (bad if isinstance(checked, RejectedRow) else good).append(checked)  # type: ignore[arg-type]
+                start = number - record_batch.num_rows + 1
+
+                def cells_of(line: int, columns: list[list[Any]] = columns,
+                             start: int = start) -> tuple[str, ...]:
+                    return _texts([column[line - start] for column in columns])
+
+                batch, held = _withhold(_batch_of(good, len(checker.columns)), keys, cells_of)
+                yield Chunk(batch, tuple(bad), held)
+        except (pa.ArrowException, OSError, ValueError, TypeError, IndexError,
+                OverflowError) as exc:
+            raise Refused(f"the Parquet values cannot be read ({exc})", header) from None
+
+    return Reading(header, checker.columns, "row", empty_note="the file has columns and no rows",
+                   batches=batches)
+
+
+def screen_bytes(data: bytes) -> str | None:
+    """Why bytes cannot be CSV text (NUL bytes, not UTF-8), or None. See :class:`ByteScreen`."""
+    screen = ByteScreen()
+    screen.feed(data)
+    return screen.finish()
+
+
+class ByteScreen:
+    """Checks a file's bytes as they stream past: the first NUL byte, the first byte that is not
+    UTF-8 (with its offset and line). A NUL anywhere is reported before any UTF-8 error."""
+
+    def __init__(self) -> None:
+        self.offset = 0  # bytes seen
+        self.newlines = 0  # line ends seen before ``pending``
+        self.pending = b""  # the undecoded end of the last block (a character cut in two)
+        self.nul_at: int | None = None
+        self.bad: tuple[int, int, int] | None = None  # offset, byte, line
+
+    def feed(self, block: bytes) -> None:
+        if self.nul_at is None:
+            nul = block.find(b"\x00")
+            if nul >= 0:
+                self.nul_at = self.offset + nul
+        if self.bad is None:
+            data = self.pending + block if self.pending else block
+            base = self.offset - len(self.pending)
+            if base == 0 and data.startswith(b"\xef\xbb\xbf"):
+                data, base = data[3:], 3
+                self._decode(data, base, final=False)
+            else:
+                self._decode(data, base, final=False)
+        self.offset += len(block)
+
+    def _decode(self, data: bytes, base: int, *, final: bool) -> None:
+        try:
+            _, used = codecs.utf_8_decode(data, "strict", final)
+        except UnicodeDecodeError as exc:
+            at = base + exc.start
+            line = self.newlines + data.count(b"\n", 0, exc.start) + 1
+            self.bad = (at, data[exc.start], line)
+            self.pending = b""
+            return
+        self.newlines += data.count(b"\n", 0, used)
+        self.pending = data[used:]
+
+    def finish(self) -> str | None:
+        if self.bad is None and self.pending:
+            self._decode(self.pending, self.offset - len(self.pending), final=True)
+        if self.nul_at is not None:
+            return (
+                f"the file holds NUL bytes (the first at byte {self.nul_at}): it is binary "
+                "data, not CSV text"
+            )
+        if self.bad is not None:
+            at, byte, line = self.bad
+            return (
+                f"the file is not UTF-8 text: byte 0x{byte:02x} at offset {at} (line {line}) "
+                "cannot be decoded; save or export the file as UTF-8"
+            )
+        return None
+
+
+def _whole(open_again: Callable[[], Reading], plan: ColumnPlan) -> ParsedFile:
+    """Every batch of a file gathered in memory (small files, tests), duplicate keys rejected
+    as the ingest rejects them: a second reading withholds the rows of the repeated keys."""
+    reading = open_again()
+    if reading.refusal is not None:
+        return _refused(reading.refusal, reading.header)
+    if reading.batches is None:
+        return _empty(reading.note, reading.header, reading.line_word)
+    good: list[ObservationRow] = []
+    bad: list[RejectedRow] = []
+    try:
+        for chunk in reading.batches({}):
+            good.extend(chunk.rows)
+            bad.extend(chunk.rejected)
+        if not good and not bad:
+            return _empty(reading.empty_note, reading.header, reading.line_word)
+        repeated = duplicate_keys(good)
+        if repeated:
+            again = open_again()
+            assert again.batches is not None
+            good, bad = [], []
+            held: list[Withheld] = []
+            for chunk in again.batches(repeated):
+                good.extend(chunk.rows)
+                bad.extend(chunk.rejected)
+                held.extend(chunk.withheld)
+            bad.extend(duplicate_rejections(plan, held, repeated, reading.line_word))
+    except Refused as refused:
+        return _refused(refused.reason, refused.header)
+    bad.sort(key=lambda rejected: rejected.line)
+    return ParsedFile(reading.header, reading.columns, tuple(good), tuple(bad),
+                      line_word=reading.line_word)
+
+
+def duplicate_keys(rows: Iterable[ObservationRow]) -> dict[tuple[str | None, int], list[int]]:
+    """Keys given by more than one row: (series, period key) → the rows' lines, in order."""
+    lines_of: dict[tuple[str | None, int], list[int]] = {}
+    for row in rows:
+        lines_of.setdefault((row.series, row.period_key), []).append(row.line)
+    return {key: sorted(lines) for key, lines in lines_of.items() if len(lines) > 1}
+
+
+def duplicate_rejections(
+    plan: ColumnPlan,
+    rows: Iterable[Withheld],
+    repeated: Keys,
+    line_word: str,
+) -> list[RejectedRow]:
+    """The rejection of every row whose key appears more than once in the file."""
+    mine = [row for row in rows if (row.series, row.period_key) in repeated]
+    mine.sort(key=lambda row: row.line)
+    first: dict[tuple[str | None, int], str] = {}
+    for row in mine:
+        first.setdefault((row.series, row.period_key), row.period)
+    out: list[RejectedRow] = []
+    for row in mine:
+        key = (row.series, row.period_key)
+        lines = repeated[key]
+        who = "" if row.series is None else f"{plan.per} {row.series!r}, "
+        where = ", ".join(str(n) for n in lines)
+        reason = (
+            f"{who}{plan.period} {first[key]} appears {len(lines)} times in the file "
+            f"({line_word}s {where}); a key may appear only once in a file, so none of "
+            "these rows was used"
+        )
+        out.append(RejectedRow(row.line, reason, row.cells))
+    return out
+
+
+def parse_csv(
+    data: bytes, plan: ColumnPlan, *, block_bytes: int = DEFAULT_BLOCK_BYTES
+) -> ParsedFile:
+    """A UTF-8 CSV with a header, from bytes: blank lines skipped, each other line a row."""
+    problem = screen_bytes(data)
+    if problem is not None:
+        return _refused(problem)
+    return _whole(lambda: open_csv(io.BytesIO(data), plan, block_bytes=block_bytes), plan)
+
+
+def parse_parquet(
+    data: bytes, plan: ColumnPlan, *, block_bytes: int = DEFAULT_BLOCK_BYTES
+) -> ParsedFile:
+    """A Parquet file from bytes: its column names are the header; ``line`` is the row number."""
+    return _whole(lambda: open_parquet(io.BytesIO(data), plan, block_bytes=block_bytes), plan)
 
 def read_header(data: bytes, file_format: str) -> tuple[str, ...] | str:
     """The header of a file's bytes, or why it cannot be read (for ``plumbline check``)."""
@@ -461,4 +1039,22 @@ def read_header(data: bytes, file_format: str) -> tuple[str, ...] | str:
     return "the file is empty"
 
 
-__all__ = ["ColumnPlan", "ParsedFile", "check_header", "parse_csv", "parse_parquet", "read_header"]
+__all__ = [
+    "DEFAULT_BLOCK_BYTES",
+    "ByteScreen",
+    "Chunk",
+    "ColumnPlan",
+    "ParsedFile",
+    "Reading",
+    "Refused",
+    "Withheld",
+    "check_header",
+    "duplicate_keys",
+    "duplicate_rejections",
+    "open_csv",
+    "open_parquet",
+    "parse_csv",
+    "parse_parquet",
+    "read_header",
+    "screen_bytes",
+]

@@ -14,7 +14,7 @@ from __future__ import annotations
 import json
 import math
 import struct
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from datetime import datetime
 from operator import itemgetter
 from pathlib import Path
@@ -30,6 +30,7 @@ from monitor.store.records import (
     FeedSummary,
     FileOutcome,
     FileRecord,
+    ObservationBatch,
     ObservationCounts,
     ObservationRecord,
     ObservationRow,
@@ -101,12 +102,49 @@ class FilesMixin(StoreBase):
             )
         return len(params)
 
-    def rejected_rows(self, file_id: int) -> list[RejectedRow]:
+    def rejected_rows(self, file_id: int, *, limit: int | None = None) -> list[RejectedRow]:
+        """A file's rejected rows by line (the first ``limit`` of them)."""
         cursor = self._conn.execute(
-            "SELECT line, reason, cells FROM rejected_rows WHERE file_id = ? ORDER BY line",
-            (file_id,),
+            "SELECT line, reason, cells FROM rejected_rows WHERE file_id = ? ORDER BY line "
+            "LIMIT ?",
+            (file_id, -1 if limit is None else limit),
         )
         return [RejectedRow(line, why, tuple(json.loads(cells))) for line, why, cells in cursor]
+
+    def iter_rejected_rows(self, file_id: int) -> Iterator[RejectedRow]:
+        """A file's rejected rows by line, read a thousand at a time (for a long list)."""
+        last = None
+        while True:
+            rows = self._conn.execute(
+                "SELECT line, reason, cells FROM rejected_rows WHERE file_id = ? "
+                "AND (? IS NULL OR line > ?) ORDER BY line LIMIT 1000",
+                (file_id, last, last),
+            ).fetchall()
+            if not rows:
+                return
+            for line, why, cells in rows:
+                yield RejectedRow(line, why, tuple(json.loads(cells)))
+            last = rows[-1][0]
+
+    def settle_file(
+        self,
+        file_id: int,
+        *,
+        outcome: FileOutcome,
+        stored_path: str | Path,
+        rows_rejected: int,
+        note: str = "",
+    ) -> None:
+        """Set what became of a file once its rows are read (in the transaction that stored
+        them): outcome, destination, rejected-row count, note."""
+        with self.transaction():
+            cursor = self._conn.execute(
+                "UPDATE files SET outcome = ?, stored_path = ?, rows_rejected = ?, note = ? "
+                "WHERE id = ?",
+                (FileOutcome(outcome).value, str(stored_path), rows_rejected, note, file_id),
+            )
+            if cursor.rowcount != 1:
+                raise StoreError(f"no file with id {file_id}")
 
     def get_file(self, file_id: int) -> FileRecord | None:
         row = self._dict("SELECT * FROM files WHERE id = ?", (file_id,))
@@ -196,6 +234,10 @@ class FilesMixin(StoreBase):
         names = tuple(columns)
         if len(set(names)) != len(names):
             raise ValueError(f"columns named twice: {names}")
+        if isinstance(rows, ObservationBatch):
+            fresh_counts = self._insert_new_batch(feed, file_id, names, rows)
+            if fresh_counts is not None:
+                return fresh_counts
         batch = rows if isinstance(rows, list) else list(rows)
         new_actuals = revisions = plans = unchanged = 0
         revised: list[Revision] = []
@@ -302,6 +344,90 @@ class FilesMixin(StoreBase):
                 (len(insert), plans, revisions, unchanged, file_id),
             )
         return ObservationCounts(new_actuals, revisions, plans, unchanged, tuple(revised))
+
+    def _insert_new_batch(
+        self, feed: str, file_id: int, names: tuple[str, ...], batch: ObservationBatch
+    ) -> ObservationCounts | None:
+        """The bulk path of :meth:`insert_observations` for rows given as arrays: when none of
+        the batch's keys has a current row yet (a backlog, new series, new periods), every row
+        is new and is written by one ``executemany`` over columns built with numpy. Returns None,
+        having written nothing, when some key has a current row (then the row-by-row rules for
+        revisions and plans apply) or a key is given twice."""
+        count = len(batch)
+        if batch.values.shape != (count, len(names)):
+            raise ValueError(f"values of shape {batch.values.shape}, {len(names)} names")
+        values = batch.values
+        finite = np.isfinite(values) | np.isnan(values)
+        if not finite.all():
+            row = int(np.flatnonzero(~finite.all(axis=1))[0])
+            raise ValueError(f"line {int(batch.line[row])}: not a finite number")
+        with self.transaction():
+            known = self._series_ids(feed)
+            skeys = [_skey(name) for name in batch.series]
+            used = np.unique(batch.series_index) if count else np.zeros(0, np.int64)
+            ids = [known.get(skeys[int(i)]) for i in used]
+            keys = batch.row_keys()
+            if count and any(sid is not None for sid in ids):
+                present = np.array([sid is not None for sid in ids])
+                old_rows = np.isin(batch.series_index, used[present])
+                if old_rows.any():
+                    sids = sorted({int(sid) for sid in ids if sid is not None})
+                    lo, hi = int(keys[old_rows].min()), int(keys[old_rows].max())
+                    hit = self._conn.execute(
+                        "SELECT 1 FROM observations WHERE series_id IN (SELECT value FROM "
+                        "json_each(?)) AND period_key BETWEEN ? AND ? AND current = 1 LIMIT 1",
+                        (json.dumps(sids), lo, hi),
+                    ).fetchone()
+                    if hit is not None:
+                        return None
+            if count:
+                canon: dict[str, int] = {}
+                code = np.array([canon.setdefault(k, len(canon)) for k in skeys], np.int64)
+                who = code[batch.series_index]
+                order = np.lexsort((keys, batch.is_plan, who))
+                pairs = np.stack(
+                    [who[order], keys[order], batch.is_plan[order].astype(np.int64)]
+                )
+                if (np.diff(pairs, axis=1) == 0).all(axis=0).any():
+                    return None  # a key given twice: the row-by-row path names it
+            registry = self._register_columns(feed, names)
+            width = len(registry)
+            fresh = sorted({skeys[int(i)] for i in used} - known.keys())
+            self._conn.executemany(
+                "INSERT INTO series (feed, key) VALUES (?, ?)", [(feed, key) for key in fresh]
+            )
+            if fresh:
+                known = self._series_ids(feed)
+            series_ids = np.array([known.get(key, -1) for key in skeys], dtype=np.int64)
+            labels: dict[int, str] = {}
+            for index in np.unique(batch.period_index).tolist() if count else []:
+                labels.setdefault(batch.period_keys[index], batch.periods[index])
+            self._conn.executemany(
+                "INSERT INTO periods (feed, period_key, period) VALUES (?, ?, ?) "
+                "ON CONFLICT DO NOTHING",
+                [(feed, key, text) for key, text in labels.items()],
+            )
+            packed = np.full((count, width), _NAN)
+            for column, name in enumerate(names):
+                packed[:, registry.index(name)] = values[:, column] + 0.0  # -0.0 → 0.0
+            blobs = packed.astype("<f8").view(np.dtype((np.void, 8 * width))).ravel().tolist()
+            period_text = [batch.periods[i] for i in batch.period_index.tolist()]
+            plans = int(batch.is_plan.sum())
+            self._conn.executemany(
+                "INSERT INTO observations (series_id, period, period_key, is_plan, revision, "
+                f"current, vals, file_id, line) VALUES (?, ?, ?, ?, 0, 1, ?, {int(file_id)}, ?)",
+                zip(
+                    series_ids[batch.series_index].tolist(), period_text, keys.tolist(),
+                    batch.is_plan.astype(np.int64).tolist(), blobs, batch.line.tolist(),
+                    strict=True,
+                ),
+            )
+            self._conn.execute(
+                "UPDATE files SET rows_ingested = rows_ingested + ?, rows_plan = rows_plan + ? "
+                "WHERE id = ?",
+                (count, plans, file_id),
+            )
+        return ObservationCounts(count - plans, 0, plans, 0, ())
 
     def _current_rows(
         self,

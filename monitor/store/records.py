@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from enum import StrEnum
@@ -139,6 +139,44 @@ class ObservationRow(NamedTuple):
     is_plan: bool
     values: tuple[float | None, ...]
     line: int
+
+
+@dataclass(frozen=True, eq=False)
+class ObservationBatch:
+    """Rows to store as arrays (what ingest hands over): the same rows as a sequence of
+    :class:`ObservationRow`, without one Python object per row.
+
+    Row ``i`` is series ``series[series_index[i]]``, period ``periods[period_index[i]]`` (key
+    ``period_keys[period_index[i]]``), ``values[i]`` aligned with the columns given beside it
+    (NaN = empty), ``line[i]``. Iterating yields :class:`ObservationRow` objects (for code that
+    wants them one by one); :meth:`Store.insert_observations` reads the arrays.
+    """
+
+    series: tuple[str | None, ...]
+    series_index: NDArray[np.int64]
+    periods: tuple[str, ...]
+    period_keys: tuple[int, ...]
+    period_index: NDArray[np.int64]
+    is_plan: NDArray[np.bool_]
+    values: NDArray[np.float64]  # (rows, columns)
+    line: NDArray[np.int64]
+
+    def __len__(self) -> int:
+        return int(self.line.size)
+
+    def row_keys(self) -> NDArray[np.int64]:
+        """Each row's period key."""
+        return np.array(self.period_keys, dtype=np.int64).reshape(-1)[self.period_index]
+
+    def __iter__(self) -> Iterator[ObservationRow]:
+        values = self.values
+        for i in range(len(self)):
+            p = int(self.period_index[i])
+            yield ObservationRow(
+                self.series[int(self.series_index[i])], self.periods[p], self.period_keys[p],
+                bool(self.is_plan[i]),
+                tuple(None if v != v else float(v) for v in values[i].tolist()), int(self.line[i]),
+            )
 
 
 @dataclass(frozen=True)

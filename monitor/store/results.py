@@ -180,6 +180,20 @@ class ResultsMixin(StoreBase):
         )
         return {_series(row["series_key"]): _fit_record(row) for row in rows}
 
+    def latest_fit_marks(
+        self, model: str, *, version: int | None = None, up_to_pass: int | None = None
+    ) -> dict[str | None, tuple[int | None, bool]]:
+        """Of the latest fit of each series (as :meth:`latest_fits` picks it), only the last
+        period key of its window and whether it was estimable: what a pass compares with,
+        without reading the fits' JSON."""
+        rows = self._conn.execute(
+            "SELECT series_key, window_last_key, estimable FROM fits WHERE id IN (SELECT max(id) "
+            "FROM fits WHERE model = ?1 AND (?2 IS NULL OR version = ?2) AND (?3 IS NULL OR "
+            "pass_id <= ?3) GROUP BY series_key)",
+            (model, version, up_to_pass),
+        )
+        return {_series(key): (last, bool(estimable)) for key, last, estimable in rows}
+
     # ----------------------------------------------------------------- forecasts and outcomes
 
     def record_forecasts(self, pass_id: int, rows: Sequence[ForecastRow]) -> RecordedForecasts:

@@ -27,6 +27,19 @@ What is measured, each in a fresh process (so that peak memory is the pass's own
 4. Unless ``--no-profile``: each pass again on a fresh copy under cProfile; the top 15 entries
    by cumulative time and the top 12 by own time.
 
+5. The **floor** of the first pass, in a fresh process on the same files: pyarrow parses every
+   CSV, one SQLite transaction inserts the same rows (series id, period, key, the numbers packed
+   as the store packs them) into a table with the store's index, and one query reads them back
+   into arrays. Nothing is checked: this is what reading, writing and reading back must cost.
+6. The **statsmodels loop** the weekly pass is measured against: for each series, statsmodels
+   ``OLS`` on its latest 104 rows and ``get_prediction(...).summary_frame`` for its plan row (the
+   95 % prediction interval), one series after another (``--loop-series N`` times N series and
+   scales to all).
+
+Printed at the end, as ratios measured in the same run (``--repeat N`` repeats the passes, the
+floor and the loop and prints each run's ratios and their median): first pass ÷ floor (target
+≤ 2), weekly pass ÷ statsmodels loop (target ≤ 0.3), peak memory of the first pass (≤ 1 GiB).
+
 ``--notify`` adds step 7 (HTML pages; no e-mail configured) to the passes. Printed: rows per
 second (rows ingested / ingest time, and / the whole pass), each stage's time from
 ``PassReport.timings``, peak RSS (``ru_maxrss``), what the pass produced.
@@ -43,6 +56,7 @@ import pstats
 import resource
 import shutil
 import sqlite3
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -61,8 +75,9 @@ FIRST_WEEK = date(2023, 1, 1)  # a Sunday
 SEED = 20230101
 SHIFT_SHARE, SHIFT_WEEK, SHIFT_FACTOR = 0.02, 100, 1.4
 NOISE_SHARE, NOISE_WEEK, NOISE_FACTOR = 0.01, 120, 3.0
-TARGET_SECONDS = 60.0
-TARGET_BYTES = 2 * 1024**3
+TARGET_FLOOR_RATIO = 2.0
+TARGET_LOOP_RATIO = 0.3
+TARGET_BYTES = 1024**3
 HEADER = "week_ending,store,orders,staff,hours\n"
 
 CONFIG = """\
@@ -253,6 +268,86 @@ def run_child(root: Path, as_of: datetime, *, profile: bool, notify: bool) -> tu
     return json.loads(last), "\n".join(text)
 
 
+# -- the floor and the statsmodels loop, each in a child process ------------------------------
+
+
+def child_floor(root: Path, files: list[Path]) -> None:
+    """Parse the CSV files with pyarrow, insert the rows in one SQLite transaction into a table
+    with the store's index, read them back; print the three times as one JSON line."""
+    import pyarrow.csv as pacsv
+
+    database = root / "floor.sqlite"
+    if database.exists():
+        database.unlink()
+    began = time.perf_counter()
+    tables = [pacsv.read_csv(path) for path in files]
+    parse = time.perf_counter() - began
+    conn = sqlite3.connect(database, isolation_level=None)
+    conn.execute("PRAGMA journal_mode=WAL")
+    conn.execute("PRAGMA synchronous=FULL")
+    conn.execute("CREATE TABLE obs (id INTEGER PRIMARY KEY, series_id INTEGER NOT NULL, "
+                 "period TEXT NOT NULL, period_key INTEGER NOT NULL, vals BLOB NOT NULL)")
+    conn.execute("CREATE INDEX obs_key ON obs(series_id, period_key)")
+    began = time.perf_counter()
+    conn.execute("BEGIN")
+    rows = 0
+    for table in tables:
+        store = table.column("store").to_numpy(zero_copy_only=False)
+        _, series_id = np.unique(store, return_inverse=True)
+        period = table.column("week_ending").cast("string").to_pylist()
+        key = (table.column("week_ending").cast("int32").to_numpy()).astype(np.int64)
+        values = np.column_stack([
+            table.column(name).to_numpy(zero_copy_only=False).astype(np.float64)
+            for name in ("orders", "staff", "hours")
+        ])
+        blobs = values.view(np.dtype((np.void, 24))).ravel().tolist()
+        conn.executemany("INSERT INTO obs (series_id, period, period_key, vals) "
+                         "VALUES (?, ?, ?, ?)",
+                         zip(series_id.tolist(), period, key.tolist(), blobs, strict=True))
+        rows += table.num_rows
+    conn.execute("COMMIT")
+    insert = time.perf_counter() - began
+    began = time.perf_counter()
+    fetched = conn.execute("SELECT series_id, period_key, vals FROM obs "
+                           "ORDER BY series_id, period_key").fetchall()
+    ids = np.fromiter((r[0] for r in fetched), np.int64, len(fetched))
+    matrix = np.frombuffer(b"".join(r[2] for r in fetched), "<f8").reshape(-1, 3)
+    read_back = time.perf_counter() - began
+    conn.close()
+    database.unlink()
+    assert ids.size == rows and matrix.shape[0] == rows
+    print(json.dumps({"parse": parse, "insert": insert, "read_back": read_back, "rows": rows,
+                      "peak_rss_bytes":
+                      resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))
+
+
+def child_loop(series: int, weeks: int, count: int) -> None:
+    """statsmodels OLS + get_prediction for ``count`` series (their latest 104 weeks and the
+    plan row after them), one after another; print the time as one JSON line."""
+    import statsmodels.api as sm
+
+    scenario = Scenario(series, weeks)
+    began = time.perf_counter()
+    width = 0.0
+    for i in range(count):
+        rows = slice(max(weeks + 1 - 104, 0), weeks + 1)  # the latest 104 actuals
+        x = sm.add_constant(np.column_stack([scenario.orders[i, rows], scenario.staff[i, rows]]))
+        fit = sm.OLS(scenario.hours[i, rows], x).fit()
+        plan = np.array([[1.0, scenario.orders[i, weeks + 1], scenario.staff[i, weeks + 1]]])
+        frame = fit.get_prediction(plan).summary_frame(alpha=0.05)
+        width += float(frame["obs_ci_upper"].iloc[0] - frame["obs_ci_lower"].iloc[0])
+    seconds = time.perf_counter() - began
+    print(json.dumps({"seconds": seconds, "series": count, "mean_width": width / count}))
+
+
+def run_json(arguments: list[str]) -> dict:
+    done = subprocess.run([sys.executable, __file__, *arguments], capture_output=True,
+                          text=True, check=False)
+    if done.returncode != 0:
+        sys.exit(f"{arguments[0]} failed (exit {done.returncode}):\n{done.stderr}")
+    return json.loads(done.stdout.rstrip("\n").split("\n")[-1])
+
+
 # -- report -------------------------------------------------------------------------------------
 
 
@@ -323,73 +418,114 @@ def main() -> None:
     parser.add_argument("--series", type=int, default=10_000)
     parser.add_argument("--weeks", type=int, default=150)
     parser.add_argument("--files", type=int, default=10)
+    parser.add_argument("--repeat", type=int, default=1, help="runs of the passes, floor, loop")
+    parser.add_argument("--loop-series", type=int, help="series the statsmodels loop times "
+                        "(scaled to all; default all)")
     parser.add_argument("--no-profile", action="store_true")
     parser.add_argument("--notify", action="store_true", help="write the HTML pages too")
     parser.add_argument("--dir", type=Path, help="keep the workspaces here (default: a temp dir)")
     parser.add_argument("--child", type=Path, help=argparse.SUPPRESS)
     parser.add_argument("--as-of", help=argparse.SUPPRESS)
     parser.add_argument("--profile-child", action="store_true", help=argparse.SUPPRESS)
+    parser.add_argument("--floor-child", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--loop-child", type=int, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child is not None:
         child_pass(args.child, args.as_of, profile=args.profile_child, notify=args.notify)
         return
+    if args.floor_child is not None:
+        child_floor(args.floor_child, sorted(args.floor_child.glob("feeds/stores/*/weeks_*.csv")))
+        return
+    if args.loop_child is not None:
+        child_loop(args.series, args.weeks, args.loop_child)
+        return
 
     work = args.dir or Path(tempfile.mkdtemp(prefix="bench_pass_"))
     work.mkdir(parents=True, exist_ok=True)
-    root = work / "workspace"
-    if root.exists():
-        shutil.rmtree(root)
+    pristine = work / "pristine"
+    if pristine.exists():
+        shutil.rmtree(pristine)
     began = time.perf_counter()
     scenario = Scenario(args.series, args.weeks)
-    written = build_workspace(root, scenario, args.files)
-    size = sum(p.stat().st_size for p in (root / "feeds" / "stores" / "inbox").glob("*.csv"))
+    written = build_workspace(pristine, scenario, args.files)
+    size = sum(p.stat().st_size for p in (pristine / "feeds" / "stores" / "inbox").glob("*.csv"))
     print(f"bench_pass: {args.series:,} series x {args.weeks} weeks, 2 predictors, per: store; "
           f"{written['actual']:,} actual + {written['plan']:,} plan rows in {args.files} CSV "
           f"files ({size / 1e6:.0f} MB); planted: {scenario.shifted} slope changes, "
           f"{scenario.noisy} noise increases; data written in {time.perf_counter() - began:.1f} s")
     print(f"machine: {os.cpu_count()} CPUs; python {sys.version.split()[0]}; numpy "
-          f"{np.__version__}; notify {'on' if args.notify else 'off'}")
+          f"{np.__version__}; notify {'on' if args.notify else 'off'}; load average "
+          f"{' '.join(f'{x:.1f}' for x in os.getloadavg())}")
+    first_clock = as_of_for(scenario, args.weeks)
+    weekly_clock = as_of_for(scenario, args.weeks + 1)
+    loop_count = min(args.loop_series or args.series, args.series)
+    runs = []
+    for run in range(1, args.repeat + 1):
+        root = work / "workspace"
+        if root.exists():
+            shutil.rmtree(root)
+        shutil.copytree(pristine, root)
+        first, _ = run_child(root, first_clock, profile=False, notify=args.notify)
+        show(f"1. first pass (all files), run {run}", first, written["actual"] + written["plan"])
+        weekly_rows = deliver_weekly_file(root, scenario)
+        weekly, _ = run_child(root, weekly_clock, profile=False, notify=args.notify)
+        show(f"2. weekly pass (one new week), run {run}", weekly,
+             weekly_rows["actual"] + weekly_rows["plan"])
+        if run == 1:
+            changed_series_query(root)
+        floor = run_json(["--floor-child", str(root)])
+        floor_total = floor["parse"] + floor["insert"] + floor["read_back"]
+        print(f"\n5. floor, run {run}: pyarrow parse {floor['parse']:.2f} s + SQLite insert "
+              f"{floor['insert']:.2f} s + read back {floor['read_back']:.2f} s = "
+              f"{floor_total:.2f} s for {floor['rows']:,} rows (peak "
+              f"{floor['peak_rss_bytes'] / 1024**2:,.0f} MiB)")
+        loop = run_json(["--loop-child", str(loop_count), "--series", str(args.series),
+                         "--weeks", str(args.weeks)])
+        loop_total = loop["seconds"] * args.series / loop_count
+        print(f"6. statsmodels loop, run {run}: {loop['seconds']:.2f} s for {loop_count:,} "
+              f"series -> {loop_total:.2f} s for {args.series:,}")
+        runs.append({
+            "first": first["timings"]["total"], "weekly": weekly["timings"]["total"],
+            "floor": floor_total, "loop": loop_total, "peak": first["peak_rss_bytes"],
+            "weekly_peak": weekly["peak_rss_bytes"],
+            "first_ratio": first["timings"]["total"] / floor_total,
+            "weekly_ratio": weekly["timings"]["total"] / loop_total,
+        })
+
     if not args.no_profile:
         profiled_root = work / "workspace_profiled"
         if profiled_root.exists():
             shutil.rmtree(profiled_root)
-        shutil.copytree(root, profiled_root)
+        shutil.copytree(pristine, profiled_root)
+        profiled, profile_text = run_child(profiled_root, first_clock, profile=True,
+                                           notify=args.notify)
+        print(f"\n4a. the first pass again under cProfile (total "
+              f"{profiled['timings']['total']:.2f} s with the profiler's overhead):")
+        print(profile_text)
+        deliver_weekly_file(profiled_root, scenario)
+        profiled, profile_text = run_child(profiled_root, weekly_clock, profile=True,
+                                           notify=args.notify)
+        print(f"\n4b. the weekly pass again under cProfile (total "
+              f"{profiled['timings']['total']:.2f} s with the profiler's overhead):")
+        print(profile_text)
 
-    first_clock = as_of_for(scenario, args.weeks)
-    first, _ = run_child(root, first_clock, profile=False, notify=args.notify)
-    show("1. first pass (all files)", first, written["actual"] + written["plan"])
-
-    weekly_clock = as_of_for(scenario, args.weeks + 1)
-    if not args.no_profile:
-        weekly_profiled_root = work / "workspace_weekly_profiled"
-        if weekly_profiled_root.exists():
-            shutil.rmtree(weekly_profiled_root)
-        shutil.copytree(root, weekly_profiled_root)
-        deliver_weekly_file(weekly_profiled_root, scenario)
-    weekly_rows = deliver_weekly_file(root, scenario)
-    weekly, _ = run_child(root, weekly_clock, profile=False, notify=args.notify)
-    show("2. weekly pass (one new week)", weekly, weekly_rows["actual"] + weekly_rows["plan"])
-
-    changed_series_query(root)
-
-    if not args.no_profile:
-        for number, (title, where, clock) in enumerate(
-            (("first", profiled_root, first_clock),
-             ("weekly", weekly_profiled_root, weekly_clock)), start=4,
-        ):
-            profiled, profile_text = run_child(where, clock, profile=True, notify=args.notify)
-            print(f"\n{number}. the {title} pass again under cProfile (total "
-                  f"{profiled['timings']['total']:.2f} s with the profiler's overhead); "
-                  "top 15 by cumulative time:")
-            print(profile_text)
-
-    total = first["timings"]["total"]
-    peak = first["peak_rss_bytes"]
-    print("\ntarget for the first pass: under 60 s and under 2 GiB peak on 2 cores")
-    print(f"  time  {total:7.2f} s   = {total / TARGET_SECONDS:.2f} x the target   "
-          f"{'met' if total < TARGET_SECONDS else 'MISSED'}")
-    print(f"  peak  {peak / 1024**3:7.2f} GiB = {peak / TARGET_BYTES:.2f} x the target   "
-          f"{'met' if peak < TARGET_BYTES else 'MISSED'}")
+    print(f"\nratios, measured side by side (load average now "
+          f"{' '.join(f'{x:.1f}' for x in os.getloadavg())}):")
+    print("  run   first pass   floor   ratio (<= 2)   weekly pass   statsmodels loop   "
+          "ratio (<= 0.3)   peak first / weekly")
+    for number, r in enumerate(runs, start=1):
+        print(f"  {number:>3}   {r['first']:>8.2f} s {r['floor']:>6.2f} s {r['first_ratio']:>10.2f}"
+              f"     {r['weekly']:>9.2f} s {r['loop']:>14.2f} s {r['weekly_ratio']:>13.3f}"
+              f"        {r['peak'] / 1024**2:,.0f} / {r['weekly_peak'] / 1024**2:,.0f} MiB")
+    first_ratio = statistics.median(r["first_ratio"] for r in runs)
+    weekly_ratio = statistics.median(r["weekly_ratio"] for r in runs)
+    peak = max(r["peak"] for r in runs)
+    print(f"  first pass / floor         median {first_ratio:6.2f}   target <= "
+          f"{TARGET_FLOOR_RATIO}   {'met' if first_ratio <= TARGET_FLOOR_RATIO else 'MISSED'}")
+    print(f"  weekly pass / loop         median {weekly_ratio:6.3f}   target <= "
+          f"{TARGET_LOOP_RATIO}   {'met' if weekly_ratio <= TARGET_LOOP_RATIO else 'MISSED'}")
+    print(f"  peak memory, first pass    max {peak / 1024**3:6.2f} GiB  target <= 1 GiB   "
+          f"{'met' if peak <= TARGET_BYTES else 'MISSED'}")
     if args.dir is None:
         shutil.rmtree(work)
 
