@@ -139,3 +139,16 @@ def test_a_lone_series_is_tested_at_the_significance_not_the_fdr() -> None:
     strict = slope_shift_conditions("m", ["a"], ["x"], [[1.9]], [[0.07]],
                                     Thresholds(significance=0.10), [None])
     assert [c.holds for c in strict] == [True]
+
+
+def test_the_stale_feed_message_names_the_clock_it_was_true_at() -> None:
+    """The message stays true after it is written: it names the pass's business clock, not
+    "now", and the cadence it counts in."""
+    latest = datetime(2025, 3, 2)
+    stale = stale_feed_condition("f", latest, "2025-03-02", datetime(2025, 3, 30, 6),
+                                 timedelta(days=7))
+    assert stale is not None and stale.holds
+    assert "now" not in stale.message
+    assert "28 days before the business clock of the pass that checked it (2025-03-30)" in (
+        stale.message)
+    assert "more than 1.5 × its cadence of 7 days" in stale.message

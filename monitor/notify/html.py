@@ -284,15 +284,29 @@ def build_model_page(
     """Everything a model's page shows, with its charts drawn (SVG)."""
     history = history or load_model(store, config, name)
     model = history.model
-    findings = ordered_findings(history.open_findings)
+    # The feed's own open findings (gone quiet, files refused) belong on the page too: a model
+    # whose feed is silent is never shown as having "no open findings".
+    feed_findings = [f for f in store.open_findings(feed=model.feed) if f.model is None]
+    findings = ordered_findings([*history.open_findings, *feed_findings])
     windows = {
         13: audit_models(store, config, model=name, last=13),
         52: audit_models(store, config, model=name, last=52),
         None: audit_models(store, config, model=name),
     }
+    # The coverage finding audits each series' latest ``recent`` scored forecasts: that window
+    # is shown beside 13 and 52, so the page's figures and the finding's can be compared.
+    finding_window = model.recent
+    spans: tuple[tuple[int | None, str], ...] = (
+        (13, "over the latest 13 scored periods"), (52, "over the latest 52 scored periods"))
+    if finding_window in (13, 52):
+        spans = tuple((k, f"{w} (the coverage finding's window)" if k == finding_window else w)
+                      for k, w in spans)
+    else:
+        windows[finding_window] = audit_models(store, config, model=name, last=finding_window)
+        spans = (*spans, (finding_window, f"over the latest {finding_window} scored periods "
+                                          "(the coverage finding's window)"))
+    spans = (*spans, (None, "over every scored period"))
     sentences = []
-    spans = ((13, "over the latest 13 scored periods"), (52, "over the latest 52 scored periods"),
-             (None, "over every scored period"))
     for key, what in spans:
         summary = summarise_coverage(windows[key])
         sentences.append(CoverageLine(coverage_sentence(summary, what),
@@ -402,10 +416,13 @@ def _model_sentence(
     counts = severity_counts(findings)
     parts = join_words([severity_count(n, word) for word, n in counts.items() if n])
     top = findings[0]
-    where = "" if top.series is None else f" in series {top.series}"
+    where = (f" of feed {top.feed}" if top.model is None and top.feed
+             else "" if top.series is None else f" in series {top.series}")
+    since = f" since {top.since}" if top.since else ""
+    # The worst current figure first: the most urgent finding with the number behind it.
     return (
-        f"{opening}; {plural(len(findings), 'open finding')} ({parts}); most urgent: "
-        f"{top.kind_words}{where}. {coverage}"
+        f"Most urgent: {top.kind_words}{where}{since} ({top.statistic}). {opening}; "
+        f"{plural(len(findings), 'open finding')} ({parts}). {coverage}"
     )
 
 
@@ -511,9 +528,18 @@ def write_index(store: Store, config: PlumblineConfig, out_dir: Path | None = No
     digests = sorted((n for n in present if re.fullmatch(r"digest-\d{4}-\d{2}-\d{2}\.html", n)),
                      reverse=True)
     models = []
+    feed_open: dict[str, int] = {}
+    for finding in store.open_findings():
+        if finding.model is None and finding.feed is not None:
+            feed_open[finding.feed] = feed_open.get(finding.feed, 0) + 1
     for name in config.models:
         count = len(store.open_findings(model=name))
+        feed = config.models[name].feed
+        on_feed = feed_open.get(feed, 0)
         note = "no open findings" if not count else f"{plural(count, 'open finding')}"
+        if on_feed:
+            note = ("" if not count else note + "; ") + (
+                f"its feed {feed} has {plural(on_feed, 'open finding')}")
         if model_page_name(name) in present:
             models.append(IndexEntry(model_page_name(name), name, note))
     # Every pass whose page is in the folder, newest first (the latest 60 of them).
