@@ -417,3 +417,15 @@ def test_every_benchmark_is_listed_in_developers() -> None:
     listed = DEVELOPERS[start:end]
     for bench in sorted((REPO_ROOT / "tests" / "benchmarks").glob("bench_*.py")):
         assert f"tests/benchmarks/{bench.name}" in listed, f"{bench.name} not in DEVELOPERS.md"
+
+
+def test_forecasts_columns_table_is_the_codes() -> None:
+    """The README's table of `plumbline forecasts` columns is monitor.exports' own list, in
+    order, with the same words."""
+    from monitor.exports import FORECAST_COLUMNS, SCORED_COLUMNS
+
+    section = _command_section("forecasts")
+    rows = re.findall(r"^\| `(\w+)` \| (.+) \|$", section, re.M)
+    columns = [(name, meaning) for name, meaning in rows if name not in {"--model"}]
+    expected = [(name, meaning) for name, meaning in FORECAST_COLUMNS + SCORED_COLUMNS]
+    assert [c for c in columns if c[0] in dict(expected)] == expected
