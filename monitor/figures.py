@@ -3,7 +3,10 @@ the command line (CSV, JSON and Parquet carry full precision).
 
 | quantity | rule | example |
 |---|---|---|
-| forecasts, actuals, bounds, coefficients (``number``) | 4 significant digits | 512.3 |
+| forecasts and their bounds, actuals (``number``) | 4 significant digits | 512.3 |
+| coefficients in a sentence (``number``) | 4 significant digits | 0.07629 |
+| coefficients and their bounds in a coefficient table | 6 significant digits | 0.0762918 |
+| standard errors and t in a coefficient table | 4 significant digits | 0.01034 |
 | leverage (``leverage_text``) | 3 significant digits | 0.0412 |
 | R² (``r_squared_text``) | 3 decimals | 0.905 |
 | p-values (``format_p_value``) | 4 decimals, "< 0.0001" below | 0.1251 |

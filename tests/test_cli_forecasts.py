@@ -216,3 +216,27 @@ def test_an_export_folder_that_cannot_be_written_is_reported_not_fatal(
     assert any(line.startswith("export: ") and "plumbline forecasts" in line
                for line in summary["skipped"])
     assert len(_listed(tmp_path, capsys)) == 2
+
+
+def test_the_same_forecast_reads_the_same_on_the_page_and_the_command_line(
+    workspace: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """One precision rule per quantity (monitor.figures): a forecast and its bounds show the
+    same digits in `plumbline forecasts`, `plumbline fit`-style tables and the model page."""
+    from monitor.figures import number
+
+    opened = _listed(workspace, capsys, "--open")
+    page = (workspace / "reports" / "model-hours.html").read_text(encoding="utf-8")
+    assert main(["forecasts", "-c", str(workspace / "plumbline.yaml"), "--open"]) == 0
+    table = capsys.readouterr().out
+    latest: dict[tuple, dict] = {}  # the page shows the latest issue per target period
+    for row in opened:
+        key = (row["series"], row["target_period"])
+        if key not in latest or row["forecast_id"] > latest[key]["forecast_id"]:
+            latest[key] = row
+    assert latest
+    for row in latest.values():
+        for key in ("point", "lower", "upper"):
+            shown = number(row[key])
+            assert shown in table, (key, shown)
+            assert shown in page, (key, shown)

@@ -26,6 +26,7 @@ import numpy as np
 
 from monitor.commands._csv import CsvTable, check_model_names, read_csv_table
 from monitor.errors import InputFileError, UsageError
+from monitor.figures import leverage_text, number
 from monitor.stats import diagnostics
 from monitor.stats.ols import OlsFit, fit_ols
 from monitor.text import did_you_mean, format_p_value
@@ -651,10 +652,11 @@ def _prediction_lines(report: dict[str, Any]) -> str:
     rows = [
         (
             _at_text(row),
-            _fmt(row["point"], 6),
-            f"{_fmt(row['lower'], 6)} to {_fmt(row['upper'], 6)}",
-            f"{_fmt(row['mean_lower'], 6)} to {_fmt(row['mean_upper'], 6)}",
-            _fmt(row["leverage"], 3),
+            # forecasts by the reports' rule for them (monitor.figures): 4 significant digits
+            number(row["point"]),
+            f"{number(row['lower'])} to {number(row['upper'])}",
+            f"{number(row['mean_lower'])} to {number(row['mean_upper'])}",
+            leverage_text(row["leverage"]),
         )
         for row in report["predictions"]
     ]
