@@ -10,6 +10,11 @@ figures a reader sees in an e-mail are the figures the command prints for the sa
     summarise_coverage(records) -> dict | None
         The records of one model pooled: counts summed, hit rate with its Clopper–Pearson
         interval, the zone of the pooled miss count, and how many series sit in each zone.
+    has_calibrated(records), calibrated_view(record)
+        For a model with ``interval_method: calibrated``: each record also carries the audit of
+        the calibrated interval issued beside the model's own (``CALIBRATED_COLUMNS``, over the
+        forecasts that had one); ``calibrated_view`` gives it under the plain keys, so
+        ``summarise_coverage([calibrated_view(r) for r in records])`` pools it.
 
 What is scored (DESIGN.md section 6): by default, per (series, target period) the last forecast
 issued before the actual arrived; with ``by_lead`` every issue, split by lead. ``last=N`` keeps
@@ -52,6 +57,33 @@ AUDIT_COLUMNS: tuple[str, ...] = (
     "interval_score",
 )
 
+# The calibrated interval's audit (``interval_method: calibrated``), beside the model's own: added
+# to every record of a model that has scored calibrated intervals, over the forecasts that had
+# one (a series' first 20 scored forecasts have none). Same meanings as the keys without the
+# prefix.
+CALIBRATED_COLUMNS: tuple[str, ...] = (
+    "calibrated_scored",
+    "calibrated_hits",
+    "calibrated_hit_rate",
+    "calibrated_hit_rate_lower",
+    "calibrated_hit_rate_upper",
+    "calibrated_misses_high",
+    "calibrated_misses_low",
+    "calibrated_kupiec_p_value",
+    "calibrated_independence_p_value",
+    "calibrated_christoffersen_p_value",
+    "calibrated_zone",
+    "calibrated_mean_width",
+    "calibrated_interval_score",
+)
+_PREFIX = "calibrated_"
+
+#: What every report says about the calibrated interval, in one line.
+CALIBRATED_LINE = (
+    "The calibrated interval comes from the model's own recent forecast errors: it is wider than "
+    "the model's where those errors were larger than the model expects, narrower where smaller."
+)
+
 # Confidence of the Clopper–Pearson interval around each hit rate (not the intervals' level).
 HIT_RATE_CONFIDENCE = 0.95
 
@@ -91,6 +123,14 @@ def audit_models(
             last=last,
             confidence=HIT_RATE_CONFIDENCE,
         )
+        calibrated = None
+        if scored.calibrated_lower is not None and scored.calibrated_upper is not None and bool(
+                np.isfinite(scored.calibrated_lower).any()):
+            calibrated = audit_batch(
+                group, scored.actual, scored.calibrated_lower, scored.calibrated_upper,
+                declared.nominal_level, lead=scored.lead if by_lead else None, last=last,
+                confidence=HIT_RATE_CONFIDENCE,
+            )
         for i in range(len(batch)):
             audit = batch.audit(i)
             if audit.scored == 0:
@@ -100,8 +140,48 @@ def audit_models(
                 "series": series_names[int(batch.group[i])],
             }
             record.update(audit.as_record())
+            if calibrated is not None:
+                # Same entries in the same order: both batches group every row, scored or not.
+                record.update(_calibrated_keys(calibrated.audit(i).as_record()))
             records.append(record)
     return records
+
+
+def calibrated_sentence(records: list[dict[str, Any]], what: str) -> str | None:
+    """The calibrated intervals' pooled coverage over a window, as a sentence to put beside the
+    model's own; None when the records carry no calibrated audit."""
+    if not has_calibrated(records):
+        return None
+    views = [calibrated_view(r) for r in records if r.get(_PREFIX + "scored")]
+    summary = summarise_coverage(views)
+    if summary is None:
+        return f"Calibrated intervals {what}: none scored yet."
+    level = f"{summary['nominal'] * 100:g} %"
+    return (
+        f"Calibrated intervals {what}: {summary['hits']} of {summary['scored']} actuals inside "
+        f"their {level} calibrated intervals (hit rate {summary['hit_rate'] * 100:.1f} %, "
+        f"interval {summary['hit_rate_lower'] * 100:.1f} % to "
+        f"{summary['hit_rate_upper'] * 100:.1f} %; zone {summary['zone']})."
+    )
+
+
+def has_calibrated(records: list[dict[str, Any]]) -> bool:
+    """True when the records carry the calibrated interval's audit (``CALIBRATED_COLUMNS``)."""
+    return any(_PREFIX + "scored" in record for record in records)
+
+
+def calibrated_view(record: dict[str, Any]) -> dict[str, Any]:
+    """A record's calibrated-interval audit under the plain keys (``scored``, ``hit_rate`` …), so
+    the code that reads the model's own figures reads these the same way."""
+    shared = ("model", "series", "nominal", "window", "lead")
+    view: dict[str, Any] = {key: record[key] for key in shared if key in record}
+    for column in CALIBRATED_COLUMNS:
+        view[column[len(_PREFIX):]] = record.get(column)
+    return view
+
+
+def _calibrated_keys(record: dict[str, Any]) -> dict[str, Any]:
+    return {column: record[column[len(_PREFIX):]] for column in CALIBRATED_COLUMNS}
 
 
 def summarise_coverage(records: list[dict[str, Any]]) -> dict[str, Any] | None:
@@ -157,4 +237,14 @@ def _series_order(series: str | None) -> tuple[int, str]:
     return (0, "") if series is None else (1, series)
 
 
-__all__ = ["AUDIT_COLUMNS", "HIT_RATE_CONFIDENCE", "audit_models", "summarise_coverage"]
+__all__ = [
+    "AUDIT_COLUMNS",
+    "CALIBRATED_COLUMNS",
+    "CALIBRATED_LINE",
+    "HIT_RATE_CONFIDENCE",
+    "audit_models",
+    "calibrated_sentence",
+    "calibrated_view",
+    "has_calibrated",
+    "summarise_coverage",
+]

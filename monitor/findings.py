@@ -130,35 +130,94 @@ def coverage_conditions(
     audit: CoverageBatch,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    calibrated: CoverageBatch | None = None,
+    calibrated_since: Sequence[str | None] | None = None,
 ) -> list[Condition]:
     """``coverage``: enough scored forecasts, hit rate below nominal, Kupiec rejects after BH.
 
     Kupiec's test is two-sided, so the hit rate must also be below nominal: intervals that are
     too wide are not a coverage problem the owner needs waking for. Severity ``critical`` in the
     red zone (Basel Committee 1996), ``warning`` otherwise. ``audit`` entries align with ``series``.
+
+    ``calibrated``: for a model with ``interval_method: calibrated``, the audit of the calibrated
+    intervals issued beside the model's own, aligned with ``audit``. Each interval is judged by
+    the same rule (its own BH family); the condition holds when either fell short, and its
+    message says which (statistic and p-value are those of the one that fell short, the model's
+    own when both did; so is ``since_period``, from ``calibrated_since`` for the calibrated one).
     """
     scored = np.asarray(audit.scored)
     p = np.where(scored >= thresholds.min_scored, audit.kupiec_p_value, np.nan)
     rejected = reject(FindingKind.COVERAGE, p, thresholds)
+    if calibrated is not None:
+        cal_scored = np.asarray(calibrated.scored)
+        cal_p = np.where(cal_scored >= thresholds.min_scored, calibrated.kupiec_p_value, np.nan)
+        cal_rejected = reject(FindingKind.COVERAGE, cal_p, thresholds)
+    declared = FindingKind.COVERAGE.declaration
+
+    def severity_in(zone: CoverageZone | None) -> Severity:
+        return (declared.raised_to if zone is CoverageZone.RED and declared.raised_to
+                else declared.severity)
+
     out: list[Condition] = []
     for i, name in enumerate(series):
-        if not _finite(float(p[i])):
+        own_judged = _finite(float(p[i]))
+        cal_judged = calibrated is not None and _finite(float(cal_p[i]))
+        if not own_judged and not cal_judged:
             continue
         hit_rate = float(audit.hit_rate[i])
-        holds = bool(rejected[i]) and hit_rate < audit.nominal
+        own_short = own_judged and bool(rejected[i]) and hit_rate < audit.nominal
         zone = audit.zone[i]
-        declared = FindingKind.COVERAGE.declaration
-        severity = (declared.raised_to if zone is CoverageZone.RED and declared.raised_to
-                    else declared.severity)
-        out.append(Condition(
-            FindingKey(FindingKind.COVERAGE, model, name, None), holds, severity,
-            hit_rate, float(p[i]), since[i],
+        own_text = (
             f"{int(audit.hits[i])} of {int(scored[i])} actuals{_series_label(name)} fell inside "
             f"their {audit.nominal:.0%} prediction intervals (hit rate {hit_rate:.0%}, "
-            f"zone {zone.value if zone else 'n/a'}); Kupiec p {format_p_value(float(p[i]))}. "
-            "The intervals issued are narrower than the errors they meet.",
-            "Check for a change in the error variance or a missing predictor; widen or refit "
-            "before relying on these intervals.",
+            f"zone {zone.value if zone else 'n/a'})"
+            + (f"; Kupiec p {format_p_value(float(p[i]))}" if own_judged else "")
+        )
+        if calibrated is None:
+            out.append(Condition(
+                FindingKey(FindingKind.COVERAGE, model, name, None), own_short,
+                severity_in(zone), hit_rate, float(p[i]), since[i],
+                own_text + ". The intervals issued are narrower than the errors they meet.",
+                "Check for a change in the error variance or a missing predictor; widen or "
+                "refit before relying on these intervals.",
+            ))
+            continue
+        cal_rate = float(calibrated.hit_rate[i])
+        cal_short = cal_judged and bool(cal_rejected[i]) and cal_rate < calibrated.nominal
+        cal_zone = calibrated.zone[i]
+        cal_text = (
+            f"{int(calibrated.hits[i])} of {int(cal_scored[i])} inside the calibrated intervals "
+            f"issued beside them (from the model's own recent errors; hit rate {cal_rate:.0%}"
+            + (f", Kupiec p {format_p_value(float(cal_p[i]))})" if cal_judged else ")")
+            if cal_scored[i] else "no calibrated interval scored yet"
+        )
+        if own_short and cal_short:
+            lead = "Both the model's intervals and the calibrated ones fell short: "
+            action = ("The errors changed faster than even the calibration follows. Look for a "
+                      "sudden change in the series or a missing predictor; refit before relying "
+                      "on either interval.")
+        elif own_short:
+            lead = "The model's intervals fell short; the calibrated ones held: "
+            action = ("Check for a change in the error variance or a missing predictor; widen or "
+                      "refit. Meanwhile the calibrated intervals kept their level here.")
+        elif cal_short:
+            lead = "The calibrated intervals fell short; the model's own held: "
+            action = ("The recent errors moved faster than the calibration follows; look for a "
+                      "sudden change in the series and read the calibrated intervals with care "
+                      "until they catch up.")
+        else:
+            lead = "Both intervals held: "
+            action = "Nothing to do."
+        statistic, p_value = (hit_rate, float(p[i])) if own_short or not cal_short else (
+            cal_rate, float(cal_p[i]))
+        own_first = own_short or not cal_short
+        worst = zone if own_first else cal_zone
+        first_miss = since[i] if own_first or calibrated_since is None else calibrated_since[i]
+        out.append(Condition(
+            FindingKey(FindingKind.COVERAGE, model, name, None), own_short or cal_short,
+            severity_in(worst), statistic, p_value if _finite(p_value) else None, first_miss,
+            f"{lead}{own_text}; {cal_text}.",
+            action,
         ))
     return out
 

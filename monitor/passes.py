@@ -43,13 +43,14 @@ import math
 import threading
 import time
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, date, datetime, timedelta
 from typing import Any, Protocol
 
 import numpy as np
 
 from monitor.analysis import BatchInput, BatchOutput, analyse_batch, looks_per_horizon
+from monitor.calibration import calibrations
 from monitor.config import Feed, Model, PlumblineConfig, model_signature, models_of_feed
 from monitor.errors import ClockRefusedError
 from monitor.exports import ExportedFile, export_forecasts
@@ -677,6 +678,8 @@ def _analyse_model(
                 inputs={p: float(plans.values[row, c]) for c, p in enumerate(predictors)},
             ))
     if forecasts:
+        if model.calibrated:
+            forecasts = _calibrated(state, name, model, forecasts)
         state.forecasts_issued += state.store.record_forecasts(state.pass_id, forecasts).inserted
 
     answered = [bool(rows) for rows in plan_rows]
@@ -939,7 +942,29 @@ def _audit_only_model(state: _PassState, name: str, model: Model, version: int) 
             version=version, observation_id=int(plans.observation_id[r]),
         ))
     if rows:
+        if model.calibrated:
+            rows = _calibrated(state, name, model, rows)
         state.forecasts_issued += state.store.record_forecasts(state.pass_id, rows).inserted
+
+
+def _calibrated(
+    state: _PassState, name: str, model: Model, rows: list[ForecastRow]
+) -> list[ForecastRow]:
+    """The forecasts with their calibrated interval beside the model's own
+    (``interval_method: calibrated``; ``monitor.calibration``), from each series' scored
+    forecasts so far (this pass's scoring included)."""
+    wanted = sorted({r.series for r in rows}, key=lambda v: "" if v is None else v)
+    factors = calibrations(state.store.scored_forecasts(name), wanted, model.nominal_level)
+    out: list[ForecastRow] = []
+    for row in rows:
+        calibration = factors[row.series]
+        bounds = calibration.bounds(row.point, row.lower, row.upper)
+        if bounds is None:
+            out.append(row)
+            continue
+        out.append(replace(row, calibrated_lower=bounds[0], calibrated_upper=bounds[1],
+                           calibrated_factor=calibration.factor))
+    return out
 
 
 def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
@@ -965,8 +990,24 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
     for g in audit.group:
         missed = periods[(group == g) & misses]
         since.append(str(missed[0]) if missed.size else None)
+    calibrated = None
+    calibrated_since: list[str | None] | None = None
+    if model.calibrated and scored.calibrated_lower is not None and (
+            scored.calibrated_upper is not None):
+        cal_lower, cal_upper = scored.calibrated_lower[keep], scored.calibrated_upper[keep]
+        if np.isfinite(cal_lower).any():
+            # The calibrated intervals issued beside the model's own, audited the same way.
+            calibrated = audit_batch(group, scored.actual[keep], cal_lower, cal_upper,
+                                     model.nominal_level)
+            actual = scored.actual[keep]
+            cal_miss = np.isfinite(cal_lower) & ((actual < cal_lower) | (actual > cal_upper))
+            calibrated_since = []
+            for g in calibrated.group:
+                missed = periods[(group == g) & cal_miss]
+                calibrated_since.append(str(missed[0]) if missed.size else None)
     t = model.thresholds
-    state.add(coverage_conditions(name, ordered, audit, t, since), t.clear_after)
+    state.add(coverage_conditions(name, ordered, audit, t, since, calibrated, calibrated_since),
+              t.clear_after)
     state.add(clustered_miss_conditions(name, ordered, audit, t, since), t.clear_after)
 
 

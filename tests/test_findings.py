@@ -80,6 +80,55 @@ def test_coverage_rule_needs_min_scored_low_hit_rate_and_bh() -> None:
     assert by_series["a"].severity is Severity.CRITICAL  # ~12 misses of 40 at 95 % is red
 
 
+def test_coverage_finding_says_which_interval_fell_short() -> None:
+    # Four series, 40 scored forecasts each, the model's own interval [0, 1] and a calibrated
+    # one [-1, 2] beside it. Actuals: a, only the model's falls short (0.5 or 1.5); b, both
+    # fall short (0.5 or 3.0); c, only the calibrated one falls short (its interval is narrowed
+    # to [0.4, 0.6] there and actuals land at 0.8); d, both hold.
+    groups, actual, lower, upper, c_lower, c_upper = [], [], [], [], [], []
+    rng = np.random.default_rng(13)
+    for g, (own_in, cal_in) in enumerate([(0.7, 1.0), (0.7, 0.7), (1.0, 0.7), (1.0, 1.0)]):
+        for _ in range(40):
+            u = rng.random()
+            groups.append(g)
+            lower.append(0.0)
+            upper.append(1.0)
+            if g == 2:
+                c_lower.append(0.4)
+                c_upper.append(0.6)
+                actual.append(0.5 if u < cal_in else 0.8)
+                continue
+            c_lower.append(-1.0)
+            c_upper.append(2.0)
+            if u < min(own_in, cal_in):
+                actual.append(0.5)
+            elif u < max(own_in, cal_in):
+                actual.append(1.5)  # outside the model's, inside the calibrated
+            else:
+                actual.append(3.0)  # outside both
+    g = np.array(groups)
+    own = audit_batch(g, np.array(actual), np.array(lower), np.array(upper), 0.95)
+    cal = audit_batch(g, np.array(actual), np.array(c_lower), np.array(c_upper), 0.95)
+    conditions = coverage_conditions("m", ["a", "b", "c", "d"], own, Thresholds(), ["p"] * 4,
+                                     cal, ["q"] * 4)
+    by = {c.key.series: c for c in conditions}
+    assert by["a"].holds and by["a"].message.startswith(
+        "The model's intervals fell short; the calibrated ones held")
+    assert by["b"].holds and by["b"].message.startswith(
+        "Both the model's intervals and the calibrated ones fell short")
+    assert by["c"].holds and by["c"].message.startswith(
+        "The calibrated intervals fell short; the model's own held")
+    assert by["c"].statistic == float(cal.hit_rate[2]) and by["c"].since_period == "q"
+    assert by["a"].statistic == float(own.hit_rate[0]) and by["a"].since_period == "p"
+    assert not by["d"].holds
+    for name in "abc":
+        assert "from the model's own recent errors" in by[name].message
+    # Without the calibrated audit the rule and its words are what they were.
+    plain = coverage_conditions("m", ["a", "b", "c", "d"], own, Thresholds(), ["p"] * 4)
+    assert [c.holds for c in plain] == [True, True, False, False]
+    assert plain[0].message.endswith("narrower than the errors they meet.")
+
+
 def test_slope_shift_is_controlled_across_series_with_bh() -> None:
     # 20 series: one with p = 0.001, the rest around 0.03. Alone each 0.03 rejects at 5 %;
     # BH at 10 % over 20 tests rejects only where p <= rank * 0.10 / 20.

@@ -22,6 +22,7 @@ LAYERS: dict[str, int] = {
     "findings": 4,
     "audit": 4,
     "analysis": 4,
+    "calibration": 4,
     "notify": 5,
     "demo": 6,
     "passes": 6,

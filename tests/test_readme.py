@@ -408,6 +408,32 @@ def test_digest_picture_exists_is_embedded_and_is_not_blank() -> None:
     assert ink.mean(axis=1).astype(bool).mean() > 0.2, "text on too few rows"
 
 
+def test_calibrated_interval_table_is_what_the_seeded_panels_give() -> None:
+    # The table of "Calibrated intervals beside the model's own" comes from the seeded panels
+    # that tests/stats/test_conformal.py pins (same seed, size and settings).
+    import importlib.util
+    import sys
+
+    from monitor.stats.conformal import DEFAULT_GAMMA, DEFAULT_MIN_SCORES, DEFAULT_WINDOW
+
+    spec = importlib.util.spec_from_file_location(
+        "conformal_panels", REPO_ROOT / "tests" / "stats" / "conformal_panels.py")
+    assert spec is not None and spec.loader is not None
+    panels = sys.modules.get("conformal_panels") or importlib.util.module_from_spec(spec)
+    sys.modules["conformal_panels"] = panels  # dataclasses look their module up there
+    spec.loader.exec_module(panels)
+    section = _section(README, lambda title: title.startswith("Calibrated intervals beside"))
+    labels = {"iid": "independent, normal", "ar1": "autocorrelated (AR(1), ρ = 0.5)",
+              "growing": "spread growing 2.5-fold", "t3": "heavy-tailed (t, 3 df)"}
+    for kind, label in labels.items():
+        r = panels.run_panel(kind, series=150, baseline=52, forecasts=300, level=0.95,
+                             seed=20261202, gamma=DEFAULT_GAMMA, window=DEFAULT_WINDOW,
+                             min_scores=DEFAULT_MIN_SCORES)
+        row = (f"| {label} | {r.own_coverage:.3f} | {r.calibrated_coverage:.3f} | "
+               f"{r.own_width_ratio:.2f} | {r.calibrated_width_ratio:.2f} |")
+        assert row in section, f"README row for {kind} should read {row}"
+
+
 # --------------------------------------------------------------------------- DEVELOPERS.md
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import sqlite3
 import threading
 import time
+from dataclasses import replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
@@ -704,3 +705,42 @@ def test_backup_refuses_to_overwrite_unless_asked(tmp_path: Path) -> None:
         store.backup(target, overwrite=True)
     with Store.open(target) as copy:
         assert copy.latest_pass() is not None
+
+
+def test_calibrated_bounds_are_stored_beside_the_models_own(tmp_path: Path) -> None:
+    # A forecast written by a version-3 database (before calibrated intervals) reads back with
+    # None; one written now keeps its calibrated bounds and factor, in list_forecasts and in the
+    # audit's columns (NaN where none was issued).
+    path = tmp_path / "v3.sqlite"
+    conn = sqlite3.connect(path, isolation_level=None)
+    apply_migrations(conn, 3)
+    conn.execute("INSERT INTO passes (as_of, started_at, status) VALUES (?, ?, 'finished')",
+                 (utc_text(T0), utc_text(T0)))
+    conn.execute(
+        "INSERT INTO forecasts (pass_id, model, feed, series_key, target_period, "
+        "target_period_key, issued_at, lead, inputs, point, lower, upper, level, extrapolation) "
+        "VALUES (1, 'pick', 'depot', 'a', ?, ?, ?, 1, '{}', 40, 35, 45, 0.9, 0)",
+        (week(1)[0], week(1)[1], utc_text(T0)),
+    )
+    conn.close()
+    with Store.open(path) as store:
+        old = store.list_forecasts(model="pick")[0]
+        assert (old.calibrated_lower, old.calibrated_upper, old.calibrated_factor) == (
+            None, None, None)
+        pass_id = store.record_pass(as_of=T0 + timedelta(days=7), started_at=T0).id
+        row = replace(_forecast("a", 2, 50.0), calibrated_lower=43.0, calibrated_upper=57.0,
+                      calibrated_factor=1.4)
+        store.record_forecasts(pass_id, [row])
+        new = store.list_forecasts(pass_id=pass_id)[0]
+        assert (new.calibrated_lower, new.calibrated_upper, new.calibrated_factor) == (
+            43.0, 57.0, 1.4)
+        store.insert_observations("depot", a_file(store), COLUMNS, [actual("a", 1, 46.0, 400.0),
+                                                                    actual("a", 2, 56.0, 410.0)])
+        awaiting = store.forecasts_awaiting_outcome("pick", "pick_hours")
+        store.record_outcomes(pass_id, [
+            Outcome(a.forecast_id, a.actual, classify_outcome(a.actual, a.lower, a.upper))
+            for a in awaiting])
+        scored = store.scored_forecasts("pick")
+        assert scored.calibrated_lower is not None and scored.calibrated_upper is not None
+        assert np.isnan(scored.calibrated_lower[0]) and np.isnan(scored.calibrated_upper[0])
+        assert scored.calibrated_lower[1] == 43.0 and scored.calibrated_upper[1] == 57.0

@@ -23,7 +23,16 @@ import textwrap
 from pathlib import Path
 from typing import Any
 
-from monitor.audit import AUDIT_COLUMNS, HIT_RATE_CONFIDENCE, audit_models, summarise_coverage
+from monitor.audit import (
+    AUDIT_COLUMNS,
+    CALIBRATED_COLUMNS,
+    CALIBRATED_LINE,
+    HIT_RATE_CONFIDENCE,
+    audit_models,
+    calibrated_view,
+    has_calibrated,
+    summarise_coverage,
+)
 from monitor.config import PlumblineConfig, load_config, lookup_model
 from monitor.errors import UsageError
 from monitor.notify.words import (
@@ -108,12 +117,14 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def csv_columns(*, last: int | None, by_lead: bool) -> list[str]:
+def csv_columns(*, last: int | None, by_lead: bool, calibrated: bool = False) -> list[str]:
     columns = list(AUDIT_COLUMNS)
     if last is not None:
         columns.append("window")
     if by_lead:
         columns.append("lead")
+    if calibrated:
+        columns += CALIBRATED_COLUMNS
     return columns
 
 
@@ -121,7 +132,7 @@ def render_csv(records: list[dict[str, Any]], *, last: int | None, by_lead: bool
     """The records as CSV: the JSON keys as the header, empty cells for null, numbers in full."""
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
-    columns = csv_columns(last=last, by_lead=by_lead)
+    columns = csv_columns(last=last, by_lead=by_lead, calibrated=has_calibrated(records))
     writer.writerow(columns)
     for record in records:
         writer.writerow(["" if record.get(c) is None else record[c] for c in columns])
@@ -152,6 +163,8 @@ def render_table(
             parts += [_wrap(f"{name}: no forecasts scored yet."), ""]
             continue
         parts.append(_wrap(_model_sentence(name, rows, by_lead=by_lead)))
+        if has_calibrated(rows):
+            parts.append(_wrap(_calibrated_sentence(rows, by_lead=by_lead)))
         parts += _columns(rows, by_lead=by_lead)
         parts.append("")
     parts.append(_wrap(
@@ -233,29 +246,42 @@ def _model_sentence(name: str, rows: list[dict[str, Any]], *, by_lead: bool) -> 
     )
 
 
+def _calibrated_sentence(rows: list[dict[str, Any]], *, by_lead: bool) -> str:
+    """The calibrated interval's pooled coverage beside the model's own, and what it is."""
+    views = [calibrated_view(r) for r in rows]
+    nominal = float(rows[0]["nominal"])
+    scored = sum(int(v["scored"] or 0) for v in views)
+    if scored == 0:
+        return f"Calibrated intervals: none scored yet. {CALIBRATED_LINE}"
+    if by_lead:
+        hits = sum(int(v["hits"] or 0) for v in views)
+        return (f"Calibrated intervals: {_calibrated_hits(hits, scored, nominal)} over every "
+                f"issue and lead. {CALIBRATED_LINE}")
+    summary = summarise_coverage([v for v in views if v["scored"]])
+    assert summary is not None
+    return (
+        f"Calibrated intervals (rows marked calibrated): "
+        f"{_calibrated_hits(summary['hits'], summary['scored'], nominal)}, hit rate "
+        f"{percent(summary['hit_rate'], 1)} (interval {percent(summary['hit_rate_lower'], 1)} to "
+        f"{percent(summary['hit_rate_upper'], 1)}), zone {summary['zone']}. {CALIBRATED_LINE}"
+    )
+
+
+def _calibrated_hits(hits: int, scored: int, nominal: float) -> str:
+    return f"{hits} of {scored} actuals inside their {level_text(nominal)} calibrated intervals"
+
+
 def _columns(rows: list[dict[str, Any]], *, by_lead: bool) -> list[str]:
     header = list(_HEADER)
     if by_lead:
         header.insert(1, "lead")
     body: list[list[str]] = []
-    for r in rows:
-        cells = [
-            "(whole model)" if r["series"] is None else str(r["series"]),
-            str(r["scored"]),
-            str(r["hits"]),
-            percent(r["hit_rate"], 1),
-            _interval(r["hit_rate_lower"], r["hit_rate_upper"]),
-            str(r["misses_high"]),
-            str(r["misses_low"]),
-            format_p_value(r["kupiec_p_value"]),
-            format_p_value(r["independence_p_value"]),
-            r["zone"] or "n/a",
-            number(r["mean_width"]),
-            number(r["interval_score"]),
-        ]
-        if by_lead:
-            cells.insert(1, str(r["lead"]))
-        body.append(cells)
+    calibrated = has_calibrated(rows)
+    for record in rows:
+        for r, label in ((record, None), (calibrated_view(record), "  calibrated")):
+            if label is not None and (not calibrated or not r["scored"]):
+                continue
+            body.append(_cells(r, label, by_lead=by_lead))
     widths = [max(len(row[i]) for row in (header, *body)) for i in range(len(header))]
     text_columns = {0, header.index("zone")}  # read left to right
     lines = []
@@ -266,6 +292,28 @@ def _columns(rows: list[dict[str, Any]], *, by_lead: bool) -> list[str]:
         ]
         lines.append(("  " + "  ".join(cells)).rstrip())
     return lines
+
+
+def _cells(r: dict[str, Any], label: str | None, *, by_lead: bool) -> list[str]:
+    """One row of the table: a series (``label`` None) or its calibrated interval's row."""
+    series = "(whole model)" if r["series"] is None else str(r["series"])
+    cells = [
+        series if label is None else label,
+        str(r["scored"]),
+        str(r["hits"]),
+        percent(r["hit_rate"], 1),
+        _interval(r["hit_rate_lower"], r["hit_rate_upper"]),
+        str(r["misses_high"]),
+        str(r["misses_low"]),
+        format_p_value(r["kupiec_p_value"]),
+        format_p_value(r["independence_p_value"]),
+        r["zone"] or "n/a",
+        number(r["mean_width"]),
+        number(r["interval_score"]),
+    ]
+    if by_lead:
+        cells.insert(1, str(r["lead"]))
+    return cells
 
 
 def _interval(lower: float | None, upper: float | None) -> str:

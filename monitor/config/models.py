@@ -200,6 +200,7 @@ class Model(_Section):
     response: ColumnName = _field("models.NAME.response")
     predictors: list[ColumnName] | None = _field("models.NAME.predictors")
     interval: IntervalColumns | None = _field("models.NAME.interval")
+    interval_method: Literal["model", "calibrated"] = _field("models.NAME.interval_method")
     per: ColumnName | None = _field("models.NAME.per")
     intercept: bool = _field("models.NAME.intercept")
     level: Fraction = _field("models.NAME.level")
@@ -220,6 +221,11 @@ class Model(_Section):
     def parameter_count(self) -> int:
         """p: coefficients including the intercept (0 for an audited interval)."""
         return len(self.predictors or ()) + (1 if self.intercept and self.fitted else 0)
+
+    @property
+    def calibrated(self) -> bool:
+        """True when a calibrated interval is issued beside the model's own."""
+        return self.interval_method == "calibrated"
 
     @property
     def nominal_level(self) -> float:

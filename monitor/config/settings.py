@@ -99,6 +99,11 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("models.NAME.interval", None,
             "Instead of predictors: the columns of a forecast made elsewhere, which Plumbline "
             "scores and audits without fitting anything."),
+    Setting("models.NAME.interval_method", "model",
+            "`model`: issue the model's own interval only. `calibrated`: also issue, beside it, "
+            "an interval calibrated on the series' own recent forecast errors (adaptive "
+            "conformal inference, Gibbs & Candès 2021), which keeps its coverage over time when "
+            "the model's conditions fail; both are stored and audited side by side."),
     Setting("models.NAME.per", None,
             "Column that splits the model into one series per value (one line per depot)."),
     Setting("models.NAME.intercept", True,

@@ -27,7 +27,13 @@ from itertools import pairwise
 from pathlib import Path
 from typing import Any
 
-from monitor.audit import audit_models, summarise_coverage
+from monitor.audit import (
+    CALIBRATED_LINE,
+    audit_models,
+    calibrated_sentence,
+    has_calibrated,
+    summarise_coverage,
+)
 from monitor.config import PlumblineConfig
 from monitor.errors import UsageError
 from monitor.notify.charts import Chart, ChartData
@@ -74,6 +80,9 @@ class ModelCoverage:
     rows: tuple[CoverageRow, ...]  # flagged13 and flagged52 as table rows
     more_flagged: int
     charts: tuple[ChartData, ...]
+    # interval_method: calibrated: the calibrated intervals' coverage over the same windows and
+    # the line that says what they are; empty for other models.
+    calibrated: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -324,6 +333,13 @@ def _model_coverage(
         rows=tuple(rows),
         more_flagged=max(0, len(flagged) - len(listed)),
         charts=tuple(charts),
+        calibrated=tuple(
+            line for line in (
+                calibrated_sentence(last13, "over the latest 13 scored periods"),
+                calibrated_sentence(last52, "over the latest 52 scored periods"),
+                CALIBRATED_LINE if has_calibrated(last52) else None,
+            ) if line is not None
+        ),
     )
 
 

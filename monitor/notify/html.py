@@ -28,7 +28,14 @@ from urllib.parse import quote
 import jinja2
 
 from monitor import __version__
-from monitor.audit import audit_models, summarise_coverage
+from monitor.audit import (
+    CALIBRATED_LINE,
+    audit_models,
+    calibrated_sentence,
+    calibrated_view,
+    has_calibrated,
+    summarise_coverage,
+)
 from monitor.config import PlumblineConfig
 from monitor.notify.charts import Chart, ChartData, draw
 from monitor.notify.fits import FitView, read_fit
@@ -311,6 +318,11 @@ def build_model_page(
         summary = summarise_coverage(windows[key])
         sentences.append(CoverageLine(coverage_sentence(summary, what),
                                       None if summary is None else summary["zone"]))
+        calibrated = calibrated_sentence(windows[key], what)
+        if calibrated is not None:  # the calibrated intervals, beside the model's own
+            sentences.append(CoverageLine(calibrated, None))
+    if has_calibrated(windows[None]):
+        sentences.append(CoverageLine(CALIBRATED_LINE, None))
     budget = ChartBudget(f"m-{_css_key(name)}", chart_cap, svg=True, png=False)
     coverage_chart = None
     if len(history.scored):
@@ -368,7 +380,7 @@ def build_model_page(
         facts=facts,
         findings=findings,
         coverage_sentences=sentences,
-        coverage_rows=[coverage_row(r) for r in _first_rows(windows[52], history)],
+        coverage_rows=_with_calibrated_rows(_first_rows(windows[52], history)),
         coverage_chart=coverage_chart,
         series_rows=_series_rows(history, _ranked_series(history, windows[52])[:TABLE_CAP]),
         details=details,
@@ -394,6 +406,20 @@ def warming_text(rows: int, needed: int) -> str:
         return (f"Warming up: {plural(rows, 'row')} with an actual so far; the first fit needs "
                 f"{needed} (min_rows, and at least p + 2), so {needed - rows} more.")
     return "No fit recorded yet: the next pass with new rows for this series fits it."
+
+
+def _with_calibrated_rows(records: list[dict[str, Any]]) -> list[CoverageRow]:
+    """Each record's row, followed, for a model with calibrated intervals, by the row of the
+    calibrated interval over the same periods."""
+    rows: list[CoverageRow] = []
+    for record in records:
+        rows.append(coverage_row(record))
+        if has_calibrated([record]) and record.get("calibrated_scored"):
+            view = calibrated_view(record)
+            label = "whole model" if record["series"] is None else str(record["series"])
+            view["series"] = f"{label}, calibrated interval"
+            rows.append(coverage_row(view))
+    return rows
 
 
 def _css_key(name: str) -> str:

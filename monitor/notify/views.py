@@ -160,6 +160,7 @@ class ForecastView:
     leverage: str
     extrapolation: bool
     inputs: str
+    calibrated: str = ""  # "lower to upper" of the calibrated interval beside it, or ""
 
 
 def forecast_view(record: ForecastRecord) -> ForecastView:
@@ -177,6 +178,10 @@ def forecast_view(record: ForecastRecord) -> ForecastView:
         leverage=number(record.leverage, 3),
         extrapolation=record.extrapolation,
         inputs=", ".join(f"{k} {number(v)}" for k, v in record.inputs.items()),
+        calibrated=(
+            "" if record.calibrated_lower is None or record.calibrated_upper is None
+            else f"{number(record.calibrated_lower)} to {number(record.calibrated_upper)}"
+        ),
     )
 
 

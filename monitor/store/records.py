@@ -348,6 +348,10 @@ class ForecastRow:
     version: int | None = None
     observation_id: int | None = None  # the plan row this forecast answers
     inputs: Mapping[str, float] = field(default_factory=dict)
+    # The calibrated interval beside the model's own (interval_method: calibrated), or None.
+    calibrated_lower: float | None = None
+    calibrated_upper: float | None = None
+    calibrated_factor: float | None = None
 
 
 @dataclass(frozen=True)
@@ -373,6 +377,9 @@ class ForecastRecord:
     level: float
     leverage: float | None
     extrapolation: bool
+    calibrated_lower: float | None = None
+    calibrated_upper: float | None = None
+    calibrated_factor: float | None = None
 
 
 @dataclass(frozen=True)
@@ -423,6 +430,9 @@ class ScoredForecasts:
     upper: NDArray[np.float64]
     level: NDArray[np.float64]
     outcome: tuple[OutcomeKind, ...]
+    # The calibrated interval issued beside the model's own; NaN where none was issued.
+    calibrated_lower: NDArray[np.float64] | None = None
+    calibrated_upper: NDArray[np.float64] | None = None
 
     def __len__(self) -> int:
         return int(self.forecast_id.shape[0])

@@ -213,7 +213,8 @@ class ResultsMixin(StoreBase):
                     row.target_period, row.target_period_key, row.observation_id, stamp,
                     row.lead, to_json(dict(row.inputs)) if row.inputs else "{}", row.point,
                     row.mean_lower, row.mean_upper, row.lower, row.upper, row.level,
-                    row.leverage, int(row.extrapolation),
+                    row.leverage, int(row.extrapolation), row.calibrated_lower,
+                    row.calibrated_upper, row.calibrated_factor,
                 )
             )
         with self.transaction():
@@ -221,8 +222,9 @@ class ResultsMixin(StoreBase):
             self._conn.executemany(
                 "INSERT INTO forecasts (pass_id, fit_id, model, version, feed, series_key, "
                 "target_period, target_period_key, observation_id, issued_at, lead, inputs, "
-                "point, mean_lower, mean_upper, lower, upper, level, leverage, extrapolation) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+                "point, mean_lower, mean_upper, lower, upper, level, leverage, extrapolation, "
+                "calibrated_lower, calibrated_upper, calibrated_factor) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
                 "ON CONFLICT (pass_id, model, series_key, target_period_key) DO NOTHING",
                 params,
             )
@@ -401,7 +403,8 @@ class ResultsMixin(StoreBase):
         # each series' earliest wanted target comes first from a short walk back its index.
         select = (
             "SELECT f.id, f.model, f.series_key, f.target_period, f.target_period_key, f.lead, "
-            "f.issued_at, o.actual, f.point, f.lower, f.upper, f.level, o.outcome "
+            "f.issued_at, o.actual, f.point, f.lower, f.upper, f.level, o.outcome, "
+            "f.calibrated_lower, f.calibrated_upper "
         )
         order = " ORDER BY f.model, f.series_key, f.target_period_key, f.id"
         params: tuple[Any, ...] = (model, int(all_series), _skey(series))
@@ -432,7 +435,7 @@ class ResultsMixin(StoreBase):
         if not keep.all():
             rows = list(compress(rows, keep))
         count = len(rows)
-        columns = [list(map(itemgetter(i), rows)) for i in range(13)]
+        columns = [list(map(itemgetter(i), rows)) for i in range(15)]
         del rows
 
         def numbers(index: int, dtype: type) -> NDArray[Any]:
@@ -453,6 +456,8 @@ class ResultsMixin(StoreBase):
             upper=numbers(10, np.float64),
             level=numbers(11, np.float64),
             outcome=tuple(kinds[kind] for kind in columns[12]),
+            calibrated_lower=np.array(columns[13], dtype=np.float64).reshape(count),
+            calibrated_upper=np.array(columns[14], dtype=np.float64).reshape(count),
         )
 
     # ----------------------------------------------------------------- baselines
@@ -599,6 +604,9 @@ def _forecast_record(row: Mapping[str, Any]) -> ForecastRecord:
         level=row["level"],
         leverage=row["leverage"],
         extrapolation=bool(row["extrapolation"]),
+        calibrated_lower=row["calibrated_lower"],
+        calibrated_upper=row["calibrated_upper"],
+        calibrated_factor=row["calibrated_factor"],
     )
 
 

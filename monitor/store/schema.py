@@ -262,10 +262,20 @@ _FINDINGS_DIGESTS_OUTBOX = (
     "CREATE INDEX outbox_due ON outbox(next_attempt_at) WHERE sent_at IS NULL",
 )
 
+# The calibrated interval issued beside the model's own (``interval_method: calibrated``): its
+# bounds and the factor q that scaled the model's half-width (monitor/stats/conformal.py). NULL
+# for a model that does not issue one and during a series' warm-up.
+_CALIBRATED_INTERVALS = (
+    "ALTER TABLE forecasts ADD COLUMN calibrated_lower REAL",
+    "ALTER TABLE forecasts ADD COLUMN calibrated_upper REAL",
+    "ALTER TABLE forecasts ADD COLUMN calibrated_factor REAL",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "passes, files, rejected rows, series, observations", _FILES_AND_OBSERVATIONS),
     Migration(2, "model versions, fits, forecasts, outcomes, baselines", _MODELS_FITS_FORECASTS),
     Migration(3, "findings, digests, the outbox", _FINDINGS_DIGESTS_OUTBOX),
+    Migration(4, "calibrated intervals beside forecasts", _CALIBRATED_INTERVALS),
 )
 SCHEMA_VERSION = MIGRATIONS[-1].version
 
