@@ -34,10 +34,12 @@ from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import BinaryIO, Literal
+from typing import TYPE_CHECKING, BinaryIO, Literal
 
-import numpy as np
-
+if TYPE_CHECKING:
+    import numpy as np
+else:  # numpy on first use: `plumbline check` reads inboxes without it
+    from monitor.store.lazy import np
 from monitor.ingest.dialect import (
     DEFAULT_DECIMAL,
     DEFAULT_DELIMITER,
