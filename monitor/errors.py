@@ -5,7 +5,9 @@
     ├── InputFileError             a file named on the command line cannot be used (exit 2)
     ├── ConfigError                the YAML config is invalid (exit 2)
     ├── ClockRefusedError          a pass's business clock is before the latest pass's (exit 2)
-    └── DatabaseLockedError        another process holds the database's writer lock (exit 2)
+    ├── DatabaseLockedError        another process holds the database's writer lock (exit 2)
+    ├── ComputeUnavailableError    the Dask scheduler of ``compute:`` cannot be reached (exit 2)
+    └── ComputeLostError           the cluster lost a batch mid-pass; the pass stopped (exit 2)
 
 Every class carries ``exit_code``; the CLI prints the message on one line and exits with it.
 """
@@ -39,8 +41,21 @@ class DatabaseLockedError(PlumblineError):
     """Another process holds the advisory writer lock of the database."""
 
 
+class ComputeUnavailableError(PlumblineError):
+    """The analysis cluster named by ``compute:`` cannot be reached or started; raised before a
+    pass records anything."""
+
+
+class ComputeLostError(PlumblineError):
+    """The analysis cluster lost work it could not run again (workers died too often, or the
+    scheduler went away). The pass is recorded as stopped early, its mark unmoved, so the next
+    pass redoes it."""
+
+
 __all__ = [
     "ClockRefusedError",
+    "ComputeLostError",
+    "ComputeUnavailableError",
     "ConfigError",
     "DatabaseLockedError",
     "InputFileError",

@@ -51,8 +51,9 @@ import numpy as np
 
 from monitor.analysis import BatchInput, BatchOutput, analyse_batch, looks_per_horizon
 from monitor.calibration import calibrations
+from monitor.compute import Compute, compute_for
 from monitor.config import Feed, Model, PlumblineConfig, model_signature, models_of_feed
-from monitor.errors import ClockRefusedError
+from monitor.errors import ClockRefusedError, ComputeLostError
 from monitor.exports import ExportedFile, export_forecasts
 from monitor.findings import (
     Condition,
@@ -206,6 +207,8 @@ class _PassState:
     mark: int
     finished_id: int  # the latest finished pass before this one (0: none)
     stop: threading.Event | None
+    compute: Compute
+    compute_lost: str | None = None  # why the analysis cluster stopped the pass
     skipped: list[str] = field(default_factory=list)
     not_taken: list[InboxNote] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
@@ -232,14 +235,22 @@ def run_pass(
     real_clock: Callable[[], datetime] = utc_now,
     notifier: PassNotifier | None = None,
     store: Store | None = None,
+    compute: Compute | None = None,
 ) -> PassReport:
     """Run one pass at business clock ``as_of`` (default: the real clock). The caller holds the
-    writer lock (``monitor.lock.DatabaseLock``)."""
+    writer lock (``monitor.lock.DatabaseLock``). The analysis runs where ``config.compute``
+    says (``monitor.compute``); a caller that runs many passes (the daemon) may hand in its own
+    ``compute`` to keep a cluster connection between them."""
     own_store = store is None
+    own_compute = compute is None
+    engine = compute_for(config.compute) if compute is None else compute
     db = Store.open(config.database) if store is None else store
     try:
-        return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier)
+        return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier,
+                    engine)
     finally:
+        if own_compute:
+            engine.close()
         if own_store:
             db.close()
 
@@ -251,6 +262,7 @@ def _run(
     stop: threading.Event | None,
     real_clock: Callable[[], datetime],
     notifier: PassNotifier | None,
+    compute: Compute,
 ) -> PassReport:
     if as_of.tzinfo is None:
         raise ValueError("as_of must carry a time zone")
@@ -282,9 +294,10 @@ def _run(
         return PassReport(None, as_of, not_taken=tuple(files_not_taken(config, real_clock)),
                           timings={"total": time.perf_counter() - started})
 
+    compute.connect()  # an unreachable cluster stops the pass here, before anything is recorded
     record = store.record_pass(as_of=as_of, started_at=real_clock())
     state = _PassState(store, config, as_of, record.id, mark, finished.id if finished else 0,
-                       stop)
+                       stop, compute)
     files: list[FileReport] = []
     stopped: str | None = None
     new_mark = mark
@@ -342,6 +355,8 @@ def _run(
         "notified": notifier is None,
     }
     store.finish_pass(record.id, finished_at=real_clock(), counts=counts)
+    if state.compute_lost is not None:  # recorded as stopped early; the caller hears why
+        raise ComputeLostError(state.compute_lost)
     # Step 7 after the pass is recorded as finished, so its pages show it so. Until it has run,
     # the pass's record says ``notified: false``; a later pass finishes the job for any pass a
     # crash interrupted there (the outbox's dedupe keys make a second try queue nothing twice).
@@ -498,6 +513,10 @@ def _analyse_all(state: _PassState) -> None:
             _coverage_conditions(state, name, model)
         except _Stopped:
             raise
+        except ComputeLostError as exc:  # the whole pass stops; the next one redoes it
+            state.compute_lost = f"model {name}: {exc}"
+            state.skipped.append(state.compute_lost)
+            raise _Stopped("refit") from exc
         except Exception as exc:
             state.skipped.append(f"model {name}: {type(exc).__name__}: {exc}")
 
@@ -619,7 +638,7 @@ def _analyse_model(
         plan_mask=plan_mask,
     )
     state.check_stop("refit")
-    out = analyse_batch(batch)
+    out = state.compute.analyse(batch, lambda: state.check_stop("refit"), function=analyse_batch)
     state.series_analysed += len(series)
 
     # What the last *finished* pass knew: a pass a crash cut short may have fitted and forecast

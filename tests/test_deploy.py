@@ -36,6 +36,9 @@ CONTAINER = DEPLOY / "container"
 KUBERNETES = DEPLOY / "kubernetes"
 
 INSTALLED_PROGRAM = "/opt/plumbline/bin/plumbline"  # where the units expect the program
+INSTALLED_DASK = "/opt/plumbline/bin/dask"  # Dask's command, installed by the dask extra
+DASK_UNITS = ("plumbline-dask-scheduler", "plumbline-dask-worker@")
+DASK_PODS = ("plumbline-dask-scheduler", "plumbline-dask-workers")
 CONFIG_PATH = "/etc/plumbline/plumbline.yaml"
 SERVICES = ("plumbline", "plumbline-pass", "plumbline-digest", "plumbline-backup")
 TIMERS = ("plumbline-pass", "plumbline-digest", "plumbline-backup")
@@ -110,6 +113,18 @@ def manifests() -> Iterator[tuple[Path, dict[str, Any]]]:
 
 def of_kind(kind: str) -> list[dict[str, Any]]:
     return [document for _, document in manifests() if document["kind"] == kind]
+
+
+def manifest_named(kind: str, name: str, folder: str | None = None) -> dict[str, Any]:
+    """The one manifest of ``kind`` called ``name`` (in ``kubernetes/FOLDER`` when given: the
+    dask shape patches the base's ConfigMap under the same name)."""
+    found = [
+        document for path, document in manifests()
+        if document["kind"] == kind and document["metadata"]["name"] == name
+        and (folder is None or path.parent == KUBERNETES / folder)
+    ]
+    assert len(found) == 1, f"{len(found)} {kind} manifests named {name}"
+    return found[0]
 
 
 def pod_specs() -> list[tuple[str, dict[str, Any]]]:
@@ -253,13 +268,15 @@ def _copy_units_for_verify(tmp_path: Path) -> list[Path]:
     """The units with the program's path pointed at the installed console script: verify
     checks that ExecStart's program exists, and /opt/plumbline is not installed here."""
     program = installed_program()
+    dask = program.with_name("dask")
     copies = []
     for path in sorted(SYSTEMD.glob("plumbline*.service")) + sorted(SYSTEMD.glob("*.timer")):
         text = path.read_text(encoding="utf-8")
         if path.suffix == ".service":
-            assert INSTALLED_PROGRAM in text
+            assert INSTALLED_PROGRAM in text or INSTALLED_DASK in text
         copy = tmp_path / path.name
-        copy.write_text(text.replace(INSTALLED_PROGRAM, str(program)), encoding="utf-8")
+        text = text.replace(INSTALLED_PROGRAM, str(program)).replace(INSTALLED_DASK, str(dask))
+        copy.write_text(text, encoding="utf-8")
         copies.append(copy)
     return copies
 
@@ -434,7 +451,7 @@ def test_manifests_parse_with_the_expected_kinds() -> None:
 
 
 def test_daemon_deployment_is_one_replica_recreated() -> None:
-    (deployment,) = of_kind("Deployment")
+    deployment = manifest_named("Deployment", "plumbline")
     assert deployment["spec"]["replicas"] == 1
     assert deployment["spec"]["strategy"] == {"type": "Recreate"}
     (container,) = deployment["spec"]["template"]["spec"]["containers"]
@@ -492,7 +509,7 @@ def test_volume_claim_is_read_write_once() -> None:
 
 
 def test_configmap_holds_the_container_config_and_names_the_secret(tmp_path: Path) -> None:
-    (configmap,) = of_kind("ConfigMap")
+    configmap = manifest_named("ConfigMap", "plumbline-config", "base")
     text = configmap["data"]["plumbline.yaml"]
     assert text == (CONTAINER / "plumbline.yaml.example").read_text(encoding="utf-8")
     written = tmp_path / "plumbline.yaml"
@@ -506,7 +523,7 @@ def test_configmap_holds_the_container_config_and_names_the_secret(tmp_path: Pat
     assert set(secret["stringData"]) == named
     assert all("REPLACE" in value for value in secret["stringData"].values())
     for name, spec in pod_specs():
-        if name == "plumbline-backup":
+        if name == "plumbline-backup" or name in DASK_PODS:
             continue  # sends no mail
         env = spec["containers"][0]["env"]
         from_secret = {e["name"]: e["valueFrom"]["secretKeyRef"] for e in env}
@@ -520,6 +537,7 @@ def test_kustomize_renders_each_shape() -> None:
         pytest.skip("kubectl is not installed here; the manifests were checked as YAML only")
     for shape, expected in (
         ("daemon", {"Deployment"}),
+        ("dask", {"Deployment", "Service", "NetworkPolicy", "ConfigMap"}),
         ("cronjob", {"CronJob"}),
         ("backup", {"CronJob"}),
     ):
@@ -534,3 +552,86 @@ def test_kustomize_renders_each_shape() -> None:
         assert expected <= kinds, shape
         # One writer per database: a shape never carries the other's workload.
         assert not ({"Deployment", "CronJob"} <= kinds), shape
+
+
+# --------------------------------------------------------------------------- the Dask cluster
+
+
+def test_dask_units_run_the_installed_dask_on_loopback() -> None:
+    scheduler = shlex.split(
+        unit_value(SYSTEMD / "plumbline-dask-scheduler.service", "Service", "ExecStart"))
+    assert scheduler[:2] == [INSTALLED_DASK, "scheduler"]
+    assert scheduler[scheduler.index("--host") + 1] == "127.0.0.1"  # the example binds loopback
+    assert "--no-dashboard" in scheduler
+    worker = shlex.split(
+        unit_value(SYSTEMD / "plumbline-dask-worker@.service", "Service", "ExecStart"))
+    assert worker[:3] == [INSTALLED_DASK, "worker", "tcp://127.0.0.1:8786"]
+    assert worker[worker.index("--host") + 1] == "127.0.0.1"
+    assert worker[worker.index("--nthreads") + 1] == "1"
+    for name in DASK_UNITS:
+        unit = SYSTEMD / f"{name}.service"
+        assert unit_value(unit, "Service", "User") == "plumbline"
+        for key in ("NoNewPrivileges", "ProtectHome", "PrivateTmp", "PrivateDevices"):
+            assert unit_value(unit, "Service", key) == "yes", f"{name}: {key}"
+        assert unit_value(unit, "Service", "ProtectSystem") == "strict"
+        assert unit_value(unit, "Service", "CapabilityBoundingSet") == ""
+        assert "StateDirectory" not in dict(unit_entries(unit)["Service"])  # no database here
+
+
+def test_dask_shape_points_the_daemon_at_its_scheduler(tmp_path: Path) -> None:
+    kustomization = yaml.safe_load((KUBERNETES / "dask" / "kustomization.yaml").read_text())
+    assert "../daemon" in kustomization["resources"]  # the one daemon, not a second writer
+    patched = manifest_named("ConfigMap", "plumbline-config", "dask")["data"]["plumbline.yaml"]
+    example = (CONTAINER / "plumbline.yaml.example").read_text(encoding="utf-8")
+    assert patched.startswith(example)  # the same config, plus the compute section
+    written = tmp_path / "plumbline.yaml"
+    written.write_text(patched, encoding="utf-8")
+    compute = load_config(written).compute
+    service = manifest_named("Service", "plumbline-dask-scheduler")
+    (port,) = service["spec"]["ports"]
+    assert compute.engine == "dask"
+    assert compute.scheduler == f"tcp://{service['metadata']['name']}:{port['port']}"
+    scheduler = manifest_named("Deployment", "plumbline-dask-scheduler")
+    assert service["spec"]["selector"] == scheduler["spec"]["selector"]["matchLabels"]
+    assert scheduler["spec"]["replicas"] == 1
+    (container,) = scheduler["spec"]["template"]["spec"]["containers"]
+    assert container["command"] == ["dask", "scheduler"]
+    assert container["args"][container["args"].index("--port") + 1] == str(port["targetPort"])
+
+
+def test_dask_workers_take_one_thread_each_from_the_daemons_image() -> None:
+    daemon = manifest_named("Deployment", "plumbline")["spec"]["template"]["spec"]["containers"][0]
+    workers = manifest_named("Deployment", "plumbline-dask-workers")
+    (container,) = workers["spec"]["template"]["spec"]["containers"]
+    assert container["image"] == daemon["image"]  # the same Plumbline version on both sides
+    assert container["command"] == ["dask", "worker", "tcp://plumbline-dask-scheduler:8786"]
+    args = container["args"]
+    assert args[args.index("--nthreads") + 1] == "1"
+    dask_limit = args[args.index("--memory-limit") + 1]  # Dask writes 1536MiB, Kubernetes 1536Mi
+    assert quantity_bytes(dask_limit.removesuffix("B")) <= quantity_bytes(
+        container["resources"]["limits"]["memory"])
+    assert container["resources"]["requests"]["cpu"] == container["resources"]["limits"]["cpu"]
+    for name in DASK_PODS:
+        spec = dict(pod_specs())[name]
+        assert spec["securityContext"]["runAsUser"] == image_uid()
+        assert spec["automountServiceAccountToken"] is False
+        (pod,) = spec["containers"]
+        assert pod["securityContext"]["readOnlyRootFilesystem"] is True
+        assert pod["securityContext"]["capabilities"]["drop"] == ["ALL"]
+        assert "data" not in {v["name"] for v in spec["volumes"]}  # no database volume
+
+
+def test_only_the_daemon_and_dask_pods_reach_the_dask_pods() -> None:
+    policy = manifest_named("NetworkPolicy", "plumbline-dask")
+    selected = policy["spec"]["podSelector"]["matchExpressions"][0]
+    assert set(selected["values"]) == {"dask-scheduler", "dask-worker"}
+    (rule,) = policy["spec"]["ingress"]
+    (source,) = rule["from"]
+    allowed = source["podSelector"]["matchExpressions"][0]["values"]
+    assert set(allowed) == {"daemon", "dask-scheduler", "dask-worker"}
+    assert policy["spec"]["policyTypes"] == ["Ingress"]
+
+
+def test_container_image_carries_the_dask_extra() -> None:
+    commands = " ".join(args for word, args in containerfile_instructions() if word == "RUN")
+    assert "'.[dask]'" in commands and "'plumbline[dask]'" in commands

@@ -24,6 +24,7 @@ LAYERS: dict[str, int] = {
     "analysis": 4,
     "calibration": 4,
     "notify": 5,
+    "compute": 5,
     "demo": 6,
     "passes": 6,
     "daemon": 7,
@@ -98,4 +99,26 @@ def test_stats_imports_only_numpy_and_scipy() -> None:
         for imported in _imports(path):
             if imported.split(".")[0] in forbidden_stdlib:
                 offences.append(f"{path.name} imports {imported} (no I/O in stats)")
+    assert offences == []
+
+
+def test_only_monitor_compute_imports_dask() -> None:
+    # Dask is an optional extra (pip install 'plumbline[dask]'): one module may import it, and
+    # only inside the functions that need it, so engine: local runs without it installed.
+    offences: list[str] = []
+    for path in PACKAGE.rglob("*.py"):
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                names = [alias.name for alias in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+                names = [node.module]
+            else:
+                continue
+            if not any(n.split(".")[0] in {"dask", "distributed"} for n in names):
+                continue
+            if path != PACKAGE / "compute.py":
+                offences.append(f"{path.relative_to(PACKAGE)} imports {names}")
+            elif node.col_offset == 0:
+                offences.append(f"compute.py imports {names} at module level")
     assert offences == []

@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 
+from monitor.compute import probe
 from monitor.config import (
     CronSchedule,
     Feed,
@@ -127,6 +128,7 @@ def check_config(config: PlumblineConfig, *, now: float) -> CheckReport:
     report.say(f"database: {config.database} ({state})")
     _check_schedules(config, report)
     _check_email(config, report)
+    _check_compute(config, report)
     for name, feed in config.feeds.items():
         _check_feed(config, name, feed, now, report)
     return report
@@ -173,6 +175,15 @@ def _check_email(config: PlumblineConfig, report: CheckReport) -> None:
         variable = getattr(email, key)
         if variable is not None and variable not in os.environ:
             report.warn(f"notify.email.{key}: the environment variable {variable} is not set here")
+
+
+def _check_compute(config: PlumblineConfig, report: CheckReport) -> None:
+    found = probe(config.compute)
+    report.say(f"compute: {found.summary}" + (f"; {found.detail}" if found.answered else ""))
+    if found.answered is False:
+        report.warn(f"compute: {found.detail}; a pass would stop with exit status 2")
+    elif found.answered is None and found.detail:
+        report.say(f"  {found.detail}")
 
 
 def _check_feed(

@@ -18,6 +18,7 @@ from datetime import UTC, datetime, timedelta
 
 from monitor.commands._common import add_config_argument, config_from
 from monitor.commands.one_pass import pass_notifier
+from monitor.compute import Compute, compute_for
 from monitor.config import PlumblineConfig
 from monitor.daemon import JobFunction, run_daemon
 from monitor.errors import PlumblineError
@@ -39,7 +40,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.set_defaults(handler=handle)
 
 
-def scan_job(config: PlumblineConfig) -> JobFunction:
+def scan_job(config: PlumblineConfig, compute: Compute | None = None) -> JobFunction:
+    """``compute``: one analysis engine kept over the daemon's passes (a Dask connection, or
+    the local worker processes of ``compute.workers``, started once rather than per pass)."""
+
     def scan(stop: threading.Event) -> Mapping[str, object] | None:
         now = datetime.now(UTC)
         with Store.open(config.database) as store:
@@ -48,7 +52,7 @@ def scan_job(config: PlumblineConfig) -> JobFunction:
             if not idle and not files_waiting(store, config):
                 return _retry_outbox(store, config, now)
             report = run_pass(config, stop_requested=stop, notifier=pass_notifier(),
-                              store=store)
+                              store=store, compute=compute)
         return {
             "pass_id": report.pass_id, "files": len(report.files_taken),
             "refused": len(report.files_refused),
@@ -98,12 +102,16 @@ def handle(args: argparse.Namespace) -> int:
 
 
 def _run(args: argparse.Namespace, config: PlumblineConfig) -> int:
-    return run_daemon(
-        database=config.database,
-        timezone=config.zone,
-        scan_schedule=config.schedule.scan,
-        scan=scan_job(config),
-        digest_schedule=config.schedule.digest,
-        digest=digest_job(config),
-        log_format=args.log_format,
-    )
+    compute = compute_for(config.compute)  # connects at the first pass, reconnects if dropped
+    try:
+        return run_daemon(
+            database=config.database,
+            timezone=config.zone,
+            scan_schedule=config.schedule.scan,
+            scan=scan_job(config, compute),
+            digest_schedule=config.schedule.digest,
+            digest=digest_job(config),
+            log_format=args.log_format,
+        )
+    finally:
+        compute.close()

@@ -27,6 +27,7 @@ from monitor.config.loader import LineLoader, load_config, parse_config
 from monitor.config.models import (
     SECTIONS,
     Baseline,
+    Compute,
     Email,
     Export,
     Feed,
@@ -52,6 +53,7 @@ __all__ = [
     "SETTINGS",
     "SETTINGS_BY_PATH",
     "Baseline",
+    "Compute",
     "CronSchedule",
     "Email",
     "Export",

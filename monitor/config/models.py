@@ -38,6 +38,7 @@ from monitor.config.values import (
     Name,
     PeriodBound,
     Problem,
+    SchedulerAddress,
     ScheduleText,
     Window,
     duration_value,
@@ -299,6 +300,35 @@ class Schedule(_Section):
     digest: ScheduleText = _field("schedule.digest")
 
 
+class Compute(_Section):
+    """Where the analysis step runs (``monitor.compute``)."""
+
+    engine: Literal["local", "dask"] = _field("compute.engine")
+    scheduler: SchedulerAddress | None = _field("compute.scheduler")
+    workers: int | None = _field("compute.workers", ge=1, le=256)
+    batch_size: int = _field("compute.batch_size", ge=1)
+    connect_timeout: Duration = _field("compute.connect_timeout")
+
+    @model_validator(mode="after")
+    def _one_source(self) -> Compute:
+        problems: list[Problem] = []
+        if self.engine == "local":
+            problems += [
+                Problem((key,), f"{key} applies to engine dask only; this config runs the "
+                                "analysis locally (engine: local)")
+                for key in ("scheduler", "workers") if getattr(self, key) is not None
+            ]
+        elif (self.scheduler is None) == (self.workers is None):
+            message = ("engine dask needs a scheduler address (tcp://HOST:PORT) or a number of "
+                       "local worker processes (workers), one of the two")
+            problems.append(Problem(("scheduler",) if self.scheduler else (), message))
+        if self.connect_timeout <= timedelta(0):
+            problems.append(Problem(("connect_timeout",), "the timeout must be longer than 0s"))
+        if problems:
+            raise problems_error(problems)
+        return self
+
+
 class Email(_Section):
     """SMTP settings; the secrets are named here and read from the environment."""
 
@@ -372,6 +402,7 @@ class PlumblineConfig(_Section):
     schedule: Schedule = _field("schedule", section=True)
     notify: Notify = _field("notify", section=True)
     export: Export = _field("export", section=True)
+    compute: Compute = _field("compute", section=True)
 
     _source: Path | None = PrivateAttr(default=None)
 
@@ -479,6 +510,7 @@ SECTIONS: dict[str, type[BaseModel]] = {
     "notify": Notify,
     "notify.email": Email,
     "export": Export,
+    "compute": Compute,
 }
 
 
@@ -544,6 +576,7 @@ def config_json_schema() -> dict[str, Any]:
 __all__ = [
     "SECTIONS",
     "Baseline",
+    "Compute",
     "Email",
     "Export",
     "Feed",

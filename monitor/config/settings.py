@@ -62,6 +62,7 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("notify", None, "Where findings and digests go.", computed=_SEE_BELOW),
     Setting("export", None, "Where each pass writes the forecasts it issued, for other jobs "
             "to take.", computed=_SEE_BELOW),
+    Setting("compute", None, "Where the analysis step of a pass runs.", computed=_SEE_BELOW),
     # feeds.NAME
     Setting("feeds.NAME.inbox", ..., "Folder where new data files land."),
     Setting("feeds.NAME.archive", None, "Folder that ingested files move to, byte for byte.",
@@ -183,6 +184,24 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("notify.email.password_env", None,
             "Name of the environment variable holding the SMTP password."),
     Setting("notify.email.timeout", "30s", "How long to wait for the SMTP server."),
+    # compute
+    Setting("compute.engine", "local",
+            "`local`: the analysis runs in the pass's own process, one model at a time. `dask`: "
+            "each model's series are split into batches analysed on a Dask cluster (install "
+            "`plumbline[dask]`); ingest, the database and notification stay in the pass's "
+            "process, and the results are recorded as with `local`."),
+    Setting("compute.scheduler", None,
+            "With `dask`: the address of a running Dask scheduler, `tcp://HOST:PORT`. Give this "
+            "or `workers`, not both."),
+    Setting("compute.workers", None,
+            "With `dask`: instead of a scheduler, start this many local worker processes (one "
+            "thread each, listening on 127.0.0.1 only) for the pass, or for the daemon's life."),
+    Setting("compute.batch_size", 2000,
+            "With `dask`: series per batch, the unit of work sent to a worker and run again "
+            "when a worker is lost."),
+    Setting("compute.connect_timeout", "10s",
+            "With `dask`: how long to wait for the scheduler; a pass that cannot reach it stops "
+            "with exit status 2 before recording anything."),
 )  # fmt: skip
 
 SETTINGS_BY_PATH: dict[str, Setting] = {setting.path: setting for setting in SETTINGS}

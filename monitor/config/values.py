@@ -63,6 +63,19 @@ def _check_env_name(value: str) -> str:
     return value
 
 
+_SCHEDULER = re.compile(r"^tcp://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):(\d{1,5})$")
+
+
+def _check_scheduler(value: str) -> str:
+    found = _SCHEDULER.match(value)
+    if found is None or not 1 <= int(found.group(2)) <= 65535:
+        raise ValueError(
+            f"{value!r} is not a scheduler address; write tcp://HOST:PORT, e.g. "
+            "tcp://dask-scheduler:8786"
+        )
+    return value
+
+
 def duration_value(value: Any) -> timedelta:
     if isinstance(value, timedelta):
         return value
@@ -113,6 +126,11 @@ Name = Annotated[str, AfterValidator(_check_name)]
 ColumnName = Annotated[str, AfterValidator(_check_column)]
 Address = Annotated[str, AfterValidator(_check_address)]
 EnvName = Annotated[str, AfterValidator(_check_env_name)]
+SchedulerAddress = Annotated[
+    str,
+    AfterValidator(_check_scheduler),
+    WithJsonSchema({"type": "string", "pattern": _SCHEDULER.pattern}),
+]
 Duration = Annotated[timedelta, BeforeValidator(duration_value), WithJsonSchema(DURATION_SCHEMA)]
 Window = Annotated[
     int | Literal["all"],
@@ -172,6 +190,7 @@ __all__ = [
     "PeriodBound",
     "Problem",
     "ScheduleText",
+    "SchedulerAddress",
     "Window",
     "path_text",
     "problems_error",
