@@ -151,3 +151,10 @@ def test_finding_ids_are_accepted_with_their_hash(
     assert "Finding 1 " in capsys.readouterr().out
     assert main(["ack", "-c", config, "#one"]) == 2
     assert "not a finding id" in capsys.readouterr().err
+
+
+def test_checks_local_compute_line_is_the_engines_own() -> None:
+    from monitor.commands.check import LOCAL_COMPUTE
+    from monitor.compute import LocalCompute
+
+    assert LocalCompute.describe(object.__new__(LocalCompute)) == LOCAL_COMPUTE

@@ -29,7 +29,6 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 
-from monitor.compute import probe
 from monitor.config import (
     CronSchedule,
     Feed,
@@ -177,7 +176,16 @@ def _check_email(config: PlumblineConfig, report: CheckReport) -> None:
             report.warn(f"notify.email.{key}: the environment variable {variable} is not set here")
 
 
+LOCAL_COMPUTE = "local (in the pass's own process)"  # monitor.compute.LocalCompute.describe
+
+
 def _check_compute(config: PlumblineConfig, report: CheckReport) -> None:
+    if config.compute.engine == "local":
+        # Said without importing monitor.compute, which loads the statistics: check stays light.
+        report.say(f"compute: {LOCAL_COMPUTE}")
+        return
+    from monitor.compute import probe
+
     found = probe(config.compute)
     report.say(f"compute: {found.summary}" + (f"; {found.detail}" if found.answered else ""))
     if found.answered is False:
