@@ -25,6 +25,7 @@ COMMANDS: dict[str, str] = {
     "pass": "one_pass",
     "run": "run",
     "status": "status",
+    "note": "note",
     "ack": "ack",
     "rebaseline": "rebaseline",
     "check": "check",

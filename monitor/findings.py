@@ -15,7 +15,7 @@ Two halves, both pure (no database access; the pass reads and writes through ``m
    condition that does not (clearing it after ``thresholds.clear_after`` such passes in a row, so
    a one-pass lapse does not flap). ``should_notify`` below says which of those changes go into
    the pass's message: a finding raised, a finding whose severity rose, a finding cleared;
-   never one that is acknowledged (``plumbline ack``), and never a finding that merely continues.
+   never one with an owner's note (``plumbline note``), and never a finding that merely continues.
 """
 
 from __future__ import annotations
@@ -124,6 +124,29 @@ def _series_label(series: str | None) -> str:
     return "" if series is None else f" for {series}"
 
 
+# The periods a finding compares, named by their dates as the feed writes them (first, last);
+# None where the caller does not know them.
+Span = tuple[str | None, str | None] | None
+
+
+def _span_text(span: Span) -> str:
+    """"2025-01-05 to 2025-12-28", or a description when the dates are not known."""
+    if span is None or span[0] is None or span[1] is None:
+        return "the periods monitoring started from"
+    return f"{span[0]} to {span[1]}"
+
+
+def _start_text(span: Span) -> str:
+    """"over 2025-01-05 to 2025-12-28, the periods monitoring started from"."""
+    if span is None or span[0] is None or span[1] is None:
+        return "over the periods monitoring started from"
+    return f"over {span[0]} to {span[1]}, the periods monitoring started from"
+
+
+def _spans(spans: Sequence[Span] | None, count: int) -> Sequence[Span]:
+    return [None] * count if spans is None else spans
+
+
 def coverage_conditions(
     model: str,
     series: Sequence[str | None],
@@ -169,8 +192,8 @@ def coverage_conditions(
         zone = audit.zone[i]
         own_text = (
             f"{int(audit.hits[i])} of {int(scored[i])} actuals{_series_label(name)} fell inside "
-            f"their {audit.nominal:.0%} prediction intervals (hit rate {hit_rate:.0%}, "
-            f"zone {zone.value if zone else 'n/a'})"
+            f"their {audit.nominal:.0%} prediction intervals (hit rate {hit_rate:.0%}: "
+            f"{_misses_words(zone)})"
             + (f"; Kupiec p {format_p_value(float(p[i]))}" if own_judged else "")
         )
         if calibrated is None:
@@ -222,6 +245,15 @@ def coverage_conditions(
     return out
 
 
+def _misses_words(zone: CoverageZone | None) -> str:
+    """The count of misses in words: its Basel zone (Basel Committee 1996) said plainly."""
+    return {
+        CoverageZone.GREEN: "misses about as expected",
+        CoverageZone.YELLOW: "more misses than expected",
+        CoverageZone.RED: "far more misses than expected",
+    }.get(zone, "misses not graded") if zone is not None else "misses not graded"
+
+
 def clustered_miss_conditions(
     model: str,
     series: Sequence[str | None],
@@ -259,8 +291,13 @@ def slope_shift_conditions(
     since: Sequence[str | None],
     *,
     looks: int = 1,
+    start_spans: Sequence[Span] | None = None,
+    recent_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
     """``slope_shift``: a per-slope baseline-vs-recent test rejects after BH.
+
+    ``start_spans`` and ``recent_spans`` (first, last period of each series' baseline and of
+    its latest complete recent block) name the two periods compared in the message.
 
     ``looks`` is how many disjoint recent windows the monitoring horizon allows (see
     ``monitor.analysis``): each p-value is multiplied by it (Bonferroni over the looks, so a
@@ -273,6 +310,7 @@ def slope_shift_conditions(
     p = np.minimum(1.0, np.asarray(p_value, dtype=float).reshape(len(series), len(slopes))
                    * max(1, looks))
     rejected = reject(FindingKind.SLOPE_SHIFT, p.ravel(), thresholds).reshape(p.shape)
+    starts, recents = _spans(start_spans, len(series)), _spans(recent_spans, len(series))
     out: list[Condition] = []
     for i, name in enumerate(series):
         tested = ~np.isnan(p[i])
@@ -284,9 +322,10 @@ def slope_shift_conditions(
             FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds,
             FindingKind.SLOPE_SHIFT.declaration.severity,
             float(stat[i, j]), float(p[i, j]), since[i],
-            f"The slope on {slopes[j]}{_series_label(name)} in the recent window differs from "
-            f"the baseline's by {abs(float(stat[i, j])):.1f} combined standard errors "
-            f"(p {format_p_value(float(p[i, j]))}).",
+            f"The slope on {slopes[j]}{_series_label(name)} over "
+            f"{_span_text(recents[i]) if recents[i] else 'the latest periods'} differs from its "
+            f"slope {_start_text(starts[i])}, by {abs(float(stat[i, j])):.1f} combined "
+            f"standard errors (p {format_p_value(float(p[i, j]))}).",
             "Confirm whether the process changed; if it did, rebaseline the model "
             "(plumbline rebaseline) so forecasts use the new relationship.",
         ))
@@ -300,12 +339,16 @@ def structural_break_conditions(
     ratio: ArrayLike,
     break_period: Sequence[str | None],
     evaluated: ArrayLike,
+    *,
+    start_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
     """``structural_break``: the sequential monitoring statistic crossed its boundary.
 
     ``ratio`` is the statistic over its boundary (above 1 = crossed); ``break_period`` the
-    estimated first period of the new regime; ``evaluated`` False for series not monitored.
+    estimated first period of the new regime; ``evaluated`` False for series not monitored;
+    ``start_spans`` the periods monitoring started from, to name them in the message.
     """
+    starts = _spans(start_spans, len(series))
     crossed_a = np.asarray(crossed, dtype=bool)
     ratio_a = np.asarray(ratio, dtype=float)
     evaluated_a = np.asarray(evaluated, dtype=bool)
@@ -317,13 +360,20 @@ def structural_break_conditions(
             FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(crossed_a[i]),
             FindingKind.STRUCTURAL_BREAK.declaration.severity,
             float(ratio_a[i]), None, break_period[i],
-            f"Since the baseline the forecast errors{_series_label(name)} have drifted past the "
-            f"monitoring boundary ({float(ratio_a[i]):.2f} times the boundary); the new regime "
-            f"is estimated to start at {break_period[i]}.",
+            f"Since {_after_text(starts[i])}, the forecast errors{_series_label(name)} have "
+            f"added up past the monitoring boundary ({float(ratio_a[i]):.2f} times it); the new "
+            f"relationship is estimated to start at {break_period[i]}.",
             "The relationship the forecasts rest on has probably changed: review recent "
             "periods, then rebaseline from the estimated break or refit with the cause.",
         ))
     return out
+
+
+def _after_text(span: Span) -> str:
+    """"the periods monitoring started from (2025-01-05 to 2025-12-28)"."""
+    if span is None or span[0] is None or span[1] is None:
+        return "the periods monitoring started from"
+    return f"the periods monitoring started from ({_span_text(span)})"
 
 
 def significance_conditions(
@@ -336,8 +386,11 @@ def significance_conditions(
     current_p_value: ArrayLike,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    *,
+    start_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
-    """``significance_lost`` and ``sign_flip`` from the baseline's and the current slopes.
+    """``significance_lost`` and ``sign_flip`` from the baseline's and the current slopes
+    (``since``: the last period of the current fit; ``start_spans``: the baseline's periods).
 
     Lost: the baseline's slope was significant and the current fit's slope interval (at the
     ``significance`` level) contains 0, i.e. its p-value is at least ``significance``. Flip: the
@@ -349,6 +402,7 @@ def significance_conditions(
     b1 = np.asarray(current_estimate, dtype=float).reshape(shape)
     p1 = np.asarray(current_p_value, dtype=float).reshape(shape)
     alpha = thresholds.significance
+    starts = _spans(start_spans, len(series))
     out: list[Condition] = []
     for i, name in enumerate(series):
         valid = ~(np.isnan(p0[i]) | np.isnan(p1[i]))
@@ -361,9 +415,9 @@ def significance_conditions(
             FindingKey(FindingKind.SIGNIFICANCE_LOST, model, name, None), bool(lost.any()),
             FindingKind.SIGNIFICANCE_LOST.declaration.severity,
             float(b1[i, j_lost]), float(p1[i, j_lost]), since[i],
-            f"The slope on {slopes[j_lost]}{_series_label(name)} was clearly non-zero at the "
-            f"baseline but its current interval includes zero (p "
-            f"{format_p_value(float(p1[i, j_lost]))}).",
+            f"The slope on {slopes[j_lost]}{_series_label(name)} was clearly non-zero "
+            f"{_start_text(starts[i])}, but in the fit to {since[i] or 'the latest period'} "
+            f"its interval includes zero (p {format_p_value(float(p1[i, j_lost]))}).",
             f"Ask whether {slopes[j_lost]} still drives the response; forecasts from this model "
             "may be no better than the average.",
         ))
@@ -372,8 +426,9 @@ def significance_conditions(
             FindingKey(FindingKind.SIGN_FLIP, model, name, None), bool(flip.any()),
             FindingKind.SIGN_FLIP.declaration.severity,
             float(b1[i, j_flip]), float(p1[i, j_flip]), since[i],
-            f"The slope on {slopes[j_flip]}{_series_label(name)} is now significant with the "
-            f"opposite sign to the baseline's ({float(b0[i, j_flip]):.4g} then, "
+            f"The slope on {slopes[j_flip]}{_series_label(name)} in the fit to "
+            f"{since[i] or 'the latest period'} is significant with the opposite sign to its "
+            f"slope {_start_text(starts[i])} ({float(b0[i, j_flip]):.4g} then, "
             f"{float(b1[i, j_flip]):.4g} now).",
             "Stop using this model's forecasts until the reversal is understood: check the data "
             "feed for a changed unit or definition, then rebaseline or redesign.",
@@ -388,8 +443,11 @@ def weak_fit_conditions(
     baseline_r_squared: ArrayLike,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
+    *,
+    start_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
     """``weak_fit``: R² below ``min_r2`` (when set) or fallen by more than ``max_r2_drop``."""
+    starts = _spans(start_spans, len(series))
     r2 = np.asarray(r_squared, dtype=float)
     r2_base = np.asarray(baseline_r_squared, dtype=float)
     out: list[Condition] = []
@@ -398,12 +456,13 @@ def weak_fit_conditions(
             continue
         low = thresholds.min_r2 is not None and r2[i] < thresholds.min_r2
         dropped = not math.isnan(r2_base[i]) and (r2_base[i] - r2[i]) > thresholds.max_r2_drop
-        base_text = "" if math.isnan(r2_base[i]) else f" (baseline {r2_base[i]:.2f})"
+        base_text = "" if math.isnan(r2_base[i]) else (
+            f" against {r2_base[i]:.2f} {_start_text(starts[i])}")
         out.append(Condition(
             FindingKey(FindingKind.WEAK_FIT, model, name, None), bool(low or dropped),
             FindingKind.WEAK_FIT.declaration.severity, float(r2[i]), None, since[i],
-            f"The current fit{_series_label(name)} explains less of the response: R² "
-            f"{r2[i]:.2f}{base_text}.",
+            f"The fit{_series_label(name)} to {since[i] or 'the latest period'} explains less of "
+            f"the response: R² {r2[i]:.2f}{base_text}.",
             "Intervals are wider and forecasts less informative; look for a missing predictor "
             "or a change in how the data are recorded.",
         ))

@@ -885,6 +885,17 @@ def _model_conditions(
         period(i, int(np.argmax(out.recent_mask[i]))) if out.recent_tested[i] else None
         for i in range(s)
     ]
+    # The periods compared, by their dates: the baseline's, and the latest complete recent block.
+    start_spans = [
+        (period(i, int(start[i])), period(i, int(end[i]) - 1))
+        if start[i] >= 0 and end[i] > start[i] else None
+        for i in range(s)
+    ]
+    recent_spans = [
+        (recent_first[i], period(i, int(np.flatnonzero(out.recent_mask[i])[-1])))
+        if out.recent_tested[i] and out.recent_mask[i].any() else None
+        for i in range(s)
+    ]
     nan_if = np.where
 
     # structural break (sequential monitoring)
@@ -896,6 +907,7 @@ def _model_conditions(
     state.add(structural_break_conditions(
         name, series, monitoring.crossed, monitoring.max_ratio, break_period,
         monitoring.monitorable & (monitoring.periods_monitored > 0) & ok,
+        start_spans=start_spans,
     ), clear)
 
     # slope shift over the latest complete recent block
@@ -903,7 +915,7 @@ def _model_conditions(
         looks = looks_per_horizon(int(np.median(horizon)) if s else 1, model.recent)
         state.add(slope_shift_conditions(
             name, series, predictors, out.slope_shift.t, out.slope_shift.p_value, t,
-            recent_first, looks=looks,
+            recent_first, looks=looks, start_spans=start_spans, recent_spans=recent_spans,
         ), clear)
         base = out.baseline_fit
         comparable = (out.has_baseline & base.estimable & ok_fresh)[:, None]
@@ -913,7 +925,7 @@ def _model_conditions(
             nan_if(comparable, base.p_value[:, slopes], np.nan),
             nan_if(comparable, fit.coef[:, slopes], np.nan),
             nan_if(comparable, fit.p_value[:, slopes], np.nan),
-            t, window_last,
+            t, window_last, start_spans=start_spans,
         ), clear)
         state.add(heteroscedasticity_conditions(
             name, series, out.breusch_pagan.statistic,
@@ -922,7 +934,7 @@ def _model_conditions(
     state.add(weak_fit_conditions(
         name, series, nan_if(ok_fresh, fit.r_squared, np.nan),
         nan_if(out.has_baseline & out.baseline_fit.estimable, out.baseline_fit.r_squared, np.nan),
-        t, window_last,
+        t, window_last, start_spans=start_spans,
     ), clear)
     state.add(autocorrelation_conditions(
         name, series, nan_if(ok_fresh, out.durbin_watson.statistic, np.nan), window_first,

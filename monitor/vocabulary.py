@@ -58,13 +58,16 @@ class KindDeclaration:
     whether ``plumbline rebaseline`` clears it (it compares with the baseline). ``scope``: on a
     series of a model, or on a feed. ``statistic``: how reports name the number behind it, a
     template whose ``{value}`` takes a spec of ``monitor.notify.words.StatisticValue`` and whose
-    ``{p}`` is ", p 0.0123" when there is a p-value.
+    ``{p}`` is ", p 0.0123" when there is a p-value. ``headline``: what a finding of the kind
+    says first, after where it is ("depot-11 (delivery_hours): the relationship changed around
+    2026-01-25"), in a forecast owner's words; ``{since}`` is the period it names.
     """
 
     words: str
     severity: Severity
     family: EvidenceFamily
     statistic: str
+    headline: str = "{since}"
     rebaseline: bool = False
     raised_to: Severity | None = None
     raised_when: str | None = None
@@ -96,55 +99,69 @@ class FindingKind(StrEnum):
     COVERAGE = "coverage", KindDeclaration(
         "coverage below nominal", Severity.WARNING, EvidenceFamily.SERIES,
         "hit rate {value:percent}; Kupiec test{p}",
-        raised_to=Severity.CRITICAL, raised_when="in the red zone",
+        raised_to=Severity.CRITICAL,
+        raised_when="when the misses are far more than expected (the red zone)",
+        headline="fewer actuals inside their intervals than promised, since {since}",
     )
     CLUSTERED_MISSES = "clustered_misses", KindDeclaration(
         "misses in runs", Severity.NOTICE, EvidenceFamily.SERIES,
         "Christoffersen independence statistic {value:3}{p}",
+        headline="misses come in runs, since {since}",
     )
     SLOPE_SHIFT = "slope_shift", KindDeclaration(
         "slope shift", Severity.WARNING, EvidenceFamily.SLOPES,
-        "recent slope differs from the baseline's by {value:abs3} combined standard errors{p}",
+        "slope differs by {value:abs3} combined standard errors between the periods compared{p}",
         rebaseline=True,
+        headline="a slope changed, from {since}",
     )
     STRUCTURAL_BREAK = "structural_break", KindDeclaration(
         "structural break", Severity.CRITICAL, EvidenceFamily.OWN_LEVEL,
         "monitoring statistic at {value:3} times its boundary{p}", rebaseline=True,
+        headline="the relationship changed around {since}",
     )
     SIGNIFICANCE_LOST = "significance_lost", KindDeclaration(
         "slope no longer significant", Severity.WARNING, EvidenceFamily.OWN_LEVEL,
         "current slope {value}{p}", rebaseline=True,
+        headline="a slope no longer clearly differs from zero (fit to {since})",
     )
     SIGN_FLIP = "sign_flip", KindDeclaration(
         "slope sign reversed", Severity.CRITICAL, EvidenceFamily.OWN_LEVEL,
         "current slope {value}{p}", rebaseline=True,
+        headline="a slope reversed its sign (fit to {since})",
     )
     WEAK_FIT = "weak_fit", KindDeclaration(
         "weaker fit", Severity.NOTICE, EvidenceFamily.RULE, "R² {value:.2f}{p}", rebaseline=True,
+        headline="the fit explains less than it did (fit to {since})",
     )
     EXTRAPOLATION = "extrapolation", KindDeclaration(
         "forecast outside the fitted range", Severity.NOTICE, EvidenceFamily.RULE,
         "leverage {value:3}{p}",
+        headline="forecasts asked for outside the fitted range, from {since}",
     )
     AUTOCORRELATION = "autocorrelation", KindDeclaration(
         "autocorrelated errors", Severity.NOTICE, EvidenceFamily.RULE,
         "Durbin–Watson {value:.2f}{p}",
+        headline="consecutive errors are correlated (rows from {since})",
     )
     HETEROSCEDASTICITY = "heteroscedasticity", KindDeclaration(
         "error spread changes with the predictors", Severity.NOTICE, EvidenceFamily.SERIES,
         "Breusch–Pagan statistic {value:3}{p}",
+        headline="the error spread changes with the predictors (rows from {since})",
     )
     STALE_FEED = "stale_feed", KindDeclaration(
         "feed gone quiet", Severity.WARNING, EvidenceFamily.FACT,
         "{value:.0f} days since the latest period{p}", scope="feed",
+        headline="nothing new since {since}",
     )
     REJECTED_INPUT = "rejected_input", KindDeclaration(
         "input rejected", Severity.NOTICE, EvidenceFamily.FACT, "{value:rows}",
         raised_to=Severity.WARNING, raised_when="for a refused file", scope="feed",
+        headline="input refused ({since})",
     )
     NOT_ESTIMABLE = "not_estimable", KindDeclaration(
         "can no longer be fitted", Severity.WARNING, EvidenceFamily.FACT,
         "no statistic: the fit itself is impossible",
+        headline="can no longer be fitted (from {since})",
     )
 
 

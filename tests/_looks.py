@@ -8,13 +8,17 @@ it is absent (a user's clone) the check skips with a message, and fails in CI (t
 
 from __future__ import annotations
 
+import html
 import os
 import re
 from pathlib import Path
 
 import pytest
 
-DESIGN = Path(__file__).resolve().parent.parent.parent / "shared" / "DESIGN.md"
+# the same folder as conftest.SHARED_DIR (not imported: tests/notify has its own conftest)
+DESIGN = Path(
+    os.environ.get("PLUMBLINE_SHARED") or Path(__file__).resolve().parent.parent.parent / "shared"
+) / "DESIGN.md"
 
 _SECTION = re.compile(r"\*\*Looks to avoid\.\*\*(.*?)\n\nWhat to do instead", re.S)
 
@@ -57,3 +61,54 @@ def assert_no_borrowed_looks(text: str) -> None:
         assert not stripped.lower().startswith("summary"), f"a 'summary' heading: {line!r}"
         assert not re.fullmatch(r"=[=\s]{2,}", stripped), f"a '=' rule line: {line!r}"
     assert "***" not in text, "significance stars"
+
+
+# Plumbline's own retired words and layouts (issue 10): what each page, printout and e-mail must no
+# longer say, beside the design's list above. Each pattern is matched within one line of text;
+# the reason says what replaced it.
+RETIRED_WORDS: tuple[tuple[re.Pattern[str], str], ...] = (
+    (re.compile(r"#\d+\s+(critical|warning|notice)\s+[a-z]+_[a-z_]+"),
+     "a console-style finding line (#id severity kind); lead with what and where in words"),
+    (re.compile(r"\b(critical|warning|notice)\s+[a-z]+(_[a-z]+)+\s"),
+     "a severity followed by a snake_case kind; the kind's name belongs to JSON"),
+    (re.compile(r"\(since [^,)]*, (new|ongoing|cleared)\b"),
+     "the (since …, ongoing) tail; say the state in words"),
+    (re.compile(r"\backnowledg", re.I), "acknowledge/ACKNOWLEDGED; an owner's note replaced it"),
+    (re.compile(r"\bongoing\b", re.I), "'ongoing'; the word is 'still open'"),
+    (re.compile(r"\bcleared\b", re.I), "'cleared'; the words are 'no longer seen'"),
+    (re.compile(r"\bNew findings\b|\(new\)"), "'new'; the words are 'newly raised'"),
+    (re.compile(r"\bpooled zone\b", re.I), "the pooled-zone square; say what the misses mean"),
+    (re.compile(r"\bzone (green|yellow|red)\b|\b(green|yellow|red) zone\b", re.I),
+     "a coverage zone by its colour; say 'misses about as expected' and so on"),
+    (re.compile(r"\bbaseline", re.I), "'baseline'; name the periods by their dates"),
+    (re.compile(r"\brecent window\b", re.I), "'recent window'; name the periods by their dates"),
+    (re.compile(r"\bdrifted\b", re.I), "'drifted'; say what moved"),
+    (re.compile(r"Test that every slope is zero"),
+     "the F test's tail line; say what it means for the forecast"),
+)
+
+# Markup that drew a colour with no words of its own.
+RETIRED_MARKUP: tuple[tuple[str, str], ...] = (
+    ('class="swatch"', "a colour square standing alone"),
+    ("zone-green", "a colour class named by the zone"),
+    ("zone-red", "a colour class named by the zone"),
+)
+
+
+def assert_own_words(text: str, *, markup: str | None = None) -> None:
+    """No retired word or layout in ``text`` (a page as its words, a printout, an e-mail part);
+    with ``markup`` (the page's HTML), no retired colour markup either."""
+    for number, line in enumerate(text.splitlines(), start=1):
+        for pattern, reason in RETIRED_WORDS:
+            assert not pattern.search(line), f"line {number}: {reason}: {line.strip()!r}"
+    if markup is not None:
+        for piece, reason in RETIRED_MARKUP:
+            assert piece not in markup, f"{reason} ({piece!r})"
+
+
+def page_words(markup: str) -> str:
+    """A page's words, one block element to a line: no style, script or chart markup."""
+    text = re.sub(r"<(style|script|svg)\b.*?</\1>", " ", markup, flags=re.S)
+    text = re.sub(r"<(br|/p|/li|/tr|/h\d|/dt|/dd|/div|/caption|/figcaption|/title)\b[^>]*>", "\n",
+                  text)
+    return html.unescape(re.sub(r"<[^>]+>", " ", text))

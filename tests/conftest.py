@@ -8,7 +8,9 @@ from pathlib import Path
 import pytest
 
 REPO_ROOT = Path(__file__).resolve().parent.parent
-SHARED_DIR = REPO_ROOT.parent / "shared"
+# ../shared beside the clone; PLUMBLINE_SHARED names it where the clone sits elsewhere (a git
+# worktree in another folder).
+SHARED_DIR = Path(os.environ.get("PLUMBLINE_SHARED") or REPO_ROOT.parent / "shared")
 
 
 def shared_path(*parts: str) -> Path:

@@ -218,7 +218,7 @@ def test_cli_table_opens_with_a_sentence_and_plain_columns(
     assert "delivery_hours (nominal 90 %): " in out
     header = next(line for line in out.splitlines() if line.strip().startswith("series"))
     for column in ("scored", "hits", "hit rate", "interval", "above", "below", "Kupiec p",
-                   "indep. p", "zone", "width", "score"):
+                   "indep. p", "misses", "width", "score"):
         assert column in header
     assert "(whole model)" in out and "North" in out
     with history.open() as store:

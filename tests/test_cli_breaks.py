@@ -177,9 +177,10 @@ def test_readme_example_is_what_the_command_prints(capsys: Any) -> None:
     readme = (root / "README.md").read_text(encoding="utf-8")
     section = readme.split("<!-- section: breaks -->")[1].split("<!-- end section: breaks -->")[0]
     documented = json.loads(re.findall(r"```json\n(.*?)```", section, re.S)[0])
-    example = root / "config" / "example_pick_hours.csv"
-    actual = _json(capsys, str(example), "--response", "pick_hours", "--predictors",
-                   "order_lines", "pallets", "--period", "week_ending")  # fmt: skip
+    example = root / "config" / "example_receiving_hours.csv"
+    argv = (str(example), "--response", "receiving_hours", "--predictors", "inbound_pallets",
+            "--period", "week_ending")
+    actual = _json(capsys, *argv)
 
     def same(doc: Any, real: Any, where: str) -> None:
         if isinstance(doc, dict):
@@ -193,6 +194,29 @@ def test_readme_example_is_what_the_command_prints(capsys: Any) -> None:
 
     same(documented, actual, "report")
     shown = re.findall(r"```text\n(.*?)```", section, re.S)[0]
-    status, out, _ = _run(capsys, str(example), "--response", "pick_hours", "--predictors",
-                          "order_lines", "pallets", "--period", "week_ending")  # fmt: skip
+    status, out, _ = _run(capsys, *argv)
     assert status == 0 and out == shown
+
+
+def test_readme_example_is_the_demo_receiving_series(capsys: pytest.CaptureFixture[str]) -> None:
+    # config/example_receiving_hours.csv is the demo's warehouse receiving series, weeks 1 to 104
+    # (its values as the demo's files write them, one decimal), with the planted slope change;
+    # `breaks` on it dates the new regime at the planted week, as the README shows.
+    from monitor.demo.scenario import build_scenario, week_ending
+
+    root = Path(__file__).resolve().parent.parent
+    example = root / "config" / "example_receiving_hours.csv"
+    rows = [line.split(",") for line in example.read_text(encoding="utf-8").splitlines()[1:]]
+    scenario = build_scenario()
+    (table,) = scenario.tables["warehouse"]
+    assert len(rows) == 104
+    for number, (week, pallets, hours) in enumerate(rows, start=1):
+        assert week == week_ending(number).isoformat()
+        assert float(pallets) == pytest.approx(table.values["inbound_pallets"][number - 1], abs=0.5)
+        assert float(hours) == pytest.approx(table.values["receiving_hours"][number - 1], abs=0.05)
+    (planted,) = [p for p in scenario.planted if p.model == "receiving_hours"]
+    assert main(["breaks", str(example), "--response", "receiving_hours", "--predictors",
+                 "inbound_pallets", "--period", "week_ending", "--format", "json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["sup_f"]["break_period"] == week_ending(planted.week_number).isoformat()
+    assert report["sup_f"]["p_value_bound"] == "below" and report["cusum"]["crossed"]

@@ -1,4 +1,5 @@
-"""``plumbline status``, ``ack`` and ``rebaseline`` on a replayed demo workspace."""
+"""``plumbline status``, ``note`` (and the deprecated ``ack``) and ``rebaseline`` on a replayed
+demo workspace."""
 
 from __future__ import annotations
 
@@ -15,7 +16,7 @@ from monitor.passes import run_pass
 from monitor.store import Store
 
 # Up to week 90 the receiving model's planted slope change (week 80) has raised its
-# structural break, which the tests acknowledge and move the baseline past.
+# structural break, on which the tests record notes and which they move the baseline past.
 LAST_WEEK = 90
 
 
@@ -56,7 +57,19 @@ def test_status_table_opens_with_a_sentence(
     capsys.readouterr()
     assert main(["status", "-c", _config(workspace)]) == 0
     first = capsys.readouterr().out.splitlines()[0]
-    assert "open finding(s); latest pass" in first
+    assert "open findings; latest pass" in first
+    # Each finding leads with what and where in words; the kind's snake_case name stays in JSON.
+    document = _status(workspace, capsys)
+    capsys.readouterr()
+    assert main(["status", "-c", _config(workspace)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    break_line = next(line for line in lines if "receiving_hours: the relationship changed" in line)
+    assert break_line.lstrip().startswith("▲ critical receiving_hours: the relationship changed "
+                                          "around ")
+    assert not any("structural_break" in line or "#" in line for line in lines)
+    assert any("still open" in line or "newly raised" in line for line in lines)
+    assert len([line for line in lines if line.startswith("  ") and not line.startswith("    ")
+                ]) == len(document["findings"])
 
 
 def _break_of_receiving(document: dict) -> dict:
@@ -65,14 +78,51 @@ def _break_of_receiving(document: dict) -> dict:
     return finding
 
 
-def test_ack_marks_the_finding_and_refuses_unknown_ids(
+def test_note_records_who_when_why_and_keeps_the_history(
     workspace: ReplayResult, capsys: pytest.CaptureFixture[str]
 ) -> None:
     finding = _break_of_receiving(_status(workspace, capsys))
-    assert not finding["acknowledged"]
+    assert not finding["acknowledged"] and finding["note"] is None and finding["note_count"] == 0
+    ident, config = str(finding["id"]), _config(workspace)
+    assert main(["note", ident, "New dock layout from July; expected", "--by", "ana",
+                 "-c", config]) == 0
+    said = capsys.readouterr().out
+    assert said.startswith(f"Noted on finding {ident} (receiving_hours: the relationship changed "
+                           "around ")
+    assert "ana: New dock layout from July; expected" in said
+    assert "No message will mention it again" in said
+    after = _break_of_receiving(_status(workspace, capsys))
+    assert after["acknowledged"] and after["note_count"] == 1
+    assert (after["note"]["by"], after["note"]["text"]) == ("ana", "New dock layout from July; "
+                                                           "expected")
+    # Noted again: it says the finding already had a note, and keeps both.
+    assert main(["note", ident, "Checked with the dock lead", "--by", "ben", "-c", config]) == 0
+    said = capsys.readouterr().out
+    assert "already had a note, so its messages had already stopped" in said
+    assert "(2 notes)" in said
+    assert main(["note", ident, "--history", "-c", config]) == 0
+    history = capsys.readouterr().out.splitlines()
+    assert history[1].endswith("ana: New dock layout from July; expected")
+    assert history[2].endswith("ben: Checked with the dock lead")
+    # status shows the latest note under the finding
+    assert main(["status", "-c", config]) == 0
+    assert "ben: Checked with the dock lead" in capsys.readouterr().out
+    assert main(["note", ident, "-c", config]) == 2  # no text
+    assert "say why" in capsys.readouterr().err
+    assert main(["note", "999999", "x", "-c", config]) == 2
+    assert "no finding with id 999999" in capsys.readouterr().err
+
+
+def test_ack_still_works_for_one_release_with_a_deprecation_line(
+    workspace: ReplayResult, capsys: pytest.CaptureFixture[str]
+) -> None:
+    document = _status(workspace, capsys)
+    finding = next(f for f in document["findings"] if f["note"] is None)
     assert main(["ack", str(finding["id"]), "-c", _config(workspace)]) == 0
-    assert _break_of_receiving(_status(workspace, capsys))["acknowledged"]
-    capsys.readouterr()
+    captured = capsys.readouterr()
+    assert "'ack' is deprecated" in captured.err and "plumbline note" in captured.err
+    (after,) = [f for f in _status(workspace, capsys)["findings"] if f["id"] == finding["id"]]
+    assert after["acknowledged"] and after["note"]["text"] == "acknowledged"
     assert main(["ack", "999999", "-c", _config(workspace)]) == 2
     assert "no finding with id 999999" in capsys.readouterr().err
 
@@ -84,7 +134,7 @@ def test_rebaseline_moves_the_baseline_clears_and_monitors_afresh(
     assert main(["rebaseline", "receiving_hours", "--from", "2026-07-12",
                  "-c", _config(workspace)]) == 0
     out = capsys.readouterr().out
-    assert "baseline now 2026-07-12" in out
+    assert "receiving_hours: monitoring now starts from 2026-07-12 to " in out  # new wording
     open_now = _status(workspace, capsys)["findings"]
     assert not [f for f in open_now
                 if f["model"] == "receiving_hours" and f["kind"] == "structural_break"]

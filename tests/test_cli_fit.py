@@ -304,6 +304,13 @@ def test_table_opens_with_the_result_and_avoids_borrowed_looks(
     assert "Publish the 95 % prediction interval" in flat and "not for scoring" in flat
     assert "Extrapolation at order_lines=9000, pallets=100" in flat
     assert "assumes the model's conditions hold" in flat and "not proof" in flat
+    # The F test says what it means for the forecast; its figures go to a footnote (statsmodels'
+    # F 303.5 on 2 and 37 degrees of freedom for this file, checked in the JSON tests above).
+    assert ("Together, order_lines and pallets explain pick_hours better than its average alone "
+            "(p < 0.0001¹)") in flat  # fmt: skip
+    assert flat.endswith("¹ The F test that every slope is zero: F = 303.5 with 2 and 37 degrees "
+                         "of freedom.")  # fmt: skip
+    assert "Test that every slope is zero" not in flat
     assert "summary" not in out.lower()
     assert not re.search(r"\*{1,3}\s*$", out, re.MULTILINE)  # no significance stars
     assert all(len(line) <= 100 for line in out.splitlines())
@@ -325,6 +332,24 @@ def test_table_verdicts_follow_the_tests(
     assert "successive errors look positively correlated" in flat
     assert "error variance appears to change with the predictors" in flat
     assert "VIF: one predictor" in flat
+
+
+def test_table_says_when_the_predictors_add_nothing(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # y unrelated to x (seeded noise): the F test, here the square of the slope's t test, does
+    # not reject, and the sentence says the forecast is little better than the average.
+    rng = np.random.default_rng(11)
+    x = rng.uniform(0.0, 10.0, 40)
+    path = _write_csv(tmp_path / "flat.csv", {"x": x, "y": 50.0 + rng.normal(0.0, 5.0, 40)})
+    report = _json(capsys, str(path), "--response", "y", "--predictors", "x")
+    assert report["f_p_value"] > 0.05 and report["f_df"] == [1, 38]
+    status, out, _ = _run(capsys, str(path), "--response", "y", "--predictors", "x")
+    flat = " ".join(out.split())
+    assert status == 0
+    assert "x explains y no better than its average alone" in flat
+    assert "little better than the average repeated" in flat
+    assert "with 1 and 38 degrees of freedom." in flat
 
 
 # --- errors: one line, exit status 2 -------------------------------------------------------------

@@ -1,5 +1,6 @@
 """The demo replayed end to end: every planted change is found, the healthy models stay quiet,
-the digest renders, and ``plumbline status`` lists what was found (DESIGN.md section 10).
+the digest renders, ``plumbline status`` lists what was found (DESIGN.md section 10), and every
+page, printout and e-mail the demo produces speaks Plumbline's own words (``tests/_looks.py``).
 
 The planted changes are the oracle (``monitor.demo.planted_changes``): for each, a finding of
 an accepted kind on the right model and series (or feed), raised by a pass between the first
@@ -18,11 +19,14 @@ from datetime import date, datetime
 from pathlib import Path
 
 import pytest
+from _looks import assert_no_borrowed_looks, assert_own_words, page_words
 
 from monitor.cli import main
-from monitor.commands.demo import render_digest
+from monitor.commands.demo import findings_summary, render_digest
 from monitor.demo import healthy_series, planted_changes
 from monitor.demo.replay import ReplayResult, replay_scenario
+from monitor.notify import render_pass_report
+from monitor.notify.digest import build_digest, digest_message, render_digest_text
 from monitor.store import FindingRecord, Store
 
 
@@ -209,3 +213,77 @@ def test_the_demo_index_links_the_pass_pages_it_wrote(replayed: ReplayResult) ->
     for page in pages:
         assert page.is_file()
         assert page.stem.split("-")[1] in page.read_text(encoding="utf-8")
+
+
+def _run(capsys: pytest.CaptureFixture[str], *argv: str) -> str:
+    capsys.readouterr()
+    assert main(list(argv)) == 0, argv
+    return capsys.readouterr().out
+
+
+def test_every_page_printout_and_email_speaks_its_own_words(
+    replayed: ReplayResult, findings: list[FindingRecord], capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+) -> None:
+    config, yaml = replayed.config, str(replayed.root / "plumbline.yaml")
+    outputs: dict[str, tuple[str, str | None]] = {}  # name -> (text, markup)
+    # An owner's note on the most urgent open finding, so the pages show one.
+    urgent = next(f for f in findings if f.state.value != "cleared"
+                  and f.severity.value == "critical")
+    outputs["note"] = (_run(capsys, "note", str(urgent.id), "Roadworks; expected", "--by", "ana",
+                            "-c", yaml), None)
+    outputs["note again"] = (_run(capsys, "note", str(urgent.id), "Checked again", "-c", yaml),
+                             None)
+    outputs["note history"] = (_run(capsys, "note", str(urgent.id), "--history", "-c", yaml),
+                               None)
+    # Pages: the digest, the index and every model page.
+    render_digest(config)
+    for page in sorted((replayed.root / "reports").glob("*.html")):
+        raw = page.read_text(encoding="utf-8")
+        outputs[page.name] = (page_words(raw), raw)
+    # The digest's text and e-mail forms, and a pass's page and owners' messages.
+    with Store.open(config.database) as store:
+        digest = build_digest(store, config)
+        outputs["digest.txt"] = (render_digest_text(digest), None)
+        mail = digest_message(digest)
+        outputs["digest e-mail"] = (mail.subject + "\n" + mail.text + "\n" + page_words(mail.html),
+                                    mail.html)
+        busiest = max({f.first_pass_id for f in findings},
+                      key=lambda p: sum(f.first_pass_id == p for f in findings))
+        report = render_pass_report(store, config, busiest, out_dir=tmp_path, write_models=False)
+    raw = report.path.read_text(encoding="utf-8")
+    outputs["pass page"] = (page_words(raw), raw)
+    assert report.messages, "the busiest pass has owners to tell"
+    for message in report.messages:
+        content = message.content
+        outputs[f"pass e-mail to {message.recipient}"] = (
+            content.subject + "\n" + content.text + "\n" + page_words(content.html), content.html)
+    # Printouts: status, the audit, the demo's closing list, fit and breaks on the examples.
+    outputs["status"] = (_run(capsys, "status", "--all", "-c", yaml), None)
+    outputs["audit"] = (_run(capsys, "audit", "--last", "13", "-c", yaml), None)
+    outputs["demo list"] = ("\n".join(findings_summary(findings)), None)
+    examples = Path(__file__).resolve().parent.parent / "config"
+    outputs["fit"] = (_run(capsys, "fit", str(examples / "example_pick_hours.csv"), "--response",
+                           "pick_hours", "--predictors", "order_lines", "pallets"), None)
+    outputs["breaks"] = (_run(capsys, "breaks", str(examples / "example_receiving_hours.csv"),
+                              "--response", "receiving_hours", "--predictors", "inbound_pallets",
+                              "--period", "week_ending"), None)
+    # What they say instead: the what and where of a finding, its state, the note, the misses.
+    status = outputs["status"][0]
+    assert "depot-11 (delivery_hours): the relationship changed around 2026-01-25" in status
+    assert "still open" in status and "no longer seen" in status
+    assert "ana: Roadworks; expected" in outputs["note history"][0]
+    digest_page = " ".join(outputs["digest-2027-05-24.html"][0].split())
+    assert ": Checked again (latest of 2)" in digest_page  # the latest note, on the page
+    assert "already had a note" in outputs["note again"][0]
+    assert "misses far more than expected" in " ".join(outputs["model-fuel_litres.html"][0].split())
+    assert "the periods monitoring started from" in status
+    assert "most urgent without a note" in digest.sentence
+    for name, (text, markup) in outputs.items():
+        assert text.strip(), name
+        try:
+            assert_own_words(text, markup=markup)
+        except AssertionError as error:
+            raise AssertionError(f"{name}: {error}") from None
+    for text, _ in outputs.values():
+        assert_no_borrowed_looks(text)  # last: it skips where ../shared is absent

@@ -46,7 +46,7 @@ def test_statistic_words_follow_the_template() -> None:
     assert statistic_text(FindingKind.COVERAGE, 0.8123, 0.0012) == (
         "hit rate 81 %; Kupiec test, p 0.0012")
     assert statistic_text(FindingKind.SLOPE_SHIFT, -3.456, None) == (
-        "recent slope differs from the baseline's by 3.46 combined standard errors")
+        "slope differs by 3.46 combined standard errors between the periods compared")
     assert statistic_text(FindingKind.REJECTED_INPUT, 0.0, None) == "the whole file"
     assert statistic_text(FindingKind.REJECTED_INPUT, 3.0, None) == "3 rows rejected"
     assert statistic_text(FindingKind.NOT_ESTIMABLE, None, None).startswith("no statistic:")

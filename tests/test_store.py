@@ -123,6 +123,30 @@ def test_readonly_open_never_creates_or_migrates(tmp_path: Path) -> None:
             reader.record_pass(as_of=T0, started_at=T0)
 
 
+def test_migration_5_carries_acknowledgements_over_as_notes(tmp_path: Path) -> None:
+    # A version-3 database (before owners' notes) with one acknowledged finding and one not.
+    path = tmp_path / "v3.sqlite"
+    conn = sqlite3.connect(path, isolation_level=None)
+    apply_migrations(conn, 3)
+    conn.execute("INSERT INTO passes (as_of, started_at, status) VALUES (?, ?, 'finished')",
+                 (utc_text(T0), utc_text(T0)))
+    for acknowledged in (utc_text(T0 + timedelta(hours=2)), None):
+        conn.execute(
+            "INSERT INTO findings (model, series_key, feed, kind, severity, state, message, "
+            "action, first_pass_id, last_pass_id, created_at, updated_at, acknowledged_at) "
+            "VALUES ('pick', ?, NULL, 'weak_fit', 'notice', 'ongoing', 'm', 'a', 1, 1, ?, ?, ?)",
+            ("a" if acknowledged else "b", utc_text(T0), utc_text(T0), acknowledged),
+        )
+    conn.close()
+    with Store.open(path) as store:
+        first, second = store.get_finding(1), store.get_finding(2)
+        assert first is not None and second is not None
+        assert first.noted and first.note_count == 1 and first.note is not None
+        assert first.note.at == T0 + timedelta(hours=2)
+        assert "acknowledged" in first.note.text and first.note.by == "unknown"
+        assert not second.noted and second.note is None
+
+
 def test_migration_from_version_1_keeps_the_data(tmp_path: Path) -> None:
     path = tmp_path / "v1.sqlite"
     conn = sqlite3.connect(path, isolation_level=None)
@@ -541,15 +565,27 @@ def test_one_open_finding_per_scope_and_feed_level_findings(store: Store) -> Non
         )
 
 
-def test_acknowledging_and_listing_findings(store: Store) -> None:
+def test_noting_and_listing_findings(store: Store) -> None:
     first = store.record_pass(as_of=T0, started_at=T0).id
     made = store.upsert_finding(finding(), pass_id=first, at=T0).finding
-    acked = store.acknowledge_finding(made.id, at=T0 + timedelta(hours=1))
-    assert acked.acknowledged_at == T0 + timedelta(hours=1)
-    again = store.acknowledge_finding(made.id, at=T0 + timedelta(hours=5))
-    assert again.acknowledged_at == acked.acknowledged_at  # the first acknowledgement stands
+    assert not made.noted and made.note is None and made.note_count == 0
+    noted = store.note_finding(made.id, at=T0 + timedelta(hours=1), by="ana", text=" seen ")
+    assert noted.noted and noted.acknowledged_at == T0 + timedelta(hours=1)
+    assert noted.note is not None and (noted.note.by, noted.note.text) == ("ana", "seen")
+    again = store.note_finding(made.id, at=T0 + timedelta(hours=5), by="ben", text="still")
+    assert again.acknowledged_at == noted.acknowledged_at  # the first note stops the messages
+    assert again.note is not None and again.note.by == "ben" and again.note_count == 2
+    history = store.finding_notes(made.id)
+    assert [(n.at, n.by, n.text) for n in history] == [
+        (T0 + timedelta(hours=1), "ana", "seen"), (T0 + timedelta(hours=5), "ben", "still")]
+    with pytest.raises(sqlite3.IntegrityError, match="append-only"):  # the history is kept
+        store._conn.execute("UPDATE finding_notes SET text = 'x'")
+    with pytest.raises(sqlite3.IntegrityError, match="append-only"):
+        store._conn.execute("DELETE FROM finding_notes")
+    with pytest.raises(ValueError, match="needs some text"):
+        store.note_finding(made.id, at=T0, by="ana", text="  ")
     with pytest.raises(StoreError, match="no finding with id 99"):
-        store.acknowledge_finding(99, at=T0)
+        store.note_finding(99, at=T0, by="ana", text="x")
     second = store.record_pass(as_of=T0 + timedelta(days=7), started_at=T0).id
     assert store.mark_new_findings_ongoing(second) == 1
     assert store.list_findings(state="ongoing") == [store.get_finding(made.id)]

@@ -1,9 +1,10 @@
-"""``plumbline ack ID``: acknowledge a finding. It stays listed but is not sent again."""
+"""``plumbline ack ID``: deprecated; ``plumbline note ID TEXT`` replaces it. Kept for one release:
+it records the note "acknowledged" by the login name and says on stderr what to use instead."""
 
 from __future__ import annotations
 
 import argparse
-from datetime import UTC, datetime
+import sys
 
 from monitor.commands._common import (
     add_config_argument,
@@ -11,14 +12,19 @@ from monitor.commands._common import (
     finding_id,
     open_existing_store,
 )
-from monitor.errors import UsageError
+from monitor.commands.note import default_author, record_note, report
+
+DEPRECATION = (
+    "plumbline: 'ack' is deprecated and will be removed in the next release; use "
+    "'plumbline note ID \"why\"', which records who, when and why"
+)
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = subparsers.add_parser(
-        "ack", help="acknowledge a finding so it is not sent again",
-        description="Acknowledge a finding by its id (see 'plumbline status'). It stays listed "
-        "and keeps its lifecycle, but no message mentions it again.",
+        "ack", help="deprecated: use 'note' (records the note \"acknowledged\")",
+        description="Deprecated, to be removed in the next release: use 'plumbline note ID "
+        "TEXT'. Records the note \"acknowledged\" on the finding, so no message mentions it again.",
     )
     add_config_argument(parser)
     parser.add_argument("id", type=finding_id, help="the finding's id (12 or #12)")
@@ -26,13 +32,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 
 def handle(args: argparse.Namespace) -> int:
+    print(DEPRECATION, file=sys.stderr)
     config = config_from(args)
     with open_existing_store(config) as store:
-        if store.get_finding(args.id) is None:
-            raise UsageError(f"no finding with id {args.id}; 'plumbline status --all' lists them")
-        record = store.acknowledge_finding(args.id, at=datetime.now(UTC))
-    where = record.model or record.feed
-    print(f"Finding {record.id} ({record.kind.value} on {where}"
-          f"{'' if record.series is None else ' / ' + record.series}) acknowledged; it will not "
-          "be sent again.")
+        record, had_note = record_note(store, args.id, "acknowledged", default_author())
+    print(report(record, had_note, config.zone))
     return 0

@@ -36,9 +36,11 @@ from monitor.audit import (
 from monitor.config import PlumblineConfig, load_config, lookup_model
 from monitor.errors import UsageError
 from monitor.notify.words import (
+    MISS_WORDS,
     hit_rate_sentence,
     level_text,
     local_time,
+    misses_text,
     number,
     percent,
     plural,
@@ -56,7 +58,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         description="Score every issued prediction interval against the actual that arrived "
         "for it, per model and series: hits, misses above and below, the hit rate with its "
         "Clopper–Pearson interval against the nominal level, Kupiec's and Christoffersen's "
-        "tests, the traffic-light zone, the mean interval width and the interval score.",
+        "tests, whether the misses are as many as expected, the mean interval width and the "
+        "interval score.",
     )
     parser.add_argument(
         "-c", "--config", default="plumbline.yaml", metavar="PATH",
@@ -143,7 +146,7 @@ def render_csv(records: list[dict[str, Any]], *, last: int | None, by_lead: bool
 
 _HEADER = (
     "series", "scored", "hits", "hit rate", "interval", "above", "below", "Kupiec p",
-    "indep. p", "zone", "width", "score",
+    "indep. p", "misses", "width", "score",
 )
 
 
@@ -171,12 +174,14 @@ def render_table(
         "Columns: interval is the hit rate's exact Clopper–Pearson interval at "
         f"{level_text(HIT_RATE_CONFIDENCE)}; above and below count the actuals beyond the upper "
         "or lower bound; Kupiec p tests whether the miss rate matches the nominal one, indep. p "
-        "whether misses come in runs (Christoffersen; the JSON also has the joint test); zone "
-        "grades the miss count by its cumulative binomial probability (below 95 % green, below "
-        "99.99 % yellow, else red); width is the mean width of the prediction intervals and "
-        "score their mean interval score (Gneiting and Raftery 2007; lower is better). A low "
-        "p-value is a statistical signal, not proof; the intervals assume the model's "
-        "conditions hold."
+        "whether misses come in runs (Christoffersen; the JSON also has the joint test); misses "
+        "says whether the count of misses is about as expected for the nominal level, more than "
+        "expected or far more than expected, by its cumulative binomial probability (below "
+        "95 %, below 99.99 %, above: the Basel Committee's 1996 back-testing thresholds; the "
+        "JSON's key zone holds their names); width is the mean width of the prediction "
+        "intervals and score their mean interval score (Gneiting and Raftery 2007; lower is "
+        "better). A low p-value is a statistical signal, not proof; the intervals assume the "
+        "model's conditions hold."
     ))
     return "\n".join(parts) + "\n"
 
@@ -205,9 +210,10 @@ def _opening(
     scored = sum(int(r["scored"]) for r in records)
     zones = _zone_counts(records)
     zone_text = (
-        "every series in the green zone" if not zones["red"] and not zones["yellow"]
-        else f"{plural(zones['red'], 'series', 'series')} in the red zone, "
-        f"{zones['yellow']} in the yellow"
+        "every series has about as many misses as expected"
+        if not zones["red"] and not zones["yellow"]
+        else f"{plural(zones['red'], 'series', 'series')} with far more misses than expected, "
+        f"{zones['yellow']} with more than expected"
     )
     return (
         f"Coverage audit of {plural(len(models), 'model')}, {when}, {scope}: "
@@ -242,7 +248,7 @@ def _model_sentence(name: str, rows: list[dict[str, Any]], *, by_lead: bool) -> 
         f"{name} (nominal {level_text(nominal)}): "
         f"{hit_rate_sentence(summary['hits'], summary['scored'], nominal)}{series}, hit rate "
         f"{percent(summary['hit_rate'], 1)} (interval {percent(summary['hit_rate_lower'], 1)} to "
-        f"{percent(summary['hit_rate_upper'], 1)}), zone {summary['zone']}."
+        f"{percent(summary['hit_rate_upper'], 1)}): {misses_text(summary['zone'])}."
     )
 
 
@@ -263,7 +269,8 @@ def _calibrated_sentence(rows: list[dict[str, Any]], *, by_lead: bool) -> str:
         f"Calibrated intervals (rows marked calibrated): "
         f"{_calibrated_hits(summary['hits'], summary['scored'], nominal)}, hit rate "
         f"{percent(summary['hit_rate'], 1)} (interval {percent(summary['hit_rate_lower'], 1)} to "
-        f"{percent(summary['hit_rate_upper'], 1)}), zone {summary['zone']}. {CALIBRATED_LINE}"
+        f"{percent(summary['hit_rate_upper'], 1)}): {misses_text(summary['zone'])}. "
+        f"{CALIBRATED_LINE}"
     )
 
 
@@ -283,7 +290,7 @@ def _columns(rows: list[dict[str, Any]], *, by_lead: bool) -> list[str]:
                 continue
             body.append(_cells(r, label, by_lead=by_lead))
     widths = [max(len(row[i]) for row in (header, *body)) for i in range(len(header))]
-    text_columns = {0, header.index("zone")}  # read left to right
+    text_columns = {0, header.index("misses")}  # read left to right
     lines = []
     for row in (header, *body):
         cells = [
@@ -307,7 +314,7 @@ def _cells(r: dict[str, Any], label: str | None, *, by_lead: bool) -> list[str]:
         str(r["misses_low"]),
         format_p_value(r["kupiec_p_value"]),
         format_p_value(r["independence_p_value"]),
-        r["zone"] or "n/a",
+        "n/a" if r["zone"] is None else MISS_WORDS[r["zone"]],
         number(r["mean_width"]),
         number(r["interval_score"]),
     ]

@@ -21,8 +21,9 @@ from monitor.errors import UsageError
 from monitor.notify.digest import write_digest
 from monitor.notify.html import pass_page_name
 from monitor.notify.report import render_pass_report
+from monitor.notify.words import SEVERITY_MARKS, finding_headline
 from monitor.passes import PassReport
-from monitor.store import Store
+from monitor.store import FindingRecord, Store
 from monitor.vocabulary import FindingState
 
 
@@ -65,18 +66,12 @@ def handle(args: argparse.Namespace) -> int:
     elapsed = time.perf_counter() - started
     with Store.open(result.config.database, readonly=True) as store:
         findings = store.list_findings(state="all")
-    open_findings = [f for f in findings if f.state is not FindingState.CLEARED]
     print(f"Replayed {len(result.passes)} weeks in {elapsed:.1f} s into {root}.")
     print(f"Digest: {digest_path}")
     print(f"Pass pages: {len(pass_pages)} (the passes that raised or cleared findings, latest "
           f"{DEMO_PASS_PAGES}), linked from {digest_path.parent / 'index.html'}")
-    print(f"{len(open_findings)} finding(s) open, {len(findings) - len(open_findings)} cleared:")
-    rank = {"critical": 0, "warning": 1, "notice": 2}
-    for f in sorted(open_findings, key=lambda f: (rank[f.severity.value], f.kind.value)):
-        where = f.model or f.feed or ""
-        if f.series is not None:
-            where += f" / {f.series}"
-        print(f"  {f.severity.value:<8} {f.kind.value:<19} {where:<32} since {f.since_period}")
+    for line in findings_summary(findings):
+        print(line)
     print(f"Look closer: plumbline status -c {root / 'plumbline.yaml'}")
     return 0
 
@@ -101,6 +96,18 @@ def render_pass_pages(config: PlumblineConfig) -> list[Path]:
             render_pass_report(store, config, pass_id, write_models=False)
             paths.append(Path(config.notify.html_dir) / pass_page_name(pass_id))
         return paths
+
+
+def findings_summary(findings: list[FindingRecord]) -> list[str]:
+    """The demo's closing list: how many are open and no longer seen, then each open finding,
+    most severe first, led by what and where."""
+    open_findings = [f for f in findings if f.state is not FindingState.CLEARED]
+    lines = [f"{len(open_findings)} finding(s) open, {len(findings) - len(open_findings)} no "
+             "longer seen:"]
+    rank = {"critical": 0, "warning": 1, "notice": 2}
+    for f in sorted(open_findings, key=lambda f: (rank[f.severity.value], f.kind.value)):
+        lines.append(f"  {SEVERITY_MARKS[f.severity]} {f.severity.value:<8} {finding_headline(f)}")
+    return lines
 
 
 def render_digest(config: PlumblineConfig) -> Path:

@@ -425,6 +425,8 @@ def render_table(report: dict[str, Any]) -> str:
             "result is a statistical signal, not proof."
         ),
     ]
+    if report["f_statistic"] is not None:
+        parts += ["\n", _paragraph(_footnote(report))]
     return "".join(parts)
 
 
@@ -472,17 +474,44 @@ def _fit_sentences(report: dict[str, Any]) -> str:
         "error). "
     )
     if report["f_statistic"] is not None:
-        numerator, denominator = report["f_df"]
-        text += (
-            f"Test that every slope is zero: F = {_fmt(report['f_statistic'])} with "
-            f"{numerator} and {_degrees(denominator)}, {_p(report['f_p_value'])}. "
-        )
+        text += _joint_sentence(report) + " "
     if report["correlation"] is not None:
         text += (
             f"Correlation r = {_fmt(report['correlation']['r'], 3)} "
             f"({_p(report['correlation']['p_value'])})."
         )
     return text.rstrip()
+
+
+def _joint_sentence(report: dict[str, Any]) -> str:
+    """What the F test says for the forecast, in words; its statistic and degrees of freedom go
+    to the footnote (``_footnote``) and stay in the JSON (``f_statistic``, ``f_df``)."""
+    predictors = report["predictors"]
+    names = predictors[0] if len(predictors) == 1 else (
+        ", ".join(predictors[:-1]) + " and " + predictors[-1])
+    subject = names if len(predictors) == 1 else f"Together, {names}"
+    verb = "explains" if len(predictors) == 1 else "explain"
+    against = "its average alone" if report["intercept"] else "a forecast of zero"
+    p = _p(report["f_p_value"])
+    if report["f_p_value"] is not None and report["f_p_value"] < VERDICT_SIGNIFICANCE:
+        return (
+            f"{subject} {verb} {report['response']} better than {against} ({p}¹): the "
+            "forecasts carry information that a flat "
+            f"{'average' if report['intercept'] else 'zero'} would not."
+        )
+    return (
+        f"{subject} {verb} {report['response']} no better than {against} ({p}¹): a forecast "
+        f"from this model is little better than the {'average' if report['intercept'] else 'zero'}"
+        " repeated; look for other predictors before relying on it."
+    )
+
+
+def _footnote(report: dict[str, Any]) -> str:
+    numerator, denominator = report["f_df"]
+    return (
+        f"¹ The F test that every slope is zero: F = {_fmt(report['f_statistic'])} with "
+        f"{numerator} and {_degrees(denominator)}."
+    )
 
 
 def _coefficient_table(report: dict[str, Any]) -> str:

@@ -89,7 +89,7 @@ def sentence(report: PassReport) -> str:
         f"Pass {report.pass_id} at {report.as_of.isoformat()}: {files}, "
         f"{report.outcomes_scored} actual(s) scored, {report.series_analysed} series refitted, "
         f"{report.forecasts_issued} forecast(s) issued; {len(report.findings_raised)} finding(s) "
-        f"raised and {len(report.findings_cleared)} cleared."
+        f"raised and {len(report.findings_cleared)} no longer seen."
     )
 
 

@@ -107,9 +107,11 @@ def handle(args: argparse.Namespace) -> int:
                     store.clear_finding(finding.id, pass_id=last.id if last else 0, at=now)
                     cleared += 1
     for row in rows:
-        name = "" if row.series is None else f" / {row.series}"
-        print(f"{args.model}{name}: baseline now {row.start_period} to {row.end_period}.")
+        name = args.model if row.series is None else f"{row.series} ({args.model})"
+        print(f"{name}: monitoring now starts from {row.start_period} to {row.end_period}; "
+              "later periods are compared with these.")
     for problem in problems:
         print(f"  not moved: {problem}")
-    print(f"{cleared} finding(s) that compared with the old baseline cleared.")
+    print(f"{cleared} finding(s) that compared with the earlier starting periods are no longer "
+          "seen.")
     return 0

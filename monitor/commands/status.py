@@ -16,8 +16,16 @@ from monitor.commands._common import (
 )
 from monitor.config import PlumblineConfig
 from monitor.lock import running_daemon
+from monitor.notify.words import (
+    KIND_WORDS,
+    SEVERITY_MARKS,
+    STATE_WORDS,
+    finding_headline,
+    local_date,
+    local_time,
+    plural,
+)
 from monitor.store import FindingRecord, PassRecord
-from monitor.text import format_p_value
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -38,7 +46,12 @@ def finding_record(f: FindingRecord) -> dict[str, Any]:
         "kind": f.kind.value, "severity": f.severity.value, "state": f.state.value,
         "since_period": f.since_period, "statistic": f.statistic, "p_value": f.p_value,
         "message": f.message, "action": f.action,
-        "acknowledged": f.acknowledged_at is not None,
+        # kept for one release: true once an owner's note is recorded (use "note")
+        "acknowledged": f.noted,
+        "note": None if f.note is None else {
+            "at": f.note.at.isoformat(), "by": f.note.by, "text": f.note.text,
+        },
+        "note_count": f.note_count,
     }
 
 
@@ -86,19 +99,22 @@ def handle(args: argparse.Namespace) -> int:
         print(json.dumps(document, indent=2))
         return 0
     open_count = sum(1 for f in findings if f.state.value != "cleared")
+    noted = sum(1 for f in findings if f.state.value != "cleared" and f.noted)
     latest = passes[0] if passes else None
-    clock = local_moment(latest.as_of, config) if latest else "never"
-    print(f"{open_count} open finding(s); latest pass {latest.id if latest else '-'} at "
-          f"business clock {clock}.")
+    clock = local_time(latest.as_of, config.zone) if latest else "never"
+    with_notes = f", {noted} with an owner's note" if noted else ""
+    print(f"{plural(open_count, 'open finding')}{with_notes}; latest pass "
+          f"{latest.id if latest else '-'} at business clock {clock}.")
     for f in findings:
-        where = f.model or f.feed or ""
-        if f.series is not None:
-            where += f" / {f.series}"
-        ack = ", acknowledged" if f.acknowledged_at is not None else ""
-        p_text = f", p {format_p_value(f.p_value)}" if f.p_value is not None else ""
-        print(f"  #{f.id:<5} {f.severity.value:<8} {f.kind.value:<19} {where} (since "
-              f"{f.since_period or '-'}, {f.state.value}{ack}{p_text})")
-        print(f"         {f.message}")
+        print(f"  {SEVERITY_MARKS[f.severity]} {f.severity.value:<8} {finding_headline(f)}")
+        state = STATE_WORDS[f.state.value]
+        if f.state.value == "cleared" and f.cleared_at is not None:
+            state += f" from {local_date(f.cleared_at, config.zone)}"
+        print(f"      Finding {f.id}, {KIND_WORDS[f.kind]}, {state}. {f.message}")
+        if f.note is not None:
+            more = "" if f.note_count == 1 else f" (latest of {f.note_count})"
+            print(f"      Note{more}, {local_time(f.note.at, config.zone)}, {f.note.by}: "
+                  f"{f.note.text}")
     runs = document["next_runs"]
     assert isinstance(runs, dict)
     if runs["daemon_pid"] is None:

@@ -116,17 +116,18 @@ SETTINGS: tuple[Setting, ...] = (
             "Rows in the rolling fit window (the latest rows with a response), at least 3 and "
             "at least `min_rows`; or `all`."),
     Setting("models.NAME.recent", 26,
-            "Rows in the recent window that is compared with the baseline for slope shifts; "
-            "more than p + 1."),
+            "Rows in each block of latest periods whose slopes are compared with the slopes over "
+            "the periods monitoring started from (`baseline`); more than p + 1."),
     Setting("models.NAME.min_rows", 10,
             "Below this many rows a series is warming up: no fit, no finding. Must be more than "
             "p + 1, where p counts the coefficients including the intercept."),
     Setting("models.NAME.horizon", None,
-            "Periods of sequential monitoring after the baseline; when they pass without an "
-            "alarm the baseline rolls forward.", computed="2 × the baseline's length"),
+            "Periods of sequential monitoring after the periods it started from (`baseline`); "
+            "when they pass without an alarm, monitoring starts again from the latest full "
+            "window.", computed="2 × the baseline's length"),
     Setting("models.NAME.baseline", None,
-            "A fixed baseline `{start, end}`; without it the baseline is the first full window "
-            "of each series."),
+            "The periods monitoring starts from, fixed as `{start, end}` (pages and messages name "
+            "them by their dates); without it, each series' first full window."),
     Setting("models.NAME.owners", None, "E-mail addresses that receive this model's findings.",
             computed="`notify.email.to`"),
     Setting("models.NAME.thresholds", None, "Decision thresholds of the findings.",

@@ -109,6 +109,8 @@ class CoefficientData:
     level: float
     baseline: tuple[float, float, float] | None = None  # estimate, lower, upper
     after_baseline: int = 0  # index of the first refit whose window ends after the baseline
+    # the periods monitoring started from, as the feed writes them (first, last), when known
+    start_span: tuple[str, str] | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -120,6 +122,7 @@ class MonitoringData:
     statistic: FloatArray
     boundary: FloatArray
     break_period: str | None = None
+    start_end: str | None = None  # the last period monitoring started from, when known
 
 
 @dataclass(frozen=True, eq=False)
@@ -259,39 +262,47 @@ def _describe_coefficient(data: CoefficientData) -> str:
     if data.baseline is None:
         return text + f", over {plural(int(data.estimate.size), 'refit')}."
     estimate, lower, upper = data.baseline
-    text += f" against {number(estimate)} at the baseline ({number(lower)} to {number(upper)})"
+    if data.start_span is None:
+        span, since = "over the periods monitoring started from", "since then"
+    else:
+        span = (f"over {data.start_span[0]} to {data.start_span[1]}, the periods monitoring "
+                "started from")
+        since = f"since {data.start_span[1]}"
+    text += f" against {number(estimate)} ({number(lower)} to {number(upper)}) {span}"
     start = min(max(data.after_baseline, 0), data.estimate.size)
     later = data.estimate.size - start
     if later == 0:
-        return text + "; no refit since the baseline yet."
+        return text + f"; no refit {since} yet."
     outside = (data.lower[start:] > upper) | (data.upper[start:] < lower)
     if not outside.any():
-        return text + (f"; every refit since the baseline ({later}) has an interval overlapping "
-                       "the baseline band.")
+        return text + (f"; every refit {since} ({later}) has an interval overlapping that "
+                       "band.")
     first = start + int(np.argmax(outside))
     return text + (
-        f"; {int(outside.sum())} of the {later} refits since the baseline have an interval clear "
-        f"of the baseline band, the first at {data.periods[first]}."
+        f"; {int(outside.sum())} of the {later} refits {since} have an interval clear of that "
+        f"band, the first at {data.periods[first]}."
     )
 
 
 def _describe_monitoring(data: MonitoringData) -> str:
     count = int(data.statistic.size)
+    since = "since it started" if data.start_end is None else f"since {data.start_end}"
     if count == 0:
-        return "No period has been monitored since the baseline yet."
+        return f"No period has been monitored {since} yet."
     ratio = np.abs(data.statistic) / np.where(data.boundary > 0, data.boundary, np.inf)
     crossed = ratio > 1
     if crossed.any():
         first = int(np.argmax(crossed))
         text = (
             f"The monitoring statistic crossed its boundary at {data.periods[first]}, "
-            f"{plural(first + 1, 'period')} after the baseline"
+            f"{plural(first + 1, 'period')} after "
+            f"{'monitoring started' if data.start_end is None else data.start_end}"
         )
         if data.break_period:
             text += f"; the new regime is estimated to start at {data.break_period}"
         return text + "."
     return (
-        f"Over {plural(count, 'period')} since the baseline the monitoring statistic stayed "
+        f"Over {plural(count, 'period')} {since} the monitoring statistic stayed "
         f"inside its boundary (at most {percent(float(ratio.max()))} of it)."
     )
 
@@ -438,7 +449,8 @@ def _plot_coefficient(axes: Any, data: CoefficientData) -> None:
     if data.baseline is not None:
         estimate, lower, upper = data.baseline
         axes.axhspan(lower, upper, color=BASELINE, alpha=0.25, linewidth=0,
-                     label="baseline interval")
+                     label=("interval when monitoring started" if data.start_span is None
+                            else f"interval over {data.start_span[0]} to {data.start_span[1]}"))
         axes.axhline(estimate, color=BASELINE, linestyle="dashed", linewidth=1)
     axes.fill_between(positions, data.lower, data.upper, color=BAND, alpha=0.9, linewidth=0,
                       label=f"{level_text(data.level)} confidence interval")
@@ -455,7 +467,8 @@ def _plot_monitoring(axes: Any, data: MonitoringData) -> None:
     axes.plot(positions, -data.boundary, color=MUTED, linestyle="dashed", linewidth=1)
     axes.axhline(0, color="#d0d5db", linewidth=0.8)
     axes.plot(positions, data.statistic, color=INTERVAL, linewidth=1.4,
-              label="cumulative forecast error since the baseline (scaled)")
+              label=("cumulative forecast error (scaled)" if data.start_end is None
+                     else f"cumulative forecast error since {data.start_end} (scaled)"))
     beyond = np.abs(data.statistic) > data.boundary
     if beyond.any():
         first = int(np.argmax(beyond))

@@ -192,7 +192,7 @@ def _version_change(store: Store, config: PlumblineConfig, name: str, since: dat
                    if before.config.get(key) != after.config.get(key)]
         what = (
             f"{', '.join(changed)} changed" if changed else "its definition changed"
-        ) + "; history is kept and the baseline starts again"
+        ) + "; history is kept and monitoring starts afresh"
         out.append(VersionChange(name, after.version, local_time(after.created_at, config.zone),
                                  what))
     return out
@@ -267,10 +267,10 @@ def build_digest(
 
     since_text = None if since is None else local_time(since, zone)
     change = (
-        f" Since the last digest ({since_text}): {len(new_views)} new, "
-        f"{len(cleared_views)} cleared." if since_text
+        f" Since the last digest ({since_text}): {len(new_views)} newly raised, "
+        f"{len(cleared_views)} no longer seen." if since_text
         else f" This is the first digest: {len(new_views)} raised so far, "
-             f"{len(cleared_views)} cleared."
+             f"{len(cleared_views)} no longer seen."
     )
     return Digest(
         period_end=as_of,

@@ -67,6 +67,7 @@ from monitor.notify.words import (
     join_words,
     level_text,
     local_time,
+    misses_text,
     number,
     percent,
     plural,
@@ -146,37 +147,50 @@ def write_page(folder: Path, name: str, text: str) -> Path:
 
 
 def attention_sentence(findings: list[FindingView], *, model_count: int) -> str:
-    """The opening sentence of a page: what needs attention, most urgent first."""
+    """The opening sentence of a page: what needs attention, most urgent first. A finding with
+    an owner's note has been looked at, so it never heads the sentence."""
     if not findings:
         return (
             f"Nothing needs attention: no open findings across {plural(model_count, 'model')}."
         )
     counts = severity_counts(findings)
     parts = [severity_count(n, word) for word, n in counts.items() if n]
-    top = findings[0]
+    noted = sum(1 for f in findings if f.noted)
+    waiting = [f for f in findings if not f.noted]
+    if not waiting:
+        each = "it has" if len(findings) == 1 else "each has"
+        return (
+            f"{plural(len(findings), 'open finding')} ({join_words(parts)}); {each} an owner's "
+            "note, so none is waiting to be looked at."
+        )
+    top = waiting[0]
     verb = "needs" if len(findings) == 1 else "need"
+    with_notes = "" if not noted else (
+        f", {noted} of them with an owner's note" if noted > 1 else ", 1 with an owner's note")
+    most = "most urgent without a note" if noted else "most urgent"
     return (
-        f"{plural(len(findings), 'open finding')} {verb} attention ({join_words(parts)}); "
-        f"most urgent: {top.kind_words} in {top.scope} ({top.severity})."
+        f"{plural(len(findings), 'open finding')} {verb} attention ({join_words(parts)}"
+        f"{with_notes}); {most}: {top.headline} ({top.severity})."
     )
 
 
 def coverage_sentence(summary: dict[str, Any] | None, what: str) -> str:
-    """One model's pooled coverage over a window, as a sentence (the pooled zone is shown beside
-    it, as a word with its colour)."""
+    """One model's pooled coverage over a window, as a sentence that says in words whether the
+    misses are about as many as the nominal level expects (the count's zone, ``MISS_WORDS``)."""
     if summary is None:
         return f"Nothing scored {what} yet."
     series = "" if summary["series_count"] == 1 else f" across {summary['series_count']} series"
     zones = summary["zones"]
     spread = ""
     if summary["series_count"] > 1 and (zones["yellow"] or zones["red"]):
-        spread = f"; series in the yellow zone: {zones['yellow']}, red: {zones['red']}"
+        spread = (f"; series with more misses than expected: {zones['yellow']}, with far "
+                  f"more: {zones['red']}")
     return (
         f"{what[:1].upper()}{what[1:]}: "
         f"{hit_rate_sentence(summary['hits'], summary['scored'], summary['nominal'])}{series} "
         f"(hit rate {percent(summary['hit_rate'], 1)}, interval "
         f"{percent(summary['hit_rate_lower'], 1)} to {percent(summary['hit_rate_upper'], 1)}"
-        f"{spread})."
+        f"{spread}): {misses_text(summary['zone'])}."
     )
 
 
@@ -225,7 +239,7 @@ def series_chart_data(
         elif kind == "coefficient":
             data = coefficient_data(store, history, series, slopes[0]) if slopes else None
         elif kind == "monitoring":
-            data = monitoring_data(history, series)
+            data = monitoring_data(store, history, series)
         else:
             data = scatter_data(store, history, series)
         if data is not None:
@@ -435,7 +449,7 @@ def _model_sentence(
     coverage = (
         "Nothing scored yet." if summary is None else
         f"{summary['hits']} of the latest {summary['scored']} actuals inside their "
-        f"{level_text(summary['nominal'])} prediction intervals (pooled zone {summary['zone']})."
+        f"{level_text(summary['nominal'])} prediction intervals: {misses_text(summary['zone'])}."
     )
     if not findings:
         return f"{opening}, no open findings. {coverage}"

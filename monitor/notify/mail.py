@@ -355,7 +355,7 @@ def model_owners(config: PlumblineConfig) -> dict[str, tuple[str, ...]]:
 
 
 def models_to_notify(store: Store, config: PlumblineConfig, pass_id: int) -> frozenset[str]:
-    """Models with findings raised or cleared in ``pass_id``, not acknowledged.
+    """Models with findings raised or cleared in ``pass_id``, none with an owner's note.
 
     A feed-level finding (``stale_feed``, ``rejected_input``) counts for every model that reads
     the feed. Ongoing findings do not count: they were reported when they were new.
@@ -366,7 +366,7 @@ def models_to_notify(store: Store, config: PlumblineConfig, pass_id: int) -> fro
     ]
     models: set[str] = set()
     for finding in findings:
-        if finding.acknowledged_at is not None:
+        if finding.noted:
             continue
         if finding.model is not None:
             models.add(finding.model)

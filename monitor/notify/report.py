@@ -6,10 +6,10 @@
 writes ``pass-<id>.html`` (with ``write_models``, every model's page and the index too) and
 returns the pass's new and cleared findings and, for each recipient, one ``OwnerMessage``
 covering all their models (DESIGN.md section 5 step 7): a finding on a model goes to its
-``owners``, a finding on a feed to the owners of every model that reads the feed. Acknowledged
-findings are never sent; ``escalated`` names open findings whose severity rose in this pass (the
-pass knows; the database keeps only the new severity), which are sent again. A recipient with
-nothing to hear about gets no message, and a pass with nothing new sends nothing.
+``owners``, a finding on a feed to the owners of every model that reads the feed. Findings
+with an owner's note are never sent; ``escalated`` names open findings whose severity rose in
+this pass (the pass knows; the database keeps only the new severity), which are sent again. A
+recipient with nothing to hear about gets no message, and a pass with nothing new sends nothing.
 """
 
 from __future__ import annotations
@@ -94,10 +94,10 @@ def _sentence(record: PassRecord, new: list[FindingView], cleared: list[FindingV
         detail = join_words([severity_count(n, w) for w, n in counts.items() if n])
         top = new[0]
         parts.append(f"raised {plural(len(new), 'finding')} ({detail}; most urgent: "
-                     f"{top.kind_words} in {top.scope})")  # fmt: skip
+                     f"{top.headline})")  # fmt: skip
     else:
         parts.append("raised no new finding")
-    parts.append(f"cleared {len(cleared)}")
+    parts.append(f"found {len(cleared)} no longer seen")
     parts.append(f"issued {plural(issued, 'forecast')}")
     return f"Pass {record.id} (business clock {clock}, {record.status}) " + join_words(parts) + "."
 
@@ -196,8 +196,8 @@ def render_pass_report(
     """Write the pass's page (and the model pages and index) and build its messages.
 
     ``notify``, when given, is the pass's own list of findings to send (``findings_to_notify``:
-    raised, more severe, cleared; acknowledged ones left out): the messages cover exactly those,
-    and any among them neither raised nor cleared in this pass counts as more severe.
+    raised, more severe, no longer seen; those with an owner's note left out): the messages cover
+    exactly those, and any among them neither raised nor cleared in this pass counts as more severe.
     """
     record = store.get_pass(pass_id)
     if record is None:
@@ -222,7 +222,7 @@ def render_pass_report(
     messages = []
     recipients: dict[str, list[FindingRecord]] = {}
     for finding in (*new, *cleared, *rose):
-        if finding.acknowledged_at is not None or (wanted is not None and finding.id not in wanted):
+        if finding.noted or (wanted is not None and finding.id not in wanted):
             continue
         for address in _recipients(config, finding):
             recipients.setdefault(address, []).append(finding)
@@ -250,13 +250,16 @@ def render_pass_report(
 
 # Keys of a pass's counts that are bookkeeping rather than news for a reader.
 _INTERNAL_COUNTS = {"observation_mark", "timings", "stopped_early", "skipped"}
+# Counts whose key is not how a reader says it.
+_COUNT_WORDS = {"findings_cleared": "findings no longer seen"}
 
 
 def _work_done(record: PassRecord) -> list[tuple[str, str]]:
     """The pass's counts as (what, how many) lines: plain numbers and words only, plus what it
     skipped and why it stopped early, if it did."""
     counts = record.counts if isinstance(record.counts, dict) else {}
-    lines = [(str(key).replace("_", " "), str(value)) for key, value in sorted(counts.items())
+    lines = [(_COUNT_WORDS.get(str(key), str(key).replace("_", " ")), str(value))
+             for key, value in sorted(counts.items())
              if key not in _INTERNAL_COUNTS and isinstance(value, int | float | str)
              and not isinstance(value, bool)]
     for item in counts.get("skipped") or ():
@@ -272,11 +275,11 @@ def _subject(record: PassRecord, config: PlumblineConfig, new: list[FindingRecor
     if new:
         worst = max(f.severity.rank for f in new)
         word = next(f.severity.value for f in new if f.severity.rank == worst)
-        parts.append(f"{plural(len(new), 'new finding')} (most severe: {word})")
+        parts.append(f"{plural(len(new), 'finding')} raised (most severe: {word})")
     if rose:
         parts.append(f"{len(rose)} more severe")
     if cleared:
-        parts.append(f"{len(cleared)} cleared")
+        parts.append(f"{len(cleared)} no longer seen")
     return (f"Plumbline: {', '.join(parts) or 'no change'}; pass {record.id}, "
             f"{local_date(record.as_of, config.zone)}")  # fmt: skip
 

@@ -315,19 +315,27 @@ def coefficient_data(
         level=history.model.level,
         baseline=baseline_coefficient(store, history, series, term),
         after_baseline=after,
+        start_span=None if record is None else (record.start_period, record.end_period),
     )
 
 
-def monitoring_data(history: ModelHistory, series: str | None) -> MonitoringData | None:
-    """The monitoring path stored with the series' latest fit, or None when there is none."""
+def monitoring_data(
+    store: Store, history: ModelHistory, series: str | None
+) -> MonitoringData | None:
+    """The monitoring path stored with the series' latest fit, or None when there is none. It is
+    named by the last period monitoring started from, as the feed writes it."""
     fit = history.latest_fits.get(series)
     if fit is None:
         return None
     path = monitoring_arrays(fit.diagnostics)
     if path is None:
         return None
+    record = store.baseline(history.name, fit.version, series)
+    start_end = None if record is None else record.end_period
+    since = "" if start_end is None else f" since {start_end}"
     return MonitoringData(
-        title=f"Sequential monitoring since the baseline, {series_label(series)}",
+        title=f"Sequential monitoring{since}, {series_label(series)}",
+        start_end=start_end,
         periods=path.periods,
         statistic=np.asarray(path.statistic, dtype=np.float64),
         boundary=np.asarray(path.boundary, dtype=np.float64),

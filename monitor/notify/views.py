@@ -14,9 +14,13 @@ from markupsafe import Markup
 from monitor.notify.charts import Chart
 from monitor.notify.words import (
     KIND_WORDS,
+    MISS_WORDS,
     SEVERITY_MARKS,
+    STATE_WORDS,
+    finding_headline,
     level_text,
     local_date,
+    local_time,
     number,
     percent,
     scope_text,
@@ -45,8 +49,12 @@ class FindingView:
     action: str
     state: str
     is_new: bool  # raised in the window the report covers
-    acknowledged: bool
+    noted: bool  # an owner recorded a note: no message mentions it again
+    headline: str  # what and where: "depot-11 (delivery_hours): the relationship changed ..."
+    state_words: str  # "newly raised", "still open", "no longer seen"
     cleared: str | None = None  # when it cleared, in the config's time zone
+    note: str | None = None  # the latest owner's note: "2026-12-01 10:00 Europe/Berlin, ana: …"
+    note_count: int = 0
 
 
 def finding_view(
@@ -69,11 +77,19 @@ def finding_view(
         action=record.action,
         state=record.state.value,
         is_new=is_new,
-        acknowledged=record.acknowledged_at is not None,
+        noted=record.noted,
+        headline=finding_headline(record),
+        state_words=STATE_WORDS[record.state.value],
         cleared=(
             None if record.cleared_at is None
             else local_date(record.cleared_at, zone or ZoneInfo("UTC"))
         ),
+        note=(
+            None if record.note is None else
+            f"{local_time(record.note.at, zone or ZoneInfo('UTC'))}, {record.note.by}: "
+            f"{record.note.text}"
+        ),
+        note_count=record.note_count,
     )
 
 
@@ -113,7 +129,8 @@ class CoverageRow:
     hit_rate: str
     interval: str
     nominal: str
-    zone: str | None
+    zone: str | None  # green, yellow or red (the JSON's value), for the colour accent only
+    misses: str  # what the zone means, in words: "about as expected", ...
     kupiec: str
     independence: str
     conditional: str
@@ -137,6 +154,7 @@ def coverage_row(record: dict[str, Any]) -> CoverageRow:
                   f"{percent(record['hit_rate_upper'], 1)}"),
         nominal=level_text(float(record["nominal"])),
         zone=record["zone"],
+        misses="nothing scored" if record["zone"] is None else MISS_WORDS[record["zone"]],
         kupiec=format_p_value(record.get("kupiec_p_value")),
         independence=format_p_value(record.get("independence_p_value")),
         conditional=format_p_value(record.get("christoffersen_p_value")),

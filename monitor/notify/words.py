@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from datetime import datetime
+from typing import Protocol
 from zoneinfo import ZoneInfo
 
 from monitor.figures import level_text, number, percent
@@ -107,6 +108,46 @@ class StatisticValue:
         return format(self.value, spec)
 
 
+# The what of a finding's line, in plain words (each kind's ``headline``).
+HEADLINES: dict[FindingKind, str] = {kind: kind.declaration.headline for kind in FindingKind}
+
+# A finding's state as a forecast owner reads it; the database and JSON keep the values
+# new / ongoing / cleared.
+STATE_WORDS: dict[str, str] = {
+    "new": "newly raised",
+    "ongoing": "still open",
+    "cleared": "no longer seen",
+}
+
+
+def where_text(model: str | None, series: str | None, feed: str | None) -> str:
+    """Where a finding is, series first: "depot-11 (delivery_hours)", "fuel_litres",
+    "feed copacker"."""
+    if model is None:
+        return f"feed {feed}"
+    return model if series is None else f"{series} ({model})"
+
+
+class _Finding(Protocol):
+    @property
+    def model(self) -> str | None: ...
+    @property
+    def series(self) -> str | None: ...
+    @property
+    def feed(self) -> str | None: ...
+    @property
+    def kind(self) -> FindingKind: ...
+    @property
+    def since_period(self) -> str | None: ...
+
+
+def finding_headline(finding: _Finding) -> str:
+    """What and where, in plain words: "depot-11 (delivery_hours): the relationship changed
+    around 2026-01-25"."""
+    what = HEADLINES[finding.kind].format(since=finding.since_period or "an undated period")
+    return f"{where_text(finding.model, finding.series, finding.feed)}: {what}"
+
+
 def statistic_text(
     kind: FindingKind, statistic: float | None, p_value: float | None
 ) -> str:
@@ -125,26 +166,43 @@ def hit_rate_sentence(hits: int, scored: int, level: float, what: str = "actuals
     return f"{hits} of {scored} {what} inside their {level_text(level)} prediction intervals"
 
 
-def zone_word(zone: str | None) -> str:
-    return "no zone (nothing scored)" if zone is None else f"zone {zone}"
+# What the Basel traffic-light zone of a miss count means, said in words (Basel Committee on
+# Banking Supervision 1996, "Supervisory framework for the use of backtesting": green below 95 %
+# cumulative binomial probability of the count, yellow below 99.99 %, red above). The colour is
+# never said alone: pages draw these words, with the colour as an accent only.
+MISS_WORDS: dict[str, str] = {
+    "green": "about as expected",
+    "yellow": "more than expected",
+    "red": "far more than expected",
+}
+
+
+def misses_text(zone: str | None) -> str:
+    """"misses about as expected", "misses far more than expected", or "nothing scored"."""
+    return "nothing scored" if zone is None else f"misses {MISS_WORDS[zone]}"
 
 
 __all__ = [
     "CAUTION",
+    "HEADLINES",
     "KIND_WORDS",
+    "MISS_WORDS",
     "SEVERITY_MARKS",
     "SEVERITY_SHAPES",
+    "STATE_WORDS",
     "StatisticValue",
+    "finding_headline",
     "hit_rate_sentence",
     "join_words",
     "level_text",
     "local_date",
     "local_time",
+    "misses_text",
     "number",
     "p_text",
     "percent",
     "plural",
     "scope_text",
     "statistic_text",
-    "zone_word",
+    "where_text",
 ]

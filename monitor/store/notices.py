@@ -11,6 +11,7 @@ from typing import Any
 from monitor.store.base import StoreBase
 from monitor.store.records import (
     DigestRecord,
+    FindingNote,
     FindingRecord,
     FindingUpsert,
     OutboxMessage,
@@ -23,6 +24,14 @@ from monitor.store.records import (
     utc_text,
 )
 from monitor.vocabulary import Finding, FindingKind, FindingState, Severity
+
+# Every finding is read with its latest note and the number of notes.
+_COLUMNS = (
+    "findings.*, (SELECT json_object('at', n.noted_at, 'by', n.noted_by, 'text', n.text) "
+    "FROM finding_notes n WHERE n.finding_id = findings.id ORDER BY n.id DESC LIMIT 1) "
+    "AS latest_note, (SELECT count(*) FROM finding_notes n WHERE n.finding_id = findings.id) "
+    "AS note_count"
+)
 
 
 class NoticesMixin(StoreBase):
@@ -44,7 +53,7 @@ class NoticesMixin(StoreBase):
         )
 
     def get_finding(self, finding_id: int) -> FindingRecord | None:
-        row = self._dict("SELECT * FROM findings WHERE id = ?", (finding_id,))
+        row = self._dict(f"SELECT {_COLUMNS} FROM findings WHERE id = ?", (finding_id,))
         return None if row is None else _finding_record(row)
 
     def upsert_finding(self, finding: Finding, *, pass_id: int, at: datetime) -> FindingUpsert:
@@ -59,7 +68,9 @@ class NoticesMixin(StoreBase):
         )
         stamp = utc_text(at)
         with self.transaction():
-            row = self._dict(f"SELECT * FROM findings WHERE {where} AND state <> 'cleared'", params)
+            row = self._dict(
+                f"SELECT {_COLUMNS} FROM findings WHERE {where} AND state <> 'cleared'", params
+            )
             if row is None:
                 cursor = self._conn.execute(
                     "INSERT INTO findings (model, series_key, feed, kind, severity, state, "
@@ -110,7 +121,7 @@ class NoticesMixin(StoreBase):
         if clear_after < 1:
             raise ValueError("clear_after must be at least 1")
         with self.transaction():
-            row = self._dict("SELECT * FROM findings WHERE id = ?", (finding_id,))
+            row = self._dict(f"SELECT {_COLUMNS} FROM findings WHERE id = ?", (finding_id,))
             if row is None:
                 raise StoreError(f"no finding with id {finding_id}")
             record = _finding_record(row)
@@ -144,8 +155,11 @@ class NoticesMixin(StoreBase):
                 raise StoreError(f"no finding with id {finding_id}")
         return self._require(self.get_finding(finding_id), "finding", finding_id)
 
-    def acknowledge_finding(self, finding_id: int, *, at: datetime) -> FindingRecord:
-        """``plumbline ack ID``: the owner has seen it; it stays listed, and is not sent again."""
+    def note_finding(self, finding_id: int, *, at: datetime, by: str, text: str) -> FindingRecord:
+        """``plumbline note ID TEXT``: record an owner's note. The finding stays listed with its
+        state; from its first note on no message mentions it again. Notes are kept, in order."""
+        if not text.strip():
+            raise ValueError("a note needs some text")
         with self.transaction():
             cursor = self._conn.execute(
                 "UPDATE findings SET acknowledged_at = coalesce(acknowledged_at, ?) WHERE id = ?",
@@ -153,7 +167,21 @@ class NoticesMixin(StoreBase):
             )
             if cursor.rowcount != 1:
                 raise StoreError(f"no finding with id {finding_id}")
+            self._conn.execute(
+                "INSERT INTO finding_notes (finding_id, noted_at, noted_by, text) "
+                "VALUES (?, ?, ?, ?)",
+                (finding_id, utc_text(at), by, text.strip()),
+            )
         return self._require(self.get_finding(finding_id), "finding", finding_id)
+
+    def finding_notes(self, finding_id: int) -> list[FindingNote]:
+        """Every note on the finding, oldest first."""
+        rows = self._dicts(
+            "SELECT finding_id, noted_at, noted_by, text FROM finding_notes "
+            "WHERE finding_id = ? ORDER BY id", (finding_id,),
+        )
+        return [FindingNote(r["finding_id"], parse_utc(r["noted_at"]), r["noted_by"], r["text"])
+                for r in rows]
 
     def mark_new_findings_ongoing(self, pass_id: int) -> int:
         """Findings raised before ``pass_id`` are no longer ``new``; returns how many changed."""
@@ -191,7 +219,7 @@ class NoticesMixin(StoreBase):
         else:
             states = (FindingState(state).value,)
         rows = self._dicts(
-            "SELECT * FROM findings WHERE state IN (SELECT value FROM json_each(?1)) "
+            f"SELECT {_COLUMNS} FROM findings WHERE state IN (SELECT value FROM json_each(?1)) "
             "AND (?2 IS NULL OR model = ?2) AND (?3 IS NULL OR feed = ?3) "
             "AND (?4 IS NULL OR kind = ?4) AND (?5 IS NULL OR first_pass_id = ?5) "
             "AND (?6 IS NULL OR cleared_pass_id = ?6) ORDER BY id",
@@ -207,7 +235,9 @@ class NoticesMixin(StoreBase):
     ) -> FindingRecord | None:
         """The newest finding of this scope and kind in any state (to carry an ack over)."""
         where, params = self._finding_where(model, series, feed, kind)
-        row = self._dict(f"SELECT * FROM findings WHERE {where} ORDER BY id DESC LIMIT 1", params)
+        row = self._dict(
+            f"SELECT {_COLUMNS} FROM findings WHERE {where} ORDER BY id DESC LIMIT 1", params
+        )
         return None if row is None else _finding_record(row)
 
     # ----------------------------------------------------------------- digests
@@ -352,7 +382,16 @@ def _finding_record(row: Mapping[str, Any]) -> FindingRecord:
         acknowledged_at=_maybe_utc(row["acknowledged_at"]),
         cleared_at=_maybe_utc(row["cleared_at"]),
         cleared_pass_id=row["cleared_pass_id"],
+        note=_note(row["id"], row.get("latest_note")),
+        note_count=int(row.get("note_count") or 0),
     )
+
+
+def _note(finding_id: int, latest: str | None) -> FindingNote | None:
+    if latest is None:
+        return None
+    fields = json.loads(latest)
+    return FindingNote(finding_id, parse_utc(fields["at"]), fields["by"], fields["text"])
 
 
 def _digest_record(row: Mapping[str, Any]) -> DigestRecord:

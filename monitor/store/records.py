@@ -457,15 +457,32 @@ class FindingRecord:
     false_streak: int  # consecutive passes with the condition false
     created_at: datetime
     updated_at: datetime
-    acknowledged_at: datetime | None
+    acknowledged_at: datetime | None  # when its first owner's note was recorded
     cleared_at: datetime | None
     cleared_pass_id: int | None
+    note: FindingNote | None = None  # the latest owner's note
+    note_count: int = 0
+
+    @property
+    def noted(self) -> bool:
+        """Whether an owner has recorded a note on it (its messages then stop)."""
+        return self.acknowledged_at is not None
 
     def as_finding(self) -> Finding:
         return Finding(
             self.model, self.series, self.feed, self.kind, self.severity, self.since_period,
             self.statistic, self.p_value, self.message, self.action,
         )
+
+
+@dataclass(frozen=True)
+class FindingNote:
+    """One owner's note on a finding: who wrote it, when (UTC), and what it says."""
+
+    finding_id: int
+    at: datetime
+    by: str
+    text: str
 
 
 @dataclass(frozen=True)

@@ -271,11 +271,31 @@ _CALIBRATED_INTERVALS = (
     "ALTER TABLE forecasts ADD COLUMN calibrated_factor REAL",
 )
 
+# An owner's notes on a finding (``plumbline note``): who, when, why; the history is kept, so the
+# table is append-only. A note stops the finding's messages; ``findings.acknowledged_at`` keeps
+# the moment of its first note (the column's old name stays: renaming it would touch every
+# reader). A finding acknowledged before notes existed gets one note saying so.
+_FINDING_NOTES = (
+    """CREATE TABLE finding_notes (
+        id INTEGER PRIMARY KEY,
+        finding_id INTEGER NOT NULL REFERENCES findings(id),
+        noted_at TEXT NOT NULL,
+        noted_by TEXT NOT NULL,
+        text TEXT NOT NULL
+    )""",
+    "CREATE INDEX finding_notes_by_finding ON finding_notes(finding_id, id)",
+    "INSERT INTO finding_notes (finding_id, noted_at, noted_by, text) "
+    "SELECT id, acknowledged_at, 'unknown', 'acknowledged (before notes were kept)' "
+    "FROM findings WHERE acknowledged_at IS NOT NULL ORDER BY id",
+    *_append_only("finding_notes"),
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "passes, files, rejected rows, series, observations", _FILES_AND_OBSERVATIONS),
     Migration(2, "model versions, fits, forecasts, outcomes, baselines", _MODELS_FITS_FORECASTS),
     Migration(3, "findings, digests, the outbox", _FINDINGS_DIGESTS_OUTBOX),
     Migration(4, "calibrated intervals beside forecasts", _CALIBRATED_INTERVALS),
+    Migration(5, "owners' notes on findings", _FINDING_NOTES),
 )
 SCHEMA_VERSION = MIGRATIONS[-1].version
 

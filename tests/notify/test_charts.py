@@ -112,26 +112,30 @@ def test_alt_text_states_the_figures() -> None:
     assert describe(rate).startswith(
         "Over the latest 13 scored periods 12 of 13 actuals fell inside (92 %; Clopper–Pearson "
         "interval 64 % to 100 %) against the nominal 95 %")
+    # The periods monitoring started from are named by their dates.
     path = MonitoringData("m", _periods(5), np.array([0.5, 1.0, 2.5, 3.0, 3.5]),
-                          np.full(5, 2.0), "2025-01-08")
+                          np.full(5, 2.0), "2025-01-08", start_end="2024-12-25")
     assert describe(path) == ("The monitoring statistic crossed its boundary at 2025-01-15, 3 "
-                              "periods after the baseline; the new regime is estimated to start "
+                              "periods after 2024-12-25; the new regime is estimated to start "
                               "at 2025-01-08.")
-    quiet = MonitoringData("m", _periods(4), np.array([0.2, -0.5, 0.4, 1.0]), np.full(4, 2.0))
-    assert describe(quiet) == ("Over 4 periods since the baseline the monitoring statistic stayed "
+    quiet = MonitoringData("m", _periods(4), np.array([0.2, -0.5, 0.4, 1.0]), np.full(4, 2.0),
+                           start_end="2024-12-25")
+    assert describe(quiet) == ("Over 4 periods since 2024-12-25 the monitoring statistic stayed "
                                "inside its boundary (at most 50 % of it).")
     coefficient = CoefficientData("c", "drops", _periods(3), np.array([0.5, 0.8, 1.0]),
                                   np.array([0.4, 0.7, 0.9]), np.array([0.6, 0.9, 1.1]), 0.9,
-                                  (0.5, 0.4, 0.6))
+                                  (0.5, 0.4, 0.6), start_span=("2024-10-02", "2024-12-25"))
+    assert "against 0.5 (0.4 to 0.6) over 2024-10-02 to 2024-12-25, the periods monitoring " \
+        "started from; 2 of" in describe(coefficient)
     assert describe(coefficient).endswith(
-        "; 2 of the 3 refits since the baseline have an interval clear of the baseline band, the "
-        "first at 2025-01-08.")
+        "; 2 of the 3 refits since 2024-12-25 have an interval clear of that band, the first at "
+        "2025-01-08.")
     later = CoefficientData("c", "drops", _periods(3), np.array([0.2, 0.5, 1.0]),
                             np.array([0.1, 0.4, 0.9]), np.array([0.3, 0.6, 1.1]), 0.9,
                             (0.5, 0.4, 0.6), after_baseline=1)
     assert describe(later).endswith(
-        "; 1 of the 2 refits since the baseline have an interval clear of the baseline band, the "
-        "first at 2025-01-15.")
+        "; 1 of the 2 refits since then have an interval clear of that band, the first at "
+        "2025-01-15.")
 
 
 def test_every_kind_draws(history: History) -> None:
@@ -143,7 +147,7 @@ def test_every_kind_draws(history: History) -> None:
             actuals_data(pick, None),
             hit_rate_data(depots, pooled=True),
             coefficient_data(store, depots, "South", "drops"),
-            monitoring_data(depots, "South"),
+            monitoring_data(store, depots, "South"),
             scatter_data(store, pick, None),
         ]
     assert all(data is not None for data in made)

@@ -92,8 +92,10 @@ def test_digest_changes_since_the_last_digest(history: History) -> None:
     assert ranks == sorted(ranks, reverse=True)
     assert digest.sentence.startswith(
         f"{len(open_now)} open findings need attention (1 critical, 1 warning and 2 notices); "
-        "most urgent: structural break in delivery_hours, series South (critical). Since the "
-        "last digest (2025-01-06 08:00 Europe/Berlin): 1 new, 1 cleared.")
+        "most urgent: South (delivery_hours): the relationship changed around ")
+    assert digest.sentence.endswith(
+        "(critical). Since the last digest (2025-01-06 08:00 Europe/Berlin): 1 newly raised, 1 no "
+        "longer seen.")
 
 
 def test_digest_forecasts_for_the_coming_period(history: History) -> None:
@@ -138,7 +140,10 @@ def test_digest_page_and_text(history: History) -> None:
     assert text.startswith("PLUMBLINE DIGEST FOR THE PERIOD ENDING 2025-02-24")
     assert "<" + "span" not in text and "&lt;" not in text and "&#39;" not in text
     assert SCRIPT_SERIES in text  # plain text is not escaped: it is not HTML
-    assert "▲ CRITICAL: structural break, delivery_hours, series South" in text
+    # each finding leads with what and where (the wording changed with issue 10)
+    flat = " ".join(text.split())
+    assert "▲ critical: South (delivery_hours): the relationship changed around " in flat, text
+    assert "Structural break, finding " in flat
     assert "A finding is a statistical signal, not proof" in text
 
 

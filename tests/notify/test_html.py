@@ -1,6 +1,6 @@
 """HTML pages: the opening sentence, findings in order of severity with a shape per severity,
 zone words beside their colours, autoescaped user text, no outside resources, and the pass's
-messages (one per recipient, acknowledged findings left out). Pages are parsed with
+messages (one per recipient, findings with an owner's note left out). Pages are parsed with
 ``html.parser``, so "no such element" means no element the browser would build either."""
 
 from __future__ import annotations
@@ -23,6 +23,7 @@ from report_history import (
 
 from monitor.notify import render_pass_report, write_index, write_model_pages
 from monitor.notify.html import attention_sentence, environment, render
+from monitor.notify.words import MISS_WORDS
 from monitor.store import Store
 from monitor.vocabulary import Finding, FindingKind, Severity
 
@@ -156,8 +157,9 @@ def test_pass_page_orders_by_severity_with_shapes(history: History) -> None:
     lede = page.find("p", "lede")[0]
     assert text_of(lede).startswith(f"Pass {last} (business clock 2025-02-24 08:00 "
                                     "Europe/Berlin, finished) raised 4 findings (1 critical, 2 "
-                                    "warnings and 1 notice; most urgent: slope sign reversed in "
-                                    "pick_hours), cleared 0 and issued 4 forecasts.")
+                                    "warnings and 1 notice; most urgent: pick_hours: a slope "
+                                    "reversed its sign (fit to ")
+    assert text_of(lede).endswith("), found 0 no longer seen and issued 4 forecasts.")
     sequence = _severity_sequence(page)
     assert sequence == ["critical", "warning", "warning", "notice"]  # the new findings
     assert [RANK[s] for s in sequence] == sorted((RANK[s] for s in sequence), reverse=True)
@@ -194,9 +196,10 @@ def test_pass_messages_one_per_recipient(history: History) -> None:
     # The stale warehouse feed reaches the owners of models on that feed only.
     assert "Feed warehouse has delivered nothing" in both.content.text
     assert "Feed warehouse" not in depots.content.text
-    assert "slope sign reversed" in both.content.text
-    assert "slope sign reversed" not in depots.content.text
-    assert depots.content.subject.startswith("Plumbline: 2 new findings (most severe: warning)")
+    # findings lead with what and where; the subject counts what was raised (issue 10 wording)
+    assert "pick_hours: a slope reversed its sign" in " ".join(both.content.text.split())
+    assert "reversed its sign" not in depots.content.text
+    assert depots.content.subject.startswith("Plumbline: 2 findings raised (most severe: warning)")
     for message in report.messages:
         content = message.content
         assert "\n" not in content.subject and content.subject.startswith("Plumbline: ")
@@ -209,7 +212,7 @@ def test_pass_messages_one_per_recipient(history: History) -> None:
     assert depots.content.images  # the depots' new findings come with their charts
 
 
-def test_acknowledged_findings_are_not_sent(history: History) -> None:
+def test_findings_with_an_owners_note_are_not_sent(history: History) -> None:
     week = 50  # pass 51 raised only the rejected file on feed depots
     pass_id = history.pass_ids[week]
     with history.open() as store:
@@ -218,7 +221,7 @@ def test_acknowledged_findings_are_not_sent(history: History) -> None:
         report = render_pass_report(store, history.config, pass_id, write_models=False)
         assert {m.recipient for m in report.messages} == {"depots@example.org",
                                                           "warehouse@example.org"}
-        store.acknowledge_finding(raised[0].id, at=as_of(week))
+        store.note_finding(raised[0].id, at=as_of(week), by="owner", text="a known export fault")
         quiet = render_pass_report(store, history.config, pass_id, write_models=False)
     assert quiet.messages == ()
     assert quiet.path.exists()  # the page is written all the same
@@ -273,12 +276,16 @@ def test_model_page_content(history: History) -> None:
     assert "Coefficients with 95 % confidence intervals (lower, upper); t and p-values on 50 " \
            "degrees of freedom." in page.text
     assert "Durbin–Watson" in page.text and "Breusch–Pagan" in page.text
-    # Zones: a colour only beside its word.
-    for swatch in page.find("span", "swatch"):
-        zone = [a for t, a in swatch.ancestors if "zone" in a.get("class", "").split()]
-        assert zone, "a swatch outside a zone label"
-    words = {text_of(e) for e in page.find("span", "zone")}
-    assert words <= {"green", "yellow", "red"} and words
+    # The miss count in words; its colour (a rule under the words) never stands alone, and no
+    # colour word or coloured square stands in for it.
+    labels = page.find("span", "misses")
+    assert labels
+    for label in labels:
+        zone = label.attrs["data-zone"]
+        assert text_of(label) == MISS_WORDS[zone]
+        assert f"misses-{zone}" in label.attrs["class"].split()
+    assert not page.find("span", "swatch")
+    assert "zone" not in " ".join(text_of(th) for th in page.find("th"))
     # Charts: inline SVG, each with a caption stating its message and an accessible label.
     figures = page.find("figure", "chart")
     assert len(figures) >= 3

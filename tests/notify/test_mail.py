@@ -699,7 +699,7 @@ def test_feed_findings_and_clearings_reach_the_models_owners(tmp_path: Path) -> 
             "planning@example.org": ("yard_hours",),
             "receiving@example.org": ("receiving_hours",),
         }
-        store.acknowledge_finding(finding_id, at=NOW + timedelta(days=8))
+        store.note_finding(finding_id, at=NOW + timedelta(days=8), by="ops", text="known")
         assert models_to_notify(store, config, second) == {"yard_hours"}
 
 
