@@ -19,7 +19,17 @@ oldest first, padded with ``mask`` False. Positions (0-based, per series) select
   that raises a false ``slope_shift`` in roughly 40 % of series over a two-year horizon (measured
   on the demo scenario's healthy models). With disjoint blocks each look is a fresh, independent
   test, re-running a pass re-tests the same block (same answer, no flapping), and the pass can
-  split the significance over the looks the horizon allows (``looks_per_horizon``).
+  split the significance over the looks the horizon allows (``looks_per_horizon``);
+- after a monitoring alarm, the rows before the estimated break (from the baseline's start) and
+  every row since it: the slopes on either side are compared (``break_shift``) once at least
+  ``MIN_ROWS_AFTER_BREAK`` rows follow the break. With far more rows on both sides than one
+  recent block, this is the test that can name a slope change of a few standard errors; its
+  false-alarm control is the alarm's own (``monitor.findings.slope_shift_conditions``).
+
+Both slope comparisons widen each slope's standard error by the AR(1) factor
+sqrt((1 + r f) / (1 - r f)) (r the errors' and f the predictor's lag-1 autocorrelation on the
+baseline), and the monitoring statistic is scaled by the errors' AR(1) long-run standard
+deviation (``MONITORING_ERRORS``), so mildly autocorrelated errors do not pass for a change.
 
 Plan rows (s, M, k) with their own mask get the prediction interval of this pass's fit, the
 mean-response interval beside it, their leverage and the extrapolation flag (outside the fitted
@@ -39,13 +49,21 @@ from monitor.stats.diagnostics import (
     durbin_watson_batch,
     jarque_bera_batch,
 )
-from monitor.stats.monitoring import MonitorResult, monitor, start_monitoring
+from monitor.stats.monitoring import DEFAULT_BOUNDARY, MonitorResult, monitor, start_monitoring
 from monitor.stats.ols import BatchFit, BatchPrediction, fit_batch
 from monitor.stats.shift import BatchSlopeShift, slope_shift
 
 FloatArray = NDArray[np.float64]
 BoolArray = NDArray[np.bool_]
 IntArray = NDArray[np.int64]
+
+#: Fewest rows after an estimated break before the slopes on either side are compared (our
+#: choice: fewer rows give a slope estimate too rough to name what changed).
+MIN_ROWS_AFTER_BREAK = 10
+#: How the monitoring statistic scales forecast errors (``monitor.stats.monitoring``): "ar1"
+#: uses the long-run standard deviation under the AR(1) autocorrelation measured on the
+#: baseline, so mildly autocorrelated errors do not raise false alarms (DEVELOPERS.md).
+MONITORING_ERRORS = "ar1"
 
 
 @dataclass(frozen=True, eq=False)
@@ -85,6 +103,10 @@ class BatchOutput:
     slope_shift: BatchSlopeShift  # slopes only (no intercept), (s, k)
     monitor_mask: BoolArray  # (s, N)
     monitoring: MonitorResult
+    break_tested: BoolArray  # (s,) slopes compared on either side of the monitoring's break
+    break_shift: BatchSlopeShift  # (s, k) before the estimated break vs after it
+    break_rows: IntArray  # (s,) rows after the estimated break
+    slope_inflation: FloatArray  # (s, k) factor applied to the slope standard errors
     prediction: BatchPrediction  # (s, M)
     outside_range: BoolArray  # (s, M)
     above_leverage: BoolArray  # (s, M)
@@ -145,21 +167,49 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
     recent_fit = fit_batch(batch.x, batch.y, recent_mask, intercept=batch.intercept,
                            level=batch.level, names=names)
     slope_columns = slice(1, None) if batch.intercept else slice(None)
+
+    monitor_mask = after & (position < end + batch.horizon[:, None])
+    state = start_monitoring(batch.x, batch.y, base_mask, intercept=batch.intercept, names=names,
+                             errors=MONITORING_ERRORS)
+    monitoring = monitor(state, batch.x, batch.y, monitor_mask, alpha=batch.significance,
+                         horizon=batch.horizon, boundary=DEFAULT_BOUNDARY)
+    inflation = _slope_inflation(batch.x, base_mask, state.error_scale)
+
     comparable = recent_tested & baseline_fit.estimable & recent_fit.estimable
     shift = slope_shift(
         np.where(comparable[:, None], baseline_fit.coef[:, slope_columns], np.nan),
-        baseline_fit.standard_error[:, slope_columns],
+        baseline_fit.standard_error[:, slope_columns] * inflation,
         baseline_fit.residual_df,
         recent_fit.coef[:, slope_columns],
-        recent_fit.standard_error[:, slope_columns],
+        recent_fit.standard_error[:, slope_columns] * inflation,
         recent_fit.residual_df,
         terms=names,
     )
 
-    monitor_mask = after & (position < end + batch.horizon[:, None])
-    state = start_monitoring(batch.x, batch.y, base_mask, intercept=batch.intercept, names=names)
-    monitoring = monitor(state, batch.x, batch.y, monitor_mask, alpha=batch.significance,
-                         horizon=batch.horizon)
+    # After an alarm: the slopes before the estimated break (from the baseline's start) against
+    # those after it (every row since), the split the monitoring statistic found.
+    columns = np.arange(batch.y.shape[1])[None, :]
+    break_column = monitoring.break_index[:, None]
+    crossed = monitoring.crossed & has_baseline
+    before_mask = base_mask | (after & (columns < break_column))
+    before_mask &= crossed[:, None] & (position >= start)
+    after_break = used & crossed[:, None] & (columns >= break_column)
+    break_rows = after_break.sum(axis=1).astype(np.int64)
+    before_fit = fit_batch(batch.x, batch.y, before_mask, intercept=batch.intercept,
+                           level=batch.level, names=names)
+    after_fit = fit_batch(batch.x, batch.y, after_break, intercept=batch.intercept,
+                          level=batch.level, names=names)
+    break_tested = (crossed & (break_rows >= MIN_ROWS_AFTER_BREAK)
+                    & before_fit.estimable & after_fit.estimable)
+    break_shift = slope_shift(
+        np.where(break_tested[:, None], before_fit.coef[:, slope_columns], np.nan),
+        before_fit.standard_error[:, slope_columns] * inflation,
+        before_fit.residual_df,
+        after_fit.coef[:, slope_columns],
+        after_fit.standard_error[:, slope_columns] * inflation,
+        after_fit.residual_df,
+        terms=names,
+    )
 
     plan_x = np.where(batch.plan_mask[:, :, None], batch.plan_x, 0.0)
     if plan_x.shape[1] and fit.estimable.any():
@@ -210,6 +260,10 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
         slope_shift=shift,
         monitor_mask=monitor_mask,
         monitoring=monitoring,
+        break_tested=break_tested,
+        break_shift=break_shift,
+        break_rows=break_rows,
+        slope_inflation=inflation,
         prediction=prediction,
         outside_range=outside_range,
         above_leverage=above_leverage,
@@ -218,9 +272,41 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
     )
 
 
+def _slope_inflation(x: FloatArray, rows: BoolArray, error_scale: FloatArray) -> FloatArray:
+    """Factor on each slope's standard error for AR(1) errors and an autocorrelated predictor.
+
+    With AR(1) errors (autocorrelation r) and a predictor whose lag-1 autocorrelation is f, the
+    variance of a least-squares slope is about (1 + r f) / (1 - r f) times the textbook one
+    (Bartlett 1935; Bayley & Hammersley 1946; MEM). r is the bias-corrected, clipped value the
+    monitoring's long-run scale uses (recovered from ``error_scale`` = sqrt((1 + r) / (1 - r))),
+    f is measured on the baseline rows; products below 0 count as 0 (no narrowing). (s, k).
+    """
+    series, _, k = x.shape
+    if k == 0:
+        return np.ones((series, 0))
+    squared = error_scale**2
+    r = (squared - 1.0) / (squared + 1.0)
+    count = np.maximum(rows.sum(axis=1), 1)[:, None]
+    mean = np.where(rows[:, :, None], x, 0.0).sum(axis=1) / count
+    centred = np.where(rows[:, :, None], x - mean[:, None, :], 0.0)
+    pairs = (rows[:, 1:] & rows[:, :-1])[:, :, None]
+    lagged = np.where(pairs, centred[:, 1:] * centred[:, :-1], 0.0).sum(axis=1)
+    energy = (centred * centred).sum(axis=1)
+    f = np.where(energy > 0, lagged / np.where(energy > 0, energy, 1.0), 0.0)
+    product = np.clip(r[:, None] * f, 0.0, 0.9)
+    return np.asarray(np.sqrt((1.0 + product) / (1.0 - product)), dtype=np.float64)
+
+
 def looks_per_horizon(horizon: int, recent: int) -> int:
     """How many disjoint recent windows fit in the monitoring horizon (at least 1)."""
     return max(1, horizon // max(recent, 1))
 
 
-__all__ = ["BatchInput", "BatchOutput", "analyse_batch", "looks_per_horizon"]
+__all__ = [
+    "MIN_ROWS_AFTER_BREAK",
+    "MONITORING_ERRORS",
+    "BatchInput",
+    "BatchOutput",
+    "analyse_batch",
+    "looks_per_horizon",
+]

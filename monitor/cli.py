@@ -3,18 +3,22 @@
 Each command lives in its own module under ``monitor/commands/`` exposing
 ``register(subparsers)`` (adds its parser and sets ``handler``) and a handler returning the exit
 code. Exit codes (DESIGN.md section 9): 0 success; 1 a critical finding is open and ``--strict``
-was given; 2 bad usage, invalid config or input file, refused clock, or a held database lock.
+was given; 2 bad usage, invalid config or input file, refused clock, or a held database lock; 3 the
+database cannot be read or written (a damaged file, a full disk, a read-only mount).
 """
 
 from __future__ import annotations
 
 import argparse
 import importlib
+import sqlite3
 import sys
 from collections.abc import Sequence
+from typing import Any, TextIO
 
 from monitor import __version__
-from monitor.errors import PlumblineError
+from monitor.errors import DatabaseFaultError, PlumblineError
+from monitor.text import printable
 
 # Each command and the module under monitor.commands that registers it, in the order
 # ``plumbline --help`` lists them. Only the module of the command given is imported, so a light
@@ -68,7 +72,33 @@ def modules_needed(argv: Sequence[str]) -> tuple[str, ...]:
     return COMMAND_MODULES
 
 
+class EscapedOutput:
+    """Standard output with :func:`monitor.text.printable` applied to every write, so no value
+    from a data file (a series name, a file name, a reason) reaches the terminal as a control
+    character or a bidirectional mark, whichever command prints it. ``unescaped`` is the stream
+    underneath, for a command's own control characters (the demo's progress line)."""
+
+    def __init__(self, stream: TextIO) -> None:
+        self.unescaped = stream
+
+    def write(self, text: str) -> int:
+        self.unescaped.write(printable(text))
+        return len(text)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.unescaped, name)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    original = sys.stdout
+    sys.stdout = EscapedOutput(original)
+    try:
+        return _main(argv)
+    finally:
+        sys.stdout = original
+
+
+def _main(argv: Sequence[str] | None) -> int:
     arguments = sys.argv[1:] if argv is None else list(argv)
     parser = build_parser(modules_needed(arguments))
     try:
@@ -81,10 +111,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args.handler(args))
     except PlumblineError as exc:
-        print(f"plumbline: {exc}", file=sys.stderr)
+        print(f"plumbline: {printable(str(exc))}", file=sys.stderr)
         return exc.exit_code
     except BrokenPipeError:
         return 0
+    except sqlite3.Error as exc:  # a fault the store did not name: still one line, exit 3
+        print(f"plumbline: the database cannot be used: {printable(str(exc))}", file=sys.stderr)
+        return DatabaseFaultError.exit_code
 
 
 def entry_point() -> None:

@@ -56,7 +56,7 @@ POLL_SECONDS = 0.05
 
 # Fields of the output dataclasses that describe the whole call, not one series each: equal in
 # every batch, taken once. Every other field has the series as its first axis and is joined.
-SHARED_FIELDS = frozenset({"terms", "intercept", "level", "p", "alpha"})
+SHARED_FIELDS = frozenset({"terms", "intercept", "level", "p", "alpha", "boundary_name"})
 
 INSTALL_HINT = "install the optional extra: pip install 'plumbline[dask]'"
 

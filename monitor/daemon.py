@@ -41,6 +41,7 @@ import contextlib
 import json
 import logging
 import os
+import re
 import select
 import signal
 import socket
@@ -70,7 +71,7 @@ from apscheduler.triggers.interval import IntervalTrigger
 
 from monitor.errors import ConfigError, UsageError
 from monitor.lock import DatabaseLock
-from monitor.text import did_you_mean, is_duration, parse_duration
+from monitor.text import did_you_mean, is_duration, parse_duration, printable
 
 JobResult = Mapping[str, object] | None
 JobFunction = Callable[[threading.Event], JobResult]
@@ -335,6 +336,11 @@ def _plain_value(value: object) -> str:
     return text
 
 
+# What json.dumps(ensure_ascii=False) leaves raw but a terminal acts on: DEL, C1 controls and the
+# bidirectional marks (C0 controls it escapes itself).
+_JSON_UNSAFE = re.compile("[\x7f-\x9f\u061c\u200e\u200f\u202a-\u202e\u2066-\u2069]")
+
+
 class EventLineFormatter(logging.Formatter):
     """One line per log record: time (UTC), level, event, message and fields.
 
@@ -377,11 +383,15 @@ class EventLineFormatter(logging.Formatter):
             }
             if trace is not None:
                 line["traceback"] = trace
-            return json.dumps(line, ensure_ascii=False, default=_json_value)
+            return _JSON_UNSAFE.sub(
+                lambda m: f"\\u{ord(m.group(0)):04x}",
+                json.dumps(line, ensure_ascii=False, default=_json_value),
+            )
         text = f"{moment} {level} {event}: {message}"
         if fields:
             text += " (" + ", ".join(f"{k}={_plain_value(v)}" for k, v in fields.items()) + ")"
-        return text
+        # Values from data files (series, file names) may hold terminal controls or bidi marks.
+        return printable(text, keep_newlines=False)
 
 
 @contextmanager

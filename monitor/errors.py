@@ -7,7 +7,9 @@
     ├── ClockRefusedError          a pass's business clock is before the latest pass's (exit 2)
     ├── DatabaseLockedError        another process holds the database's writer lock (exit 2)
     ├── ComputeUnavailableError    the Dask scheduler of ``compute:`` cannot be reached (exit 2)
-    └── ComputeLostError           the cluster lost a batch mid-pass; the pass stopped (exit 2)
+    ├── ComputeLostError           the cluster lost a batch mid-pass; the pass stopped (exit 2)
+    └── DatabaseFaultError         the database file or its disk cannot be used: a garbled or
+                                   truncated file, a full disk, a read-only mount (exit 3)
 
 Every class carries ``exit_code``; the CLI prints the message on one line and exits with it.
 """
@@ -52,11 +54,20 @@ class ComputeLostError(PlumblineError):
     pass redoes it."""
 
 
+class DatabaseFaultError(PlumblineError):
+    """The database cannot be read or written for a reason outside Plumbline: its file is
+    damaged (a garbled or truncated header), its disk is full, or it sits on a read-only mount.
+    Nothing half-done is kept: the transaction in progress was rolled back."""
+
+    exit_code = 3
+
+
 __all__ = [
     "ClockRefusedError",
     "ComputeLostError",
     "ComputeUnavailableError",
     "ConfigError",
+    "DatabaseFaultError",
     "DatabaseLockedError",
     "InputFileError",
     "PlumblineError",

@@ -291,41 +291,74 @@ def slope_shift_conditions(
     since: Sequence[str | None],
     *,
     looks: int = 1,
+    break_statistic: ArrayLike | None = None,
+    break_p_value: ArrayLike | None = None,
+    break_held: ArrayLike | None = None,
+    break_since: Sequence[str | None] | None = None,
     start_spans: Sequence[Span] | None = None,
     recent_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
-    """``slope_shift``: a per-slope baseline-vs-recent test rejects after BH.
+    """``slope_shift``: which slope moved, from one of two tests, each family under BH.
 
-    ``start_spans`` and ``recent_spans`` (first, last period of each series' baseline and of
-    its latest complete recent block) name the two periods compared in the message.
-
-    ``looks`` is how many disjoint recent windows the monitoring horizon allows (see
-    ``monitor.analysis``): each p-value is multiplied by it (Bonferroni over the looks, so a
-    stable series raises a false ``slope_shift`` over the horizon with chance at most the
-    BH rate), then the family of every (series, slope) test of the model is controlled
-    with Benjamini–Hochberg. A series holds when any of its slopes rejects; the condition reports
-    its smallest p-value. ``statistic`` and ``p_value`` are (s, k) arrays, NaN where not tested.
+    After a ``structural_break`` that holds (``break_held``), the slopes fitted before the
+    monitoring's estimated break (from the baseline's start) are compared with those fitted on
+    every row since it (``break_statistic`` / ``break_p_value``, (s, k), NaN where not tested):
+    the monitoring alarm has already controlled the chance of a false change, and this test names
+    the slope that moved with the most rows on both sides. These series form one family under
+    Benjamini–Hochberg. Every other series keeps the baseline-vs-recent-block test
+    (``statistic`` / ``p_value``) that also sees a slope turning about the predictors' mean,
+    which the monitoring statistic cannot: ``looks`` is how many disjoint recent windows the
+    monitoring horizon allows (see ``monitor.analysis``), each p-value is multiplied by it
+    (Bonferroni over the looks) and those series form a second BH family. A series holds when
+    any of its slopes rejects; the condition reports its smallest p-value. ``start_spans`` and
+    ``recent_spans`` (first, last period of each series' baseline and of its latest complete
+    recent block) name the two periods the block test compared in the message.
     """
-    stat = np.asarray(statistic, dtype=float).reshape(len(series), len(slopes))
-    p = np.minimum(1.0, np.asarray(p_value, dtype=float).reshape(len(series), len(slopes))
-                   * max(1, looks))
-    rejected = reject(FindingKind.SLOPE_SHIFT, p.ravel(), thresholds).reshape(p.shape)
+    shape = (len(series), len(slopes))
+    stat = np.asarray(statistic, dtype=float).reshape(shape)
+    p = np.minimum(1.0, np.asarray(p_value, dtype=float).reshape(shape) * max(1, looks))
+    held = (np.zeros(len(series), dtype=bool) if break_held is None
+            else np.asarray(break_held, dtype=bool))
+    if break_p_value is not None and break_statistic is not None:
+        p_break = np.asarray(break_p_value, dtype=float).reshape(shape)
+        stat_break = np.asarray(break_statistic, dtype=float).reshape(shape)
+    else:
+        p_break = np.full(shape, np.nan)
+        stat_break = np.full(shape, np.nan)
+    after_break = held & ~np.isnan(p_break).all(axis=1)
+    p_block = np.where(after_break[:, None], np.nan, p)
+    p_after = np.where(after_break[:, None], p_break, np.nan)
+    rejected = (reject(FindingKind.SLOPE_SHIFT, p_block.ravel(), thresholds).reshape(shape)
+                | reject(FindingKind.SLOPE_SHIFT, p_after.ravel(), thresholds).reshape(shape))
     starts, recents = _spans(start_spans, len(series)), _spans(recent_spans, len(series))
     out: list[Condition] = []
     for i, name in enumerate(series):
-        tested = ~np.isnan(p[i])
-        if not tested.any():
+        use_break = bool(after_break[i])
+        p_i = p_after[i] if use_break else p_block[i]
+        stat_i = stat_break[i] if use_break else stat[i]
+        if np.isnan(p_i).all():
             continue
-        j = int(np.nanargmin(p[i]))
+        j = int(np.nanargmin(p_i))
         holds = bool(rejected[i].any())
+        t_value, p_j = float(stat_i[j]), float(p_i[j])
+        if use_break:
+            first = break_since[i] if break_since is not None else None
+            message = (
+                f"Since the estimated break at {first}, the slope on {slopes[j]}"
+                f"{_series_label(name)} differs from the one before it by {abs(t_value):.1f} "
+                f"combined standard errors (p {format_p_value(p_j)})."
+            )
+        else:
+            first = since[i]
+            message = (
+                f"The slope on {slopes[j]}{_series_label(name)} over "
+                f"{_span_text(recents[i]) if recents[i] else 'the latest periods'} differs from "
+                f"its slope {_start_text(starts[i])}, by {abs(t_value):.1f} combined standard "
+                f"errors (p {format_p_value(p_j)})."
+            )
         out.append(Condition(
             FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds,
-            FindingKind.SLOPE_SHIFT.declaration.severity,
-            float(stat[i, j]), float(p[i, j]), since[i],
-            f"The slope on {slopes[j]}{_series_label(name)} over "
-            f"{_span_text(recents[i]) if recents[i] else 'the latest periods'} differs from its "
-            f"slope {_start_text(starts[i])}, by {abs(float(stat[i, j])):.1f} combined "
-            f"standard errors (p {format_p_value(float(p[i, j]))}).",
+            FindingKind.SLOPE_SHIFT.declaration.severity, t_value, p_j, first, message,
             "Confirm whether the process changed; if it did, rebaseline the model "
             "(plumbline rebaseline) so forecasts use the new relationship.",
         ))
@@ -335,34 +368,44 @@ def slope_shift_conditions(
 def structural_break_conditions(
     model: str,
     series: Sequence[str | None],
-    crossed: ArrayLike,
+    p_value: ArrayLike,
     ratio: ArrayLike,
     break_period: Sequence[str | None],
     evaluated: ArrayLike,
+    thresholds: DecisionThresholds,
     *,
     start_spans: Sequence[Span] | None = None,
 ) -> list[Condition]:
-    """``structural_break``: the sequential monitoring statistic crossed its boundary.
+    """``structural_break``: the sequential monitoring statistic's p-value rejects after BH.
 
-    ``ratio`` is the statistic over its boundary (above 1 = crossed); ``break_period`` the
-    estimated first period of the new regime; ``evaluated`` False for series not monitored;
+    ``p_value`` is the chance under no change that the monitoring statistic would reach, within
+    the horizon, as far as it has reached by now (at most the significance exactly when it has
+    crossed its boundary); the family of a model's monitored series is controlled with
+    Benjamini–Hochberg at ``fdr``, and each series must also reject at ``significance`` (so a
+    single-series model keeps its per-series level: an alarm exactly when the boundary is
+    crossed). ``ratio`` is the statistic over its boundary (above 1 = crossed); ``break_period``
+    the estimated first period of the new regime; ``evaluated`` False for series not monitored;
     ``start_spans`` the periods monitoring started from, to name them in the message.
     """
     starts = _spans(start_spans, len(series))
-    crossed_a = np.asarray(crossed, dtype=bool)
-    ratio_a = np.asarray(ratio, dtype=float)
     evaluated_a = np.asarray(evaluated, dtype=bool)
+    p = np.where(evaluated_a, np.asarray(p_value, dtype=float), np.nan)
+    ratio_a = np.asarray(ratio, dtype=float)
+    rejected = reject(FindingKind.STRUCTURAL_BREAK, p, thresholds)
     out: list[Condition] = []
     for i, name in enumerate(series):
         if not evaluated_a[i]:
             continue
+        start = (f"; the new relationship is estimated to start at {break_period[i]}"
+                 if break_period[i] is not None else "")
         out.append(Condition(
-            FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(crossed_a[i]),
-            FindingKind.STRUCTURAL_BREAK.declaration.severity,
-            float(ratio_a[i]), None, break_period[i],
+            FindingKey(FindingKind.STRUCTURAL_BREAK, model, name, None), bool(rejected[i]),
+            FindingKind.STRUCTURAL_BREAK.declaration.severity, float(ratio_a[i]), float(p[i]),
+            break_period[i],
             f"Since {_after_text(starts[i])}, the forecast errors{_series_label(name)} have "
-            f"added up past the monitoring boundary ({float(ratio_a[i]):.2f} times it); the new "
-            f"relationship is estimated to start at {break_period[i]}.",
+            f"added up past the monitoring boundary ({float(ratio_a[i]):.2f} times it; p "
+            f"{format_p_value(float(p[i]))} over the monitoring horizon, controlled across the "
+            f"model's series){start}.",
             "The relationship the forecasts rest on has probably changed: review recent "
             "periods, then rebaseline from the estimated break or refit with the cause.",
         ))
@@ -622,6 +665,9 @@ class RejectedInput:
     duplicate: bool
     rows_rejected: int
     reason: str
+    # A file the feed could not take or put in place (it cannot be moved, it failed to be read,
+    # it changed after it was read): the whole sentence, naming the file and why. A warning.
+    problem: str | None = None
 
 
 def _rejected_severity(whole_file: bool) -> Severity:
@@ -635,7 +681,8 @@ def rejected_input_conditions(
     """``rejected_input`` per feed: holds when this pass rejected a file or rows of that feed.
 
     One finding per feed (the store keeps one open finding per feed and kind); its message lists
-    what was rejected. ``warning`` when a whole file was refused, ``notice`` for rows or a
+    what was rejected. ``warning`` when a whole file was refused or a file is stuck (``problem``:
+    it cannot be read or moved, or changed after it was read), ``notice`` for rows or a
     duplicate. Every feed in ``feeds`` that ingested files in this pass gets a condition, so a
     feed whose files are clean again counts towards clearing.
     """
@@ -648,10 +695,12 @@ def rejected_input_conditions(
         if not items:
             out.append(Condition(key, False, _rejected_severity(False), None, None, None, "", ""))
             continue
-        whole = any(item.whole_file and not item.duplicate for item in items)
+        whole = any((item.whole_file and not item.duplicate) or item.problem for item in items)
         parts = []
         for item in items:
-            if item.duplicate:
+            if item.problem:
+                parts.append(item.problem)
+            elif item.duplicate:
                 parts.append(f"{item.file_name} was already ingested ({item.reason})")
             elif item.whole_file:
                 parts.append(f"{item.file_name} was refused ({item.reason})")

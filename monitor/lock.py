@@ -22,20 +22,59 @@ the descriptor is not inherited across ``exec`` (Python's default since PEP 446)
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import fcntl
 import os
+import stat
 from pathlib import Path
 from types import TracebackType
 
-from monitor.errors import DatabaseLockedError, PlumblineError
+from monitor.errors import DatabaseFaultError, DatabaseLockedError, PlumblineError
 
 LOCK_SUFFIX = ".lock"
 
 
 def lock_path_for(database: str | os.PathLike[str]) -> Path:
-    """The lock file of a database: the database's own name with ``.lock`` appended."""
-    path = Path(database)
+    """The lock file of a database: the database's own name with ``.lock`` appended.
+
+    The name is taken after resolving every symbolic link on the way (``os.path.realpath``), so
+    two paths that reach the same database (a linked folder, ``..``) share one lock.
+    """
+    path = Path(os.path.realpath(database))
     return path.with_name(path.name + LOCK_SUFFIX)
+
+
+def database_path_problem(database: str | os.PathLike[str]) -> str | None:
+    """Why ``database`` cannot be a database path, or None when it can (or does not exist yet).
+
+    Refused: a folder, anything but a regular file (a device, a pipe, a socket), a symbolic link
+    (an alias: give the real path, so one database has one name, one lock file and one set of
+    ``-wal``/``-shm`` files) and a file with a second hard link (the same: two names, two locks).
+    """
+    path = Path(database)
+    try:
+        info = path.lstat()
+    except OSError:
+        return None  # missing, or its folder is unusable: opening it says so
+    if stat.S_ISLNK(info.st_mode):
+        return (
+            f"the database path {path} is a symbolic link (to {os.path.realpath(path)}); give "
+            "the real path in the config, so that one database has one name and one lock"
+        )
+    if stat.S_ISDIR(info.st_mode):
+        return f"the database path {path} is a folder; give the path of a file in it"
+    if not stat.S_ISREG(info.st_mode):
+        return (
+            f"the database path {path} is not a regular file (a device, a pipe or a socket); "
+            "give the path of a file"
+        )
+    if info.st_nlink > 1:
+        return (
+            f"the database file {path} has {info.st_nlink} names (hard links); keep one name, "
+            "so that one database has one lock"
+        )
+    return None
 
 
 class DatabaseLock:
@@ -61,10 +100,19 @@ class DatabaseLock:
         """Take the lock now or raise :class:`DatabaseLockedError`; never blocks."""
         if self._fd is not None:
             raise PlumblineError(f"the lock on {self.database} is already held by this process")
+        problem = database_path_problem(self.database)
+        if problem is not None:
+            raise PlumblineError(problem)
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as exc:
+            if exc.errno in (errno.EROFS, errno.ENOSPC, errno.EDQUOT):
+                raise DatabaseFaultError(
+                    f"the database {self.database} cannot be written: its lock file {self.path} "
+                    f"cannot be opened ({exc.strerror}: a read-only mount or a full disk); give "
+                    "Plumbline a writable disk with room for the database and run again"
+                ) from exc
             raise PlumblineError(
                 f"cannot open the lock file {self.path}: {exc.strerror or exc}"
             ) from exc
@@ -81,10 +129,12 @@ class DatabaseLock:
         except OSError as exc:
             os.close(fd)
             raise PlumblineError(f"cannot lock {self.path}: {exc.strerror or exc}") from exc
-        # Informational: who holds it. Written only once the flock is ours.
-        os.ftruncate(fd, 0)
+        # Informational: who holds it. Written only once the flock is ours, and best effort: on
+        # a full disk the lock still holds, and the database's own write reports the fault.
         stamp = f"{os.getpid()}" if self.role is None else f"{os.getpid()} {self.role}"
-        os.pwrite(fd, f"{stamp}\n".encode("ascii"), 0)
+        with contextlib.suppress(OSError):
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, f"{stamp}\n".encode("ascii"), 0)
         self._fd = fd
 
     def release(self) -> None:
@@ -96,7 +146,8 @@ class DatabaseLock:
             # Clear the pid before unlocking, so it never names a process that no longer holds it.
             # The file itself is never deleted: unlinking a lock file lets two processes lock two
             # different files under the same name.
-            os.ftruncate(fd, 0)
+            with contextlib.suppress(OSError):
+                os.ftruncate(fd, 0)
             fcntl.flock(fd, fcntl.LOCK_UN)
         finally:
             os.close(fd)
@@ -152,4 +203,5 @@ def running_daemon(database: str | os.PathLike[str]) -> int | None:
     return pid
 
 
-__all__ = ["LOCK_SUFFIX", "DatabaseLock", "lock_path_for", "running_daemon"]
+__all__ = ["LOCK_SUFFIX", "DatabaseLock", "database_path_problem", "lock_path_for",
+           "running_daemon"]

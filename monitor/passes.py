@@ -53,7 +53,7 @@ from monitor.analysis import BatchInput, BatchOutput, analyse_batch, looks_per_h
 from monitor.calibration import calibrations
 from monitor.compute import Compute, compute_for
 from monitor.config import Feed, Model, PlumblineConfig, model_signature, models_of_feed
-from monitor.errors import ClockRefusedError, ComputeLostError
+from monitor.errors import ClockRefusedError, ComputeLostError, DatabaseFaultError
 from monitor.exports import ExportedFile, export_forecasts
 from monitor.findings import (
     Condition,
@@ -98,6 +98,12 @@ from monitor.vocabulary import Finding, Outcome, classify_outcome
 # cent of plan rows by chance and would raise and clear a notice every few weeks.
 EXTRAPOLATION_RANGE_SHARE = 0.25
 EXTRAPOLATION_LEVERAGE_RATIO = 3.0
+
+# An actual dated more than this many cadences after the business clock's date is refused as a
+# row: it cannot be real yet (a mistyped year, a wrong column), and a latest period in the future
+# would keep ``stale_feed`` from ever firing. A few cadences leave room for feeds that date a
+# period by its end while the business clock stands before it (common practice, no standard).
+FUTURE_ACTUAL_CADENCES = 4
 
 # Series of a model with at most this many series get their monitoring path stored with the fit
 # (for charts); larger models store it for series that raised an alarm only (DESIGN.md 11).
@@ -213,6 +219,7 @@ class _PassState:
     not_taken: list[InboxNote] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
     conditions: list[tuple[Condition, int]] = field(default_factory=list)  # (condition, clear)
+    feed_problems: dict[str, list[str]] = field(default_factory=dict)  # files stuck, per feed
     outcomes_scored: int = 0
     changed: dict[str, set[str | None]] = field(default_factory=dict)
     series_analysed: int = 0
@@ -236,18 +243,27 @@ def run_pass(
     notifier: PassNotifier | None = None,
     store: Store | None = None,
     compute: Compute | None = None,
+    max_ahead: timedelta | None = None,
+    force_clock: bool = False,
 ) -> PassReport:
     """Run one pass at business clock ``as_of`` (default: the real clock). The caller holds the
     writer lock (``monitor.lock.DatabaseLock``). The analysis runs where ``config.compute``
     says (``monitor.compute``); a caller that runs many passes (the daemon) may hand in its own
-    ``compute`` to keep a cluster connection between them."""
+    ``compute`` to keep a cluster connection between them.
+
+    ``max_ahead`` (``plumbline pass`` gives :func:`clock_tolerance`): a business clock further
+    ahead of the real clock is refused, since a pass recorded there would refuse every pass at
+    the real clock until then. ``force_clock`` lifts that limit, and lets a pass run earlier
+    than a latest pass that stands in the future of the real clock (the way back from such a
+    pass); it never lets a pass go back behind a latest pass in the real clock's past.
+    """
     own_store = store is None
     own_compute = compute is None
     engine = compute_for(config.compute) if compute is None else compute
     db = Store.open(config.database) if store is None else store
     try:
         return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier,
-                    engine)
+                    engine, None if force_clock else max_ahead, force_clock)
     finally:
         if own_compute:
             engine.close()
@@ -263,16 +279,34 @@ def _run(
     real_clock: Callable[[], datetime],
     notifier: PassNotifier | None,
     compute: Compute,
+    max_ahead: timedelta | None = None,
+    force_clock: bool = False,
 ) -> PassReport:
     if as_of.tzinfo is None:
         raise ValueError("as_of must carry a time zone")
     as_of = as_of.astimezone(UTC)
+    real_now = real_clock().astimezone(UTC)
+    if max_ahead is not None and as_of > real_now + max_ahead:
+        raise ClockRefusedError(
+            f"the business clock {as_of.isoformat()} is {_days(as_of - real_now)} ahead of the "
+            f"real clock ({real_now.isoformat(timespec='seconds')}), more than the "
+            f"{_days(max_ahead)} allowed (the longest cadence of a feed); a pass recorded there "
+            "would refuse every pass at the real clock until then. Check --as-of, or add "
+            "--force-clock if you mean it"
+        )
     latest = store.latest_pass()
     if latest is not None and as_of < latest.as_of:
-        raise ClockRefusedError(
-            f"the business clock {as_of.isoformat()} is earlier than the latest pass's "
-            f"({latest.as_of.isoformat()}); passes must move forward in time"
-        )
+        future = latest.as_of > real_now
+        if not (force_clock and future):
+            recovery = (
+                f"; the latest pass (id {latest.id}) stands in the future of the real clock, "
+                "probably a mistyped --as-of: 'plumbline pass --force-clock' continues from the "
+                "real clock (its results are kept)"
+            ) if future else ""
+            raise ClockRefusedError(
+                f"the business clock {as_of.isoformat()} is earlier than the latest pass's "
+                f"({latest.as_of.isoformat()}); passes must move forward in time{recovery}"
+            )
     # The last pass that did all its work: a pass stopped early or killed left its series to
     # the next one (its mark did not move), so its fits and forecasts count as this pass's.
     finished = next(
@@ -374,6 +408,8 @@ def _run(
         try:
             _stage(state, "notify", notify_all)
             counts["notified"] = True
+        except DatabaseFaultError:
+            raise
         except Exception as exc:
             state.skipped.append(f"notify: {type(exc).__name__}: {exc}")
         counts["skipped"] = list(state.skipped)
@@ -382,6 +418,18 @@ def _run(
     return PassReport(
         **{**report.__dict__, "skipped": tuple(state.skipped), "timings": dict(state.timings)}
     )
+
+
+def clock_tolerance(config: PlumblineConfig) -> timedelta:
+    """How far ahead of the real clock ``plumbline pass --as-of`` may go without
+    ``--force-clock``: the longest cadence of the config's date feeds (one day without any)."""
+    cadences = [f.cadence for f in config.feeds.values() if isinstance(f.cadence, timedelta)]
+    return max(cadences, default=timedelta(days=1))
+
+
+def _days(span: timedelta) -> str:
+    days = span.total_seconds() / 86400
+    return f"{days:.1f} days" if days < 10 else f"{days:.0f} days"
 
 
 # How far back a pass looks for earlier passes whose notify step a crash cut short.
@@ -414,8 +462,16 @@ def _stage(state: _PassState, name: str, work: Callable[[], Any]) -> Any:
 # --------------------------------------------------------------------------- 1. ingest
 
 
-def ingest_spec(name: str, feed: Feed, config: PlumblineConfig) -> IngestSpec:
-    """The ingest's view of one feed: which columns play which role for its models."""
+def ingest_spec(
+    name: str, feed: Feed, config: PlumblineConfig, as_of: datetime | None = None
+) -> IngestSpec:
+    """The ingest's view of one feed: which columns play which role for its models. With
+    ``as_of`` (the business clock), actuals dated more than ``FUTURE_ACTUAL_CADENCES`` cadences
+    after its date are refused as rows."""
+    latest_actual = None
+    if as_of is not None and feed.period_type == "date" and isinstance(feed.cadence, timedelta):
+        latest_actual = as_of.astimezone(config.zone).date() + FUTURE_ACTUAL_CADENCES * (
+            feed.cadence)
     models = models_of_feed(config, name).values()
     per = sorted({m.per for m in models if m.per})
     responses = tuple(sorted({m.response for m in models}))
@@ -440,6 +496,7 @@ def ingest_spec(name: str, feed: Feed, config: PlumblineConfig) -> IngestSpec:
         settle=feed.settle,
         delimiter=feed.delimiter,
         decimal=feed.decimal,
+        latest_actual=latest_actual,
     )
 
 
@@ -471,13 +528,18 @@ def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[F
     reports: list[FileReport] = []
     for name, feed in state.config.feeds.items():
         try:
-            spec = ingest_spec(name, feed, state.config)
+            spec = ingest_spec(name, feed, state.config, state.as_of)
             result = ingest_feed(state.store, spec, pass_id=state.pass_id, real_clock=real_clock)
             reports.extend(result.reports)
             state.not_taken.extend(result.notes)
             state.skipped.extend(f"feed {name}: {problem}" for problem in result.problems)
+            state.feed_problems.setdefault(name, []).extend(result.problems)
+        except DatabaseFaultError:
+            raise
         except Exception as exc:  # one bad feed never stops the others
-            state.skipped.append(f"feed {name}: ingest failed: {type(exc).__name__}: {exc}")
+            problem = f"ingest failed: {type(exc).__name__}: {exc}"
+            state.skipped.append(f"feed {name}: {problem}")
+            state.feed_problems.setdefault(name, []).append(problem)
     return reports
 
 
@@ -494,6 +556,8 @@ def _score_all(state: _PassState) -> None:
             ]
             if outcomes:
                 state.outcomes_scored += state.store.record_outcomes(state.pass_id, outcomes)
+        except DatabaseFaultError:
+            raise
         except Exception as exc:
             state.skipped.append(f"model {name}: scoring failed: {type(exc).__name__}: {exc}")
 
@@ -512,6 +576,8 @@ def _analyse_all(state: _PassState) -> None:
                 _audit_only_model(state, name, model, version)
             _coverage_conditions(state, name, model)
         except _Stopped:
+            raise
+        except DatabaseFaultError:
             raise
         except ComputeLostError as exc:  # the whole pass stops; the next one redoes it
             state.compute_lost = f"model {name}: {exc}"
@@ -644,8 +710,9 @@ def _analyse_model(
     # What the last *finished* pass knew: a pass a crash cut short may have fitted and forecast
     # already, and its work must count as this pass's, not as the past.
     previous = state.store.latest_fit_marks(name, version=version, up_to_pass=state.finished_id)
+    plain = _PlainFits(out)
     fit_rows = [
-        _fit_row(name, version, model, out, i, s, keys[i], labels, len(series))
+        _fit_row(name, version, model, out, i, s, keys[i], labels, len(series), plain)
         for i, s in enumerate(series)
     ]
     fit_ids = state.store.record_fits(state.pass_id, fit_rows)
@@ -759,54 +826,101 @@ def _finite(value: float) -> float | None:
     return float(value) if math.isfinite(value) else None
 
 
+class _PlainFits:
+    """The arrays :func:`_fit_row` reads, converted once to Python lists (non-finite numbers as
+    None), so that building 10,000 fit records indexes lists instead of numpy arrays."""
+
+    def __init__(self, out: BatchOutput) -> None:
+        fit, base = out.fit, out.baseline_fit
+        self.coef = _plain(fit.coef)
+        self.standard_error = _plain(fit.standard_error)
+        self.t = _plain(fit.t)
+        self.p_value = _plain(fit.p_value)
+        self.lower = _plain(fit.lower)
+        self.upper = _plain(fit.upper)
+        self.n = np.asarray(fit.n).astype(np.int64).tolist()
+        self.residual_df = np.asarray(fit.residual_df).astype(np.int64).tolist()
+        self.r_squared = _plain(fit.r_squared)
+        self.adj_r_squared = _plain(fit.adj_r_squared)
+        self.residual_std_error = _plain(fit.residual_std_error)
+        self.f_statistic = _plain(fit.f_statistic)
+        self.f_p_value = _plain(fit.f_p_value)
+        self.exact_fit = np.asarray(fit.exact_fit).astype(bool).tolist()
+        self.estimable = np.asarray(fit.estimable).astype(bool).tolist()
+        self.durbin_watson = _plain(out.durbin_watson.statistic)
+        self.bp_statistic = _plain(out.breusch_pagan.statistic)
+        self.bp_p_value = _plain(out.breusch_pagan.p_value)
+        self.jb_statistic = _plain(out.jarque_bera.statistic)
+        self.jb_p_value = _plain(out.jarque_bera.p_value)
+        self.has_baseline = np.asarray(out.has_baseline).astype(bool).tolist()
+        self.base_r_squared = _plain(base.r_squared)
+        self.base_coef = _plain(base.coef)
+        self.base_lower = _plain(base.lower)
+        self.base_upper = _plain(base.upper)
+        self.base_p_value = _plain(base.p_value)
+        self.base_estimable = np.asarray(base.estimable).astype(bool).tolist()
+
+
+def _plain(values: Any) -> list[Any]:
+    array = np.asarray(values, dtype=np.float64)
+    objects = array.astype(object)
+    objects[~np.isfinite(array)] = None
+    listed: list[Any] = objects.tolist()
+    return listed
+
+
 def _fit_row(
     name: str, version: int, model: Model, out: BatchOutput, i: int, series: str | None,
-    key_row: np.ndarray, labels: dict[int, str], series_count: int,
+    key_row: np.ndarray, labels: dict[int, str], series_count: int, plain: _PlainFits,
 ) -> FitRow:
     fit = out.fit
     rows = np.flatnonzero(out.window_mask[i])
-    estimable = bool(fit.estimable[i])
+    estimable = plain.estimable[i]
+    coef, se, t, p = plain.coef[i], plain.standard_error[i], plain.t[i], plain.p_value[i]
+    lower, upper = plain.lower[i], plain.upper[i]
     coefficients = {
         term: {
-            "estimate": _finite(fit.coef[i, j]),
-            "standard_error": _finite(fit.standard_error[i, j]),
-            "t": _finite(fit.t[i, j]),
-            "p_value": _finite(fit.p_value[i, j]),
-            "lower": _finite(fit.lower[i, j]),
-            "upper": _finite(fit.upper[i, j]),
+            "estimate": coef[j],
+            "standard_error": se[j],
+            "t": t[j],
+            "p_value": p[j],
+            "lower": lower[j],
+            "upper": upper[j],
         }
         for j, term in enumerate(fit.terms)
     } if estimable else {}
     inference = {
-        "n": int(fit.n[i]),
-        "residual_df": int(fit.residual_df[i]),
-        "r_squared": _finite(fit.r_squared[i]),
-        "adj_r_squared": _finite(fit.adj_r_squared[i]),
-        "residual_std_error": _finite(fit.residual_std_error[i]),
-        "f_statistic": _finite(fit.f_statistic[i]),
-        "f_p_value": _finite(fit.f_p_value[i]),
-        "exact_fit": bool(fit.exact_fit[i]),
+        "n": plain.n[i],
+        "residual_df": plain.residual_df[i],
+        "r_squared": plain.r_squared[i],
+        "adj_r_squared": plain.adj_r_squared[i],
+        "residual_std_error": plain.residual_std_error[i],
+        "f_statistic": plain.f_statistic[i],
+        "f_p_value": plain.f_p_value[i],
+        "exact_fit": plain.exact_fit[i],
         "level": model.level,
     } if estimable else {}
     monitoring = out.monitoring
     diagnostics: dict[str, Any] = {
-        "durbin_watson": _finite(out.durbin_watson.statistic[i]),
-        "breusch_pagan": {"statistic": _finite(out.breusch_pagan.statistic[i]),
-                          "p_value": _finite(out.breusch_pagan.p_value[i])},
-        "jarque_bera": {"statistic": _finite(out.jarque_bera.statistic[i]),
-                        "p_value": _finite(out.jarque_bera.p_value[i])},
+        "durbin_watson": plain.durbin_watson[i],
+        "breusch_pagan": {"statistic": plain.bp_statistic[i],
+                          "p_value": plain.bp_p_value[i]},
+        "jarque_bera": {"statistic": plain.jb_statistic[i],
+                        "p_value": plain.jb_p_value[i]},
     }
-    if out.has_baseline[i]:
+    if plain.has_baseline[i]:
         base = out.baseline_fit
+        b_coef, b_lower = plain.base_coef[i], plain.base_lower[i]
+        b_upper, b_p = plain.base_upper[i], plain.base_p_value[i]
         diagnostics["baseline"] = {
-            "r_squared": _finite(base.r_squared[i]),
+            "r_squared": plain.base_r_squared[i],
             "coefficients": {
-                term: {"estimate": _finite(base.coef[i, j]),
-                       "lower": _finite(base.lower[i, j]),
-                       "upper": _finite(base.upper[i, j]),
-                       "p_value": _finite(base.p_value[i, j])}
+                term: {"estimate": b_coef[j],
+                       "lower": b_lower[j],
+                       "upper": b_upper[j],
+                       "p_value": b_p[j]}
                 for j, term in enumerate(base.terms)
-            } if base.estimable[i] else {},
+            } if plain.base_estimable[i] else {},
         }
     if monitoring.monitorable[i]:
         monitored = np.flatnonzero(out.monitor_mask[i])
@@ -817,6 +931,8 @@ def _fit_row(
             "periods_monitored": int(monitoring.periods_monitored[i]),
             "horizon": int(monitoring.horizon[i]),
             "critical_value": float(monitoring.critical_value[i]),
+            "p_value": float(monitoring.p_value[i]),
+            "boundary_family": monitoring.boundary_name,
             "break_period": (
                 _label(labels, int(key_row[monitoring.break_index[i]]))
                 if monitoring.break_index[i] >= 0 else None
@@ -904,18 +1020,25 @@ def _model_conditions(
         period(i, int(monitoring.break_index[i])) if monitoring.break_index[i] >= 0 else None
         for i in range(s)
     ]
-    state.add(structural_break_conditions(
-        name, series, monitoring.crossed, monitoring.max_ratio, break_period,
-        monitoring.monitorable & (monitoring.periods_monitored > 0) & ok,
+    breaks = structural_break_conditions(
+        name, series, monitoring.p_value, monitoring.max_ratio, break_period,
+        monitoring.monitorable & (monitoring.periods_monitored > 0) & ok, t,
         start_spans=start_spans,
-    ), clear)
+    )
+    state.add(breaks, clear)
+    held = {c.key.series for c in breaks if c.holds}
+    break_held = np.array([sr in held for sr in series], dtype=bool)
 
-    # slope shift over the latest complete recent block
+    # slope shift: after a structural break, before vs after the estimated break; otherwise
+    # over the latest complete recent block
     if predictors:
         looks = looks_per_horizon(int(np.median(horizon)) if s else 1, model.recent)
         state.add(slope_shift_conditions(
             name, series, predictors, out.slope_shift.t, out.slope_shift.p_value, t,
             recent_first, looks=looks, start_spans=start_spans, recent_spans=recent_spans,
+            break_statistic=nan_if(out.break_tested[:, None], out.break_shift.t, np.nan),
+            break_p_value=nan_if(out.break_tested[:, None], out.break_shift.p_value, np.nan),
+            break_held=break_held, break_since=break_period,
         ), clear)
         base = out.baseline_fit
         comparable = (out.has_baseline & base.estimable & ok_fresh)[:, None]
@@ -1049,7 +1172,7 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
     touched_feeds: set[str] = set()
     rejections = [
         RejectedInput(r.feed, r.name, r.whole_file_rejected, r.duplicate, r.rows_rejected,
-                      _rejection_reason(r))
+                      _rejection_reason(r), problem=r.problem or None)
         for r in files if r.raises_finding
     ]
     # Files a crashed pass took since the last finished one count as taken now.
@@ -1065,6 +1188,10 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
                 record.outcome.value == "duplicate", record.rows_rejected, reason))
         taken_now.add(record.id)
         touched_feeds.add(record.feed)
+    for feed_name, problems in state.feed_problems.items():
+        rejections += [RejectedInput(feed_name, "", False, False, 0, "", problem=problem)
+                       for problem in problems]
+        touched_feeds.add(feed_name)
     clear_default = 2
     touched = sorted({r.feed for r in files} | touched_feeds)
     state.add(rejected_input_conditions(touched, rejections), clear_default)
@@ -1086,8 +1213,8 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
 def _rejection_reason(report: FileReport) -> str:
     if report.duplicate:
         return f"the same bytes as {report.duplicate_of}"
-    if report.whole_file_rejected:
-        return report.note  # the refusal, with a hint when the file's separator differs
+    if report.whole_file_rejected:  # the reason itself (the report's first line only names it)
+        return report.note or (report.errors.strip().splitlines() or [""])[0]
     first = report.rejected[0] if report.rejected else None
     where = f"first at line {first.line}: {first.reason}" if first else report.note
     hint = f". {report.note}" if first and report.note else ""
@@ -1161,6 +1288,7 @@ __all__ = [
     "baseline_rows",
     "business_key",
     "cadence_steps",
+    "clock_tolerance",
     "files_not_taken",
     "files_waiting",
     "ingest_spec",

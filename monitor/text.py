@@ -20,6 +20,28 @@ def did_you_mean(word: str, candidates: Iterable[str]) -> str:
     return f" (did you mean '{best}'?)" if best is not None else ""
 
 
+# Characters a terminal or a text viewer acts on instead of showing: C0 controls (ESC starts the
+# colour and cursor sequences), DEL, C1 controls, and the bidirectional marks, embeddings,
+# overrides and isolates that can make text read in another order than it is stored.
+_BIDI = "\u061c\u200e\u200f\u202a\u202b\u202c\u202d\u202e\u2066\u2067\u2068\u2069"
+_UNSAFE = re.compile(f"[\x00-\x09\x0b-\x1f\x7f-\x9f{_BIDI}]")
+_UNSAFE_WITH_NEWLINE = re.compile(f"[\x00-\x1f\x7f-\x9f{_BIDI}]")
+
+
+def _escape(match: re.Match[str]) -> str:
+    code = ord(match.group(0))
+    return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
+
+
+def printable(text: str, *, keep_newlines: bool = True) -> str:
+    """``text`` with every control character and bidirectional mark written as an escape
+    (``\\x1b``, ``\\u202e``), so a value from a data file cannot move the cursor, recolour a
+    terminal or reorder what a reader sees. Line feeds stay unless ``keep_newlines`` is False.
+    """
+    pattern = _UNSAFE if keep_newlines else _UNSAFE_WITH_NEWLINE
+    return pattern.sub(_escape, text)
+
+
 def format_p_value(p: float | None) -> str:
     """p-values as people read them: 4 decimals, and "< 0.0001" below that (DESIGN.md section 2)."""
     if p is None:
@@ -51,4 +73,6 @@ def is_duration(text: str) -> bool:
     return _DURATION.match(text) is not None
 
 
-__all__ = ["did_you_mean", "format_p_value", "is_duration", "nearest_name", "parse_duration"]
+__all__ = [
+    "did_you_mean", "format_p_value", "is_duration", "nearest_name", "parse_duration", "printable",
+]

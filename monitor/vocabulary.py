@@ -115,7 +115,7 @@ class FindingKind(StrEnum):
         headline="a slope changed, from {since}",
     )
     STRUCTURAL_BREAK = "structural_break", KindDeclaration(
-        "structural break", Severity.CRITICAL, EvidenceFamily.OWN_LEVEL,
+        "structural break", Severity.CRITICAL, EvidenceFamily.SERIES,
         "monitoring statistic at {value:3} times its boundary{p}", rebaseline=True,
         headline="the relationship changed around {since}",
     )

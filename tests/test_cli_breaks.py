@@ -198,6 +198,40 @@ def test_readme_example_is_what_the_command_prints(capsys: Any) -> None:
     assert status == 0 and out == shown
 
 
+def _seasonal(tmp_path: Path, predictors: int, rows: int, seed: int) -> tuple[Path, list[str]]:
+    """Invented monthly sales on ``predictors`` stable drivers (no change anywhere)."""
+    rng = np.random.default_rng(seed)
+    x = rng.normal(0, 1, (rows, predictors))
+    y = 100 + x @ rng.normal(0, 2, predictors) + rng.normal(0, 1, rows)
+    names = [f"d{j + 1}" for j in range(predictors)]
+    data = [[f"{y[t]:.5f}", *(f"{v:.5f}" for v in x[t])] for t in range(rows)]
+    return _write(tmp_path / "monthly.csv", ["sales", *names], data), names
+
+
+def test_sup_f_has_a_p_value_up_to_24_coefficients(tmp_path: Path, capsys: Any) -> None:
+    # 11 month dummies + a trend + an intercept is 13 coefficients (the table used to stop at
+    # 10); 23 predictors + intercept is 24, the table's largest.
+    for predictors in (12, 23):
+        path, names = _seasonal(tmp_path, predictors, 240, seed=predictors)
+        report = _json(capsys, str(path), "--response", "sales", "--predictors", *names)
+        assert report["sup_f"]["applicable"] is True
+        assert report["sup_f"]["p_value_note"] is None
+        assert 0.0 < report["sup_f"]["p_value"] <= 1.0
+
+
+def test_a_missing_sup_f_p_value_is_not_called_no_change(tmp_path: Path, capsys: Any) -> None:
+    # 25 predictors + intercept = 26 coefficients, beyond the table: sup-F is computed but has no
+    # p-value, so the opening sentence must not say that no test finds a change.
+    path, names = _seasonal(tmp_path, 25, 260, seed=3)
+    report = _json(capsys, str(path), "--response", "sales", "--predictors", *names)
+    assert report["sup_f"]["applicable"] is True and report["sup_f"]["p_value"] is None
+    assert "1 to 24 coefficients" in report["sup_f"]["p_value_note"]
+    _status, out, _ = _run(capsys, str(path), "--response", "sales", "--predictors", *names)
+    opening = " ".join(out.split("\n\n")[0].split())
+    assert "no test finds a change" not in opening
+    assert "sup-F cannot be judged" in opening and "no p-value" in opening
+
+
 def test_readme_example_is_the_demo_receiving_series(capsys: pytest.CaptureFixture[str]) -> None:
     # config/example_receiving_hours.csv is the demo's warehouse receiving series, weeks 1 to 104
     # (its values as the demo's files write them, one decimal), with the planted slope change;

@@ -254,7 +254,10 @@ def test_check_warns_about_unset_secrets_and_notes_night_schedules(
     )
     assert not any("username_env" in line for line in warnings)  # that one is set
     assert "someone" not in out  # a variable's value is never printed
-    assert len(warnings) == 3  # the one above and the two inboxes not made in this test
+    # Issue 11: a login over security none (the default) is a warning too, since Plumbline
+    # never sends a password in plain text and every send would fail.
+    assert any("security is none but a login is configured" in line for line in warnings)
+    assert len(warnings) == 4  # the two above and the two inboxes not made in this test
     # Berlin changes its clocks, so a fixed time in 01:00-03:00 gets a note (not a warning).
     assert "  note: schedule.digest falls in the 02:00 hour, where the clocks of Europe/Berlin" in (
         out

@@ -37,7 +37,9 @@ def _status(workspace: ReplayResult, capsys: pytest.CaptureFixture[str], *extra:
 
 def test_status_json_contract(workspace: ReplayResult, capsys: pytest.CaptureFixture[str]) -> None:
     document = _status(workspace, capsys)
-    assert set(document) == {"findings", "passes", "next_runs"}
+    # "problems" added by issue 11 (stuck things); the contract allows added keys.
+    assert set(document) == {"findings", "passes", "next_runs", "problems"}
+    assert isinstance(document["problems"], list)
     required = {"id", "model", "series", "feed", "kind", "severity", "state", "since_period",
                 "statistic", "p_value", "message"}  # DESIGN.md section 9
     assert document["findings"], "the replay raised findings"

@@ -16,6 +16,7 @@ from monitor.findings import (
     significance_conditions,
     slope_shift_conditions,
     stale_feed_condition,
+    structural_break_conditions,
     weak_fit_conditions,
 )
 from monitor.stats.coverage import audit_batch
@@ -148,6 +149,60 @@ def test_slope_shift_is_controlled_across_series_with_bh() -> None:
     conditions = slope_shift_conditions("m", [f"s{i}" for i in range(20)], ["x"], stat, p,
                                         Thresholds(), [None] * 20, looks=4)
     assert [c.p_value for c in conditions][:2] == [0.004, 1.0]
+
+
+def test_structural_break_is_controlled_across_series_with_bh() -> None:
+    # Benjamini & Hochberg (1995) step-up at 10 % over the monitored series, each also at 5 %.
+    # 200 series: three crossed their boundary decisively, one barely (p 0.04), the rest not.
+    names = [f"s{i}" for i in range(200)]
+    p = np.linspace(0.06, 1.0, 200)
+    p[:4] = [1e-6, 2e-5, 3e-4, 0.04]
+    ratio = np.where(p < 0.05, 1.5, 0.6)
+    evaluated = np.ones(200, dtype=bool)
+    evaluated[-1] = False
+    conditions = structural_break_conditions("m", names, p, ratio, ["2025-W10"] * 200,
+                                             evaluated, Thresholds())
+    assert len(conditions) == 199
+    # BH: p_(3) = 3e-4 <= 3 * 0.1 / 199; p_(4) = 0.04 > 4 * 0.1 / 199, so three hold.
+    assert [c.key.series for c in conditions if c.holds] == ["s0", "s1", "s2"]
+    assert all(c.severity is Severity.CRITICAL for c in conditions)
+    assert conditions[0].p_value == 1e-6 and "controlled across" in conditions[0].message
+    # A single-series model keeps its per-series level: an alarm exactly when p < significance.
+    lone = structural_break_conditions("m", [None], [0.04], [1.1], [None], [True], Thresholds())
+    assert [c.holds for c in lone] == [True]
+    lone = structural_break_conditions("m", [None], [0.06], [0.9], [None], [True], Thresholds())
+    assert [c.holds for c in lone] == [False]
+
+
+def test_slope_shift_after_a_break_uses_the_split_at_the_break() -> None:
+    # Series with a structural break that holds are judged by the before/after-break test, in
+    # their own BH family; the others by the recent-block test with its looks.
+    names = [f"s{i}" for i in range(10)]
+    block_p = np.full((10, 1), 0.2)
+    block_t = np.full((10, 1), 1.3)
+    break_p = np.full((10, 1), np.nan)
+    break_t = np.full((10, 1), np.nan)
+    held = np.zeros(10, dtype=bool)
+    held[:3] = True
+    break_p[:3, 0] = [0.001, 0.02, 0.4]
+    break_t[:3, 0] = [3.5, 2.4, 0.8]
+    conditions = slope_shift_conditions(
+        "m", names, ["x"], block_t, block_p, Thresholds(), [None] * 10, looks=4,
+        break_statistic=break_t, break_p_value=break_p, break_held=held,
+        break_since=["2025-W20"] * 10,
+    )
+    by = {c.key.series: c for c in conditions}
+    # BH over the three break series at 10 %: 0.001 <= 0.1/3, 0.02 <= 0.2/3, 0.4 > 0.1.
+    assert [s for s in names if by[s].holds] == ["s0", "s1"]
+    assert by["s0"].p_value == 0.001 and "estimated break at 2025-W20" in by["s0"].message
+    assert by["s5"].p_value == 0.8 and "differs from its slope" in by["s5"].message  # 0.2 * 4
+    # A held break whose split could not be tested falls back to the block test.
+    held[5] = True
+    again = slope_shift_conditions(
+        "m", names, ["x"], block_t, block_p, Thresholds(), [None] * 10, looks=4,
+        break_statistic=break_t, break_p_value=break_p, break_held=held,
+    )
+    assert {c.key.series: c.p_value for c in again}["s5"] == 0.8
 
 
 def test_significance_lost_and_sign_flip() -> None:

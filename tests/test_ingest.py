@@ -19,6 +19,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from monitor.errors import DatabaseFaultError
 from monitor.ingest import (
     FeedIngest,
     FileReport,
@@ -557,30 +558,52 @@ def test_the_parquet_parser_never_crashes_on_arbitrary_bytes(data: bytes) -> Non
     assert parsed.refusal is not None or parsed.is_empty or parsed.rows or parsed.rejected
 
 
-class StoreWithAFailingDisk(Store):
-    """The real store, whose row insert fails for one file as a full disk would."""
+class StoreWithAFailingInsert(Store):
+    """The real store, whose row insert fails for one file (``error`` is what it raises)."""
+
+    error: Exception = sqlite3.IntegrityError("CHECK constraint failed: a stand-in")
 
     def insert_observations(
         self, feed: str, file_id: int, columns: Sequence[str], rows: Iterable[ObservationRow]
     ) -> ObservationCounts:
         batch = list(rows)
         if any(row.period == "2024-01-07" for row in batch):
-            raise sqlite3.OperationalError("database or disk is full")
+            raise self.error
         return super().insert_observations(feed, file_id, columns, batch)
+
+
+class StoreWithAFullDisk(StoreWithAFailingInsert):
+    error = sqlite3.OperationalError("database or disk is full")
 
 
 def test_a_file_whose_rows_cannot_be_stored_is_rolled_back_and_the_others_go_on(
     tmp_path: Path, feed: Feed
 ) -> None:
-    store = StoreWithAFailingDisk.open(tmp_path / "failing.sqlite")
+    store = StoreWithAFailingInsert.open(tmp_path / "failing.sqlite")
     failing = Feed(feed.spec, store)
     data = failing.drop("a.csv", HEADER + "2024-01-07,north,40,400\n")
     failing.drop("b.csv", HEADER + "2024-01-14,north,41,410\n")
     result = failing.scan()
     assert [r.name for r in result.reports] == ["b.csv"]
     assert len(result.problems) == 1 and "a.csv" in result.problems[0]
-    assert "database or disk is full" in result.problems[0]
+    assert "CHECK constraint failed" in result.problems[0]
+    assert "nothing of it was stored and it stays in the inbox" in result.problems[0]
     assert [f.name for f in store.list_files()] == ["b.csv"]  # a.csv's record rolled back too
     assert_kept(feed.spec.inbox / "a.csv", data)
     assert failing.actuals() == [("2024-01-14", 41.0, 0)]
+    store.close()
+
+
+def test_a_full_disk_stops_the_scan_with_nothing_half_stored(tmp_path: Path, feed: Feed) -> None:
+    # Changed by issue 11: a full disk is the database's fault, not the file's, so the scan
+    # stops (the command prints one line and exits 3) instead of going on to the next file.
+    store = StoreWithAFullDisk.open(tmp_path / "full.sqlite")
+    full = Feed(feed.spec, store)
+    data_a = full.drop("a.csv", HEADER + "2024-01-07,north,40,400\n")
+    data_b = full.drop("b.csv", HEADER + "2024-01-14,north,41,410\n")
+    with pytest.raises(DatabaseFaultError, match="is full"):
+        full.scan()
+    assert store.list_files() == []
+    assert_kept(feed.spec.inbox / "a.csv", data_a)
+    assert_kept(feed.spec.inbox / "b.csv", data_b)
     store.close()

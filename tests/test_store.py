@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import sqlite3
 import threading
 import time
@@ -174,6 +175,10 @@ def test_migration_from_version_1_keeps_the_data(tmp_path: Path) -> None:
     with Store.open(path) as store:
         assert store.schema_version == SCHEMA_VERSION
         assert store.file_by_sha256("abc") is not None
+        # migration 6: duplicates per feed, and a random identity of the database
+        assert store.file_by_sha256("abc", "depot") is not None
+        assert store.file_by_sha256("abc", "other") is None
+        assert re.fullmatch(r"[0-9a-f]{32}", store.identity)
         windows = store.windows("depot", ["pick_hours"])
         assert windows.series == ("north",)
         assert windows.values.tolist() == [[41.5]]

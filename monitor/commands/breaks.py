@@ -285,11 +285,26 @@ def _opening(report: dict[str, Any]) -> str:
         else:
             text += "; the CUSUM tests do not confirm it at the 5 % level."
         return head + text
+    unjudged = sup_f["applicable"] and sup_f["p_value"] is None
     if signals:
+        if unjudged:
+            return head + (
+                f"{' and '.join(signals)} signal a change; sup-F has no p-value here "
+                f"({sup_f['p_value_note']}), so it neither dates nor rules out a break."
+            )
         return head + f"{' and '.join(signals)} signal a change; sup-F does not date one."
     applicable = [report[key]["applicable"] for key in ("cusum", "ols_cusum", "sup_f")]
     if not any(applicable):
         return head + "none of the tests applies (see the reasons below)."
+    if unjudged:
+        # A missing p-value is not evidence of no change: say which tests looked and which could
+        # not be judged.
+        looked = [name for name, key in (("CUSUM", "cusum"), ("OLS-CUSUM", "ols_cusum"))
+                  if report[key]["applicable"]]
+        found = f"{' and '.join(looked)} find no change at the 5 % level; " if looked else ""
+        return head + (
+            f"{found}sup-F cannot be judged: it has no p-value here ({sup_f['p_value_note']})."
+        )
     return head + "no test finds a change at the 5 % level."
 
 

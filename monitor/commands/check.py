@@ -41,9 +41,13 @@ from monitor.config import (
 from monitor.errors import ConfigError
 from monitor.ingest.dialect import separator_hint
 from monitor.ingest.folders import InboxNote, inbox_notes, survey_inbox
+from monitor.lock import database_path_problem
 from monitor.text import did_you_mean
 
 HEADER_LIMIT = 1 << 20  # a header line longer than 1 MiB is not a header
+# A modification time this far ahead of the real clock is reported (clocks of machines that share
+# a folder differ by a little; common practice, not a standard).
+FUTURE_SLACK_SECONDS = 60.0
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -97,6 +101,8 @@ class InboxReport:
     header_error: str | None = None
     missing: list[str] = field(default_factory=list)  # needed columns the header lacks
     notes: list[InboxNote] = field(default_factory=list)  # files a pass would leave, and why
+    future: list[tuple[Path, float]] = field(default_factory=list)  # (file, seconds ahead)
+    ignored: list[tuple[str, str]] = field(default_factory=list)  # (name, why) never data
 
 
 @dataclass
@@ -123,8 +129,15 @@ def check_config(config: PlumblineConfig, *, now: float) -> CheckReport:
         f"{source}: valid; {_count(len(config.feeds), 'feed')}, "
         f"{_count(len(config.models), 'model')}, timezone {config.timezone}"
     )
-    state = "exists" if config.database.is_file() else "not created yet; the first pass makes it"
-    report.say(f"database: {config.database} ({state})")
+    problem = database_path_problem(config.database)
+    if problem is not None:
+        report.say(f"database: {config.database}")
+        report.warn(f"database: {problem}; every command that opens it will refuse")
+    else:
+        state = "exists" if config.database.is_file() else (
+            "not created yet; the first pass makes it"
+        )
+        report.say(f"database: {config.database} ({state})")
     _check_schedules(config, report)
     _check_email(config, report)
     _check_compute(config, report)
@@ -174,6 +187,12 @@ def _check_email(config: PlumblineConfig, report: CheckReport) -> None:
         variable = getattr(email, key)
         if variable is not None and variable not in os.environ:
             report.warn(f"notify.email.{key}: the environment variable {variable} is not set here")
+    if email.security == "none" and email.password_env is not None:
+        report.warn(
+            "notify.email: security is none but a login is configured; Plumbline never sends a "
+            "password over an unencrypted connection, so every send will fail: use starttls or "
+            "tls, or remove the login settings"
+        )
 
 
 LOCAL_COMPUTE = "local (in the pass's own process)"  # monitor.compute.LocalCompute.describe
@@ -218,6 +237,15 @@ def _check_feed(
     report.say(f"  inbox {feed.inbox}: {waiting}")
     for note in inbox.notes:
         report.say(f"  not taken: {note.name}: {note.reason}; {note.action}")
+    for path, ahead in inbox.future:
+        report.warn(
+            f"feed {name}: {path.name} has a modification time {_ahead_text(ahead)} in the future "
+            "(the sender's clock, or times copied from elsewhere); it cannot count as settled "
+            f"until then: add a marker {path.name}.ready, or fix the time with touch"
+        )
+    for entry, why in inbox.ignored:
+        if why.startswith("a hard link") or why.startswith("a symbolic link"):
+            report.warn(f"feed {name}: {entry} is {why}; it is never read")
     if inbox.newest is None:
         return
     shown = inbox.newest.name
@@ -255,6 +283,11 @@ def inspect_inbox(feed: Feed, needed: set[str], *, now: float, name: str = "") -
     report.waiting.extend(item.path for item in (*survey.complete, *survey.waiting))
     report.waiting.sort()
     report.notes = list(inbox_notes(name, feed.settle.total_seconds(), survey, now=now))
+    report.ignored.extend(survey.ignored)
+    for item in (*survey.complete, *survey.waiting):
+        ahead = item.mtime_ns / 1e9 - now
+        if ahead > FUTURE_SLACK_SECONDS:
+            report.future.append((item.path, ahead))
     stamped: list[tuple[int, str, Path]] = []
     for item in survey.complete:
         report.complete.append(item.path)
@@ -299,6 +332,14 @@ def read_header(path: Path, file_format: str, delimiter: str = ",") -> tuple[str
     except csv.Error as exc:
         raise ValueError(f"the header is not CSV ({exc})") from None
     return tuple(cell.strip() for cell in cells)
+
+
+def _ahead_text(seconds: float) -> str:
+    if seconds >= 2 * 86400:
+        return f"{seconds / 86400:.0f} days"
+    if seconds >= 2 * 3600:
+        return f"{seconds / 3600:.0f} hours"
+    return f"{seconds / 60:.0f} minutes" if seconds >= 120 else f"{seconds:.0f} seconds"
 
 
 def _count(number: int, noun: str) -> str:

@@ -52,7 +52,9 @@ def handle(args: argparse.Namespace) -> int:
         line = (f"replaying week {week.number:3d} of {WEEK_COUNT} ({week.week_ending}): "
                 f"{len(report.findings_raised)} finding(s) raised")
         if tty:
-            print("\r" + line.ljust(78), end="", flush=True)
+            # Our own carriage return, past the escaping of control characters (cli.py).
+            raw = getattr(sys.stdout, "unescaped", sys.stdout)
+            print("\r" + line.ljust(78), end="", flush=True, file=raw)
         elif week.number % 25 == 0 or week.number == WEEK_COUNT:
             print(line, flush=True)
 

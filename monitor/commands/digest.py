@@ -88,7 +88,7 @@ def publish(
             to=[PREVIEW_RECIPIENT], sender=PREVIEW_SENDER)
         content = digest_message(digest)
         message = compose_digest(preview, content, period_end=digest.period_end, created_at=now,
-                                 pass_id=digest.pass_id)
+                                 pass_id=digest.pass_id, identity=store.identity)
         done["eml"] = str(write_eml(message.body, out_dir, message.eml_name))
         if email is None:
             done["placeholder_addresses"] = True

@@ -1,6 +1,7 @@
 """``plumbline pass [--as-of T] [--strict]``: run one monitoring pass now (for cron or a
 Kubernetes CronJob). Takes the database's writer lock; exit 2 when another process holds it,
-when the business clock is earlier than the latest pass's, or when the config is invalid; exit 1
+when the business clock is earlier than the latest pass's or more than one cadence ahead of the
+real clock (unless ``--force-clock``), or when the config is invalid; exit 1
 with ``--strict`` when a ``critical`` finding is open after the pass."""
 
 from __future__ import annotations
@@ -8,6 +9,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import threading
 from datetime import datetime
 from pathlib import Path
 
@@ -15,12 +17,12 @@ from monitor.commands._common import add_config_argument, config_from, parse_as_
 from monitor.config import PlumblineConfig
 from monitor.lock import DatabaseLock
 from monitor.notify import notify_pass
-from monitor.passes import PassNotifier, PassReport, run_pass
+from monitor.passes import PassNotifier, PassReport, clock_tolerance, run_pass
 from monitor.store import Store
 from monitor.vocabulary import Severity
 
 
-def pass_notifier() -> PassNotifier:
+def pass_notifier(stop: threading.Event | None = None) -> PassNotifier:
     """Step 7 of a pass: write its HTML pages; with ``notify.email``, queue one message per
     owner with the pass's new, more severe and cleared findings, and deliver what the outbox
     has due (retries included), on the real clock."""
@@ -29,7 +31,7 @@ def pass_notifier() -> PassNotifier:
                now: datetime) -> None:
         if report.pass_id is not None:
             notify_pass(store, config, report.pass_id, now=now,
-                        notify=report.findings_to_notify)
+                        notify=report.findings_to_notify, stop=stop)
 
     return notify
 
@@ -43,6 +45,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     add_config_argument(parser)
     parser.add_argument("--as-of", metavar="TIME",
                         help="the business clock (ISO 8601; default: now)")
+    parser.add_argument("--force-clock", action="store_true",
+                        help="accept a business clock more than one cadence ahead of the real "
+                        "clock, or go back from a latest pass that stands in the future")
     parser.add_argument("--strict", action="store_true",
                         help="exit 1 when a critical finding is open after the pass")
     parser.add_argument("--format", choices=("table", "json"), default="table")
@@ -137,7 +142,8 @@ def handle(args: argparse.Namespace) -> int:
     config = config_from(args)
     as_of = parse_as_of(args.as_of, config) if args.as_of else None
     with DatabaseLock(config.database):
-        report = run_pass(config, as_of=as_of, notifier=pass_notifier())
+        report = run_pass(config, as_of=as_of, notifier=pass_notifier(),
+                          max_ahead=clock_tolerance(config), force_clock=args.force_clock)
     if args.format == "json":
         print(json.dumps(summary(report), indent=2))
     else:

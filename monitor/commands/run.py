@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 import threading
 from collections.abc import Mapping
@@ -27,6 +28,9 @@ from monitor.passes import files_waiting, run_pass
 from monitor.store import Store
 
 IDLE_PASS_AFTER = timedelta(days=1)
+
+pass_log = logging.getLogger("monitor.pass")
+outbox_log = logging.getLogger("monitor.outbox")
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -50,9 +54,14 @@ def scan_job(config: PlumblineConfig, compute: Compute | None = None) -> JobFunc
             latest = store.latest_pass()
             idle = latest is None or now - latest.started_at >= IDLE_PASS_AFTER
             if not idle and not files_waiting(store, config):
-                return _retry_outbox(store, config, now)
-            report = run_pass(config, stop_requested=stop, notifier=pass_notifier(),
+                return _retry_outbox(store, config, now, stop)
+            report = run_pass(config, stop_requested=stop, notifier=pass_notifier(stop),
                               store=store, compute=compute)
+            # What the pass could not do (a file that cannot be read or moved, pages that
+            # cannot be written) and mail that keeps failing: a warning line each, every pass.
+            for line in report.skipped:
+                pass_log.warning("pass %s could not do everything: %s", report.pass_id, line)
+            _warn_failing_outbox(store, now)
         return {
             "pass_id": report.pass_id, "files": len(report.files_taken),
             "refused": len(report.files_refused),
@@ -65,15 +74,26 @@ def scan_job(config: PlumblineConfig, compute: Compute | None = None) -> JobFunc
 
 
 def _retry_outbox(
-    store: Store, config: PlumblineConfig, now: datetime
+    store: Store, config: PlumblineConfig, now: datetime, stop: threading.Event | None = None
 ) -> Mapping[str, object] | None:
     """Between passes, deliver the outbox's messages whose retry time has come (no connection
     is made when none is due)."""
     email = config.notify.email
     if email is None or not store.due_messages(now, limit=1):
         return None
-    report = deliver_outbox(store, email, now=now)
+    report = deliver_outbox(store, email, now=now, stop=stop)
+    _warn_failing_outbox(store, now)
     return {"outbox_sent": len(report.sent), "outbox_failed": len(report.failed)}
+
+
+def _warn_failing_outbox(store: Store, now: datetime) -> None:
+    failing = [m for m in store.unsent_messages() if m.attempts > 0]
+    if failing:
+        worst = max(failing, key=lambda m: (m.attempts, m.id))
+        outbox_log.warning(
+            "%d message(s) not sent yet, tried up to %d time(s); last error: %s",
+            len(failing), worst.attempts, worst.last_error or "none recorded",
+        )
 
 
 def digest_job(config: PlumblineConfig) -> JobFunction:

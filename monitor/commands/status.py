@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import argparse
 import json
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from monitor.commands._common import (
@@ -25,7 +25,11 @@ from monitor.notify.words import (
     local_time,
     plural,
 )
-from monitor.store import FindingRecord, PassRecord
+from monitor.store import FindingRecord, OutboxMessage, PassRecord
+
+# A latest pass this far ahead of the real clock is shown as a problem (a day: a pass at the
+# start of the business day may stand a few hours ahead by design).
+FUTURE_PASS_SLACK = timedelta(days=1)
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -83,17 +87,48 @@ def next_runs(config: PlumblineConfig, now: datetime) -> dict[str, Any]:
     return runs
 
 
+def problems(passes: list[PassRecord], unsent: list[OutboxMessage], now: datetime) -> list[str]:
+    """What is stuck, in one line each: a latest pass in the future of the real clock, what the
+    latest pass could not do (files that cannot be read or moved, pages that cannot be written),
+    and messages the outbox keeps failing to send."""
+    lines: list[str] = []
+    latest = passes[0] if passes else None
+    if latest is not None and latest.as_of > now + FUTURE_PASS_SLACK:
+        lines.append(
+            f"the latest pass (id {latest.id}) stands at business clock "
+            f"{latest.as_of.isoformat()}, in the future of the real clock: passes at the real "
+            "clock are refused until then; if that clock was a mistake, 'plumbline pass "
+            "--force-clock' continues from now"
+        )
+    if latest is not None:
+        lines += [f"pass {latest.id} could not do everything: {item}"
+                  for item in latest.counts.get("skipped") or ()]
+    failing = [m for m in unsent if m.attempts > 0]
+    if failing:
+        worst = max(failing, key=lambda m: (m.attempts, m.id))
+        soonest = min(m.next_attempt_at for m in failing)
+        lines.append(
+            f"outbox: {len(failing)} message(s) not sent yet, the oldest queued "
+            f"{min(m.created_at for m in failing).isoformat(timespec='minutes')} and tried "
+            f"{worst.attempts} time(s); last error: {worst.last_error or 'none recorded'}; next "
+            f"try {soonest.isoformat(timespec='minutes')}"
+        )
+    return lines
+
+
 def handle(args: argparse.Namespace) -> int:
     config = config_from(args)
     with open_existing_store(config, readonly=True) as store:
         findings = store.list_findings(state="all" if args.all else "open")
         passes = store.list_passes(10)
+        unsent = store.unsent_messages()
     rank = {"critical": 0, "warning": 1, "notice": 2}
     findings.sort(key=lambda f: (rank[f.severity.value], f.model or "", f.series or "", f.id))
     document = {
         "findings": [finding_record(f) for f in findings],
         "passes": [pass_record(p, config) for p in passes],
         "next_runs": next_runs(config, datetime.now(UTC)),
+        "problems": problems(passes, unsent, datetime.now(UTC)),
     }
     if args.format == "json":
         print(json.dumps(document, indent=2))
@@ -115,6 +150,8 @@ def handle(args: argparse.Namespace) -> int:
             more = "" if f.note_count == 1 else f" (latest of {f.note_count})"
             print(f"      Note{more}, {local_time(f.note.at, config.zone)}, {f.note.by}: "
                   f"{f.note.text}")
+    for line in document["problems"]:
+        print(f"  problem: {line}")
     runs = document["next_runs"]
     assert isinstance(runs, dict)
     if runs["daemon_pid"] is None:

@@ -191,6 +191,12 @@ def _translate(error: ErrorDetails) -> list[Problem]:
         return [Problem((*loc, *p.loc), p.message, p.line) for p in ctx["problems"]]
     if kind == "default_factory_not_called":
         return []  # a consequence of another error, which is reported
+    if loc and str(loc[-1]).endswith("_env") and kind != "missing":
+        # A secret typed where its variable's name belongs: never echo the value.
+        return [Problem(loc, (
+            "is not an environment variable name (the value is not shown: it may be a secret); "
+            "give the name of the variable that holds the secret, e.g. PLUMBLINE_SMTP_PASSWORD"
+        ))]
     if loc and loc[-1] == "[key]":
         loc = loc[:-1]
     if kind == "missing":

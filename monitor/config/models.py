@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 from datetime import timedelta
 from pathlib import Path
 from typing import Annotated, Any, Literal, TypeVar
@@ -439,6 +440,7 @@ class PlumblineConfig(_Section):
             if not getattr(self, key):
                 problems.append(Problem((key,), f"declare at least one {key[:-1]}"))
         problems += _shared_folders(self.feeds)
+        problems += _never_inputs(self)
         default_owners = list(self.notify.email.to) if self.notify.email is not None else []
         for name, model in self.models.items():
             if model.owners is None:
@@ -475,6 +477,33 @@ def _shared_folders(feeds: dict[str, Feed]) -> list[Problem]:
                 message = f"{folder} is the inbox of feed {inboxes[folder]}; files moved there "
                 message += "would be read again as new"
                 problems.append(Problem(("feeds", name, key), message))
+    return problems
+
+
+def _never_inputs(config: PlumblineConfig) -> list[Problem]:
+    """The database and the report pages live outside every drop folder: a database in an inbox
+    would be taken as a bad file and moved away from under the pass, and pages written into an
+    inbox would be read back as data at every scan. Compared after resolving symbolic links."""
+    folders: list[tuple[str, Path]] = []
+    for name, feed in config.feeds.items():
+        for key in ("inbox", "archive", "rejected"):
+            folder = Path(os.path.realpath(getattr(feed, key)))
+            folders.append((f"the {key} of feed {name}", folder))
+    problems: list[Problem] = []
+    checks: tuple[tuple[Loc, str, Path], ...] = (
+        (("database",), "the database", config.database),
+        (("notify", "html_dir"), "the reports folder", config.notify.html_dir),
+    )
+    for loc, what, path in checks:
+        real = Path(os.path.realpath(path))
+        for label, folder in folders:
+            if real == folder or folder in real.parents:
+                where = "is" if real == folder else "is inside"
+                problems.append(Problem(loc, (
+                    f"{path} {where} {label} ({folder}); {what} must be outside every inbox, "
+                    "archive and rejected folder, where it would be read or moved as a data file"
+                )))
+                break
     return problems
 
 

@@ -56,9 +56,9 @@ def _check_address(value: str) -> str:
 
 def _check_env_name(value: str) -> str:
     if not _ENV_NAME.match(value):
-        raise ValueError(
-            f"{value!r} is not an environment variable name; give the variable's name "
-            "(e.g. PLUMBLINE_SMTP_PASSWORD), never the secret itself"
+        raise ValueError(  # the value is never echoed: it may be the secret itself
+            "is not an environment variable name (the value is not shown: it may be a secret); "
+            "give the name of the variable that holds the secret, e.g. PLUMBLINE_SMTP_PASSWORD"
         )
     return value
 

@@ -32,7 +32,7 @@ import os
 import time
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import TYPE_CHECKING, BinaryIO, Literal
 
@@ -40,6 +40,7 @@ if TYPE_CHECKING:
     import numpy as np
 else:  # numpy on first use: `plumbline check` reads inboxes without it
     from monitor.store.lazy import np
+from monitor.errors import DatabaseFaultError
 from monitor.ingest.dialect import (
     DEFAULT_DECIMAL,
     DEFAULT_DELIMITER,
@@ -81,6 +82,7 @@ from monitor.store import (
     RejectedRow,
     Revision,
     Store,
+    date_period_key,
 )
 from monitor.vocabulary import Finding, FindingKind, Severity
 
@@ -126,6 +128,9 @@ class IngestSpec:
     delimiter: str = DEFAULT_DELIMITER  # CSV only: see monitor.ingest.dialect
     decimal: str = DEFAULT_DECIMAL
     batch_bytes: int = DEFAULT_BLOCK_BYTES  # how much of a file is read and checked at a time
+    # Actuals dated after this day are refused as rows (date periods; the pass gives a few
+    # cadences past its business clock's date). None: no limit.
+    latest_actual: date | None = None
 
     def __post_init__(self) -> None:
         if self.format not in ("csv", "parquet"):
@@ -142,9 +147,12 @@ class IngestSpec:
 
     @property
     def plan(self) -> ColumnPlan:
+        latest = None
+        if self.latest_actual is not None and self.period_type == "date":
+            latest = (self.latest_actual.isoformat(), date_period_key(self.latest_actual))
         return ColumnPlan(
             self.period_column, self.period_type, self.per_column, self.responses,
-            self.required, self.optional,
+            self.required, self.optional, latest,
         )
 
 
@@ -172,6 +180,7 @@ class FileReport:
     side_files: tuple[Path, ...]
     duplicate_of: str | None  # the earlier file's name, for a duplicate
     findings: tuple[Finding, ...] = ()
+    problem: str = ""  # the file changed after it was read (then it is in rejected, not archive)
 
     @property
     def whole_file_rejected(self) -> bool:
@@ -252,16 +261,12 @@ def ingest_feed(
     for item in survey.complete:
         try:
             report = ingest_file(store, spec, item, pass_id=pass_id, real_clock=real_clock)
-        except OSError as exc:
-            problems.append(f"{item.name}: {exc.strerror or exc}; left in the inbox for now")
-            log.warning("feed %s: %s could not be taken: %s", spec.feed, item.name, exc)
-            continue
+        except DatabaseFaultError:
+            raise  # the database itself cannot be written: no other file could be either
         except Exception as exc:  # one file's failure must not stop the feed's other files
-            problems.append(
-                f"{item.name}: could not be taken ({type(exc).__name__}: {exc}); its "
-                "transaction was rolled back and the file left in the inbox"
-            )
-            log.exception("feed %s: %s could not be taken", spec.feed, item.name)
+            problem = _file_problem(store, spec, item, exc)
+            problems.append(problem)
+            log.warning("feed %s: %s", spec.feed, problem)
             continue
         if report is None:
             waiting.append(item.name)
@@ -315,7 +320,7 @@ def commit_file(
     for pending in store.files_awaiting_move(spec.feed):
         if pending.sha256 == sha:  # this very file, recorded before a crash
             return _committed_from_store(store, spec, pending, item.path)
-    earlier = store.file_by_sha256(sha)
+    earlier = store.file_by_sha256(sha, spec.feed)
     taken = [record.stored_path for record in store.files_awaiting_move(spec.feed)]
     rule = item.rule or "settled"
     if earlier is not None:
@@ -392,7 +397,23 @@ def complete_move(
             slots = _slots(spec, record.outcome, bool(committed.rejected))
             target = target.with_name(free_name(record.name, slots))
         move_no_clobber(source, target)
+    # What was read is what was put in place: a writer that went on after the read (stalled
+    # past ``settle``, or appending after its marker) leaves other bytes here. Such a file
+    # never stays in the archive as if all its rows were stored: it goes to rejected with a
+    # report, and the feed gets a finding.
+    taken = record.outcome in (FileOutcome.ARCHIVED, FileOutcome.EMPTY)
+    changed = _changed_since_read(target, record) if taken else None
+    if changed is not None and target.parent != spec.rejected:
+        quarantined = spec.rejected / free_name(
+            target.name, [(spec.rejected, ""), (spec.rejected, ".errors.txt")]
+        )
+        move_no_clobber(target, quarantined)
+        target = quarantined
     side_files: list[Path] = []
+    if changed is not None:
+        errors_path = spec.rejected / (target.name + ".errors.txt")
+        write_new_file(errors_path, _changed_text(spec, record, changed).encode("utf-8"))
+        side_files.append(errors_path)
     if record.errors_text:
         errors_path = spec.rejected / (target.name + ".errors.txt")
         write_new_file(errors_path, record.errors_text.encode("utf-8"))
@@ -416,10 +437,77 @@ def complete_move(
     record = store.mark_file_moved(
         record.id, at=moved_at, stored_path=None if target == record.stored_path else target
     )
-    return _report(spec, committed, record, tuple(side_files))
+    report = _report(spec, committed, record, tuple(side_files))
+    if changed is None:
+        return report
+    problem = (
+        f"{record.name} changed after it was read ({changed}); the rows read "
+        f"({record.rows_ingested + record.unchanged} of them) were stored, and the file as it "
+        f"is now was put in {target} with a report, not in the archive. Send the complete file "
+        "again: rows already stored are recognised and not counted twice"
+    )
+    log.warning("feed %s: %s", spec.feed, problem)
+    finding = Finding(
+        None, None, spec.feed, FindingKind.REJECTED_INPUT, Severity.WARNING, None, None, None,
+        problem, "Make the writer finish before the file counts as complete (a NAME.ready "
+        "marker written last, or a rename), then send the complete file again.",
+    )
+    return dataclasses.replace(report, problem=problem,
+                               findings=(*report.findings, finding))
 
 
 # ----------------------------------------------------------------------------- helpers
+
+
+def _file_problem(store: Store, spec: IngestSpec, item: InboxFile, exc: Exception) -> str:
+    """One line on a file that could not be taken, saying truthfully where it and its rows are."""
+    why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+    why = f"{type(exc).__name__}: {why}" if not isinstance(exc, OSError) else why
+    if isinstance(exc, MemoryError):
+        why = (f"it is too large to read in the memory available ({item.size:,} bytes); "
+               "send it in smaller files")
+    pending = next(
+        (r for r in store.files_awaiting_move(spec.feed) if r.name == item.name), None
+    )
+    if pending is not None:
+        where = "still in the inbox" if item.path.exists() else f"at {pending.stored_path}"
+        return (
+            f"{item.name}: its rows are stored (file id {pending.id}) but it could not be put in "
+            f"place ({why}); it is {where}, and every scan tries again"
+        )
+    if not item.path.exists():
+        return f"{item.name}: could not be taken ({why}); it is no longer in the inbox"
+    return (
+        f"{item.name}: could not be taken ({why}); nothing of it was stored and it stays in the "
+        "inbox, tried again at every scan"
+    )
+
+
+def _changed_since_read(path: Path, record: FileRecord) -> str | None:
+    """None when ``path`` holds exactly the bytes that were read; else what differs."""
+    try:
+        size = path.stat().st_size
+        sha = sha256_of(path)
+    except OSError as exc:
+        return f"it cannot be read again: {exc.strerror or exc}"
+    if sha == record.sha256:
+        return None
+    if size != record.size:
+        return f"{record.size} bytes were read, it now has {size}"
+    return f"the same size, {size} bytes, but other content"
+
+
+def _changed_text(spec: IngestSpec, record: FileRecord, changed: str) -> str:
+    return (
+        f"Plumbline read {record.name} (feed {spec.feed}) and then found it had changed: "
+        f"{changed}.\n\n"
+        f"The rows of the version read were stored (SHA-256 {record.sha256}); anything written "
+        "after the read was not. The file is here as it is now, not in the archive.\n"
+        "To fix: make the writer finish before the file counts as complete (write a NAME.ready "
+        "marker last, or write under a temporary name and rename), then drop the complete file "
+        f"into the inbox ({spec.inbox}) again. Rows already stored are recognised and not "
+        "counted twice.\n"
+    )
 
 
 def _holds(path: Path, sha: str) -> bool:

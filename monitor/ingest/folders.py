@@ -16,7 +16,8 @@ A file in the inbox is complete when any of these holds (DESIGN.md section 6):
    (never the business clock).
 
 Names starting with ``.`` or ending in ``.part``, ``.tmp`` or ``.ready`` are never data; nor is
-anything but a regular file (folders, symbolic links, devices are left alone).
+anything but a regular file (folders, symbolic links, devices are left alone), nor a file with a
+second hard link (another name for a file elsewhere).
 
 Moves never overwrite: a name already taken in the destination gets a suffix (``week_07-2.csv``).
 A move is a hard link under the new name followed by removing the old one (atomic, no clobber);
@@ -108,8 +109,16 @@ def survey_inbox(
             info = entry.stat(follow_symlinks=False)
         except FileNotFoundError:
             continue  # gone since the listing
+        if stat.S_ISLNK(info.st_mode):
+            ignored.append((name, "a symbolic link"))
+            continue
         if not stat.S_ISREG(info.st_mode):
             ignored.append((name, "not a regular file"))
+            continue
+        if info.st_nlink > 1:
+            # Another name of a file elsewhere (a hard link): reading it would ingest, quote and
+            # move bytes that were never delivered here.
+            ignored.append((name, "a hard link (the file has another name elsewhere)"))
             continue
         changed = max(info.st_mtime_ns, info.st_ctime_ns) / 1e9
         rule: str | None = None
@@ -196,11 +205,17 @@ def inbox_notes(
 def read_stable(path: Path, expected_mtime_ns: int | None = None) -> bytes | None:
     """The file's bytes, or None when it changed while (or since it was surveyed and) read."""
     try:
-        with path.open("rb") as handle:
+        # O_NOFOLLOW: a file swapped for a symbolic link since the survey is not followed.
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW)
+        with os.fdopen(fd, "rb") as handle:
             before = os.fstat(handle.fileno())
             data = handle.read()
             after = os.fstat(handle.fileno())
-    except FileNotFoundError:
+    except (FileNotFoundError, OSError) as exc:
+        if isinstance(exc, FileNotFoundError) or exc.errno == errno.ELOOP:
+            return None
+        raise
+    if not stat.S_ISREG(before.st_mode) or before.st_nlink > 1:
         return None
     unchanged = (before.st_size, before.st_mtime_ns) == (after.st_size, after.st_mtime_ns)
     if not unchanged or len(data) != after.st_size:

@@ -29,6 +29,18 @@ from monitor.store import ObservationBatch, ObservationRow, RejectedRow, date_pe
 from monitor.text import did_you_mean
 
 _INTEGER = re.compile(r"^[+-]?\d+$")
+# A period is a calendar date written in full (2024-01-07). Python also reads ISO week dates
+# (2024-W02-1) and the compact forms (20240107) as dates; a feed gets them only by mistake, and
+# a week date read as its Monday would put the row on another day than its sender meant.
+_CALENDAR_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+_WEEK_DATE = re.compile(r"^\d{4}-?W\d{2}(-?\d)?$", re.IGNORECASE)
+# Numbers whose square is beyond the float range (about 1.8e308): sums of squares in a fit would
+# overflow to infinity, so such a value is refused as a row rather than spoiling its series.
+LARGEST_VALUE = 1e154
+
+# Fields of any size on the csv module's path (long lines go there): a long text in a column the
+# feed does not use must not refuse the file (the module's default limit is 128 KiB).
+csv.field_size_limit(2**31 - 1)
 
 
 @dataclass(frozen=True)
@@ -41,6 +53,9 @@ class ColumnPlan:
     responses: tuple[str, ...]  # empty in every one of them: a plan row
     required: tuple[str, ...]  # a number in every row
     optional: tuple[str, ...]  # may be missing from the header, or empty
+    # Actuals dated after this period key are refused as rows (plan rows may be dated later):
+    # a few cadences past the business clock's date, so a mistyped year cannot hide a stale feed.
+    latest_actual: tuple[str, int] | None = None  # (as text, period key)
 
     @property
     def declared(self) -> tuple[str, ...]:
@@ -175,7 +190,7 @@ class _RowChecker:
                     value = None
                 else:
                     # parsed - parsed is 0.0 only for finite numbers
-                    if parsed - parsed != 0.0 or "_" in cell:
+                    if parsed - parsed != 0.0 or "_" in cell or abs(parsed) > LARGEST_VALUE:
                         return self._reject(cells, line)
                     value = parsed
             else:
@@ -189,6 +204,13 @@ class _RowChecker:
                 return self._reject(cells, line)
         responses = self.responses
         is_plan = responses > 0 and all(v is None for v in values[:responses])
+        latest = self.plan.latest_actual
+        if latest is not None and not is_plan and period[1] > latest[1]:
+            return RejectedRow(line, (
+                f"'{self.plan.period}' holds {_shown(period[0])}, an actual dated after "
+                f"{latest[0]}, far beyond the business clock; an actual cannot come from the "
+                "future (a mistyped date?)"
+            ), _texts(cells))
         return ObservationRow(series, period[0], period[1], is_plan, tuple(values), line)
 
     def _reject(self, cells: Sequence[Any], line: int) -> RejectedRow:
@@ -245,6 +267,9 @@ def _number(cell: Any) -> float | str | None:
         return f"holds a {type(cell).__name__} where a number is needed"
     if value - value != 0.0:
         return f"holds {_shown(str(cell).strip())}: NaN and infinity are not usable numbers"
+    if abs(value) > LARGEST_VALUE:
+        return (f"holds {_shown(str(cell).strip())}, too large to compute with (its square is "
+                "beyond the range of floating-point numbers; at most 1e154)")
     return value
 
 
@@ -271,6 +296,11 @@ def _date_period(cell: Any) -> tuple[str, int] | str:
     text = cell.strip()
     if not text:
         return "is empty"
+    if _WEEK_DATE.match(text):
+        return (f"holds {_shown(text)}, an ISO week date; write the calendar date of the period "
+                "(e.g. 2024-01-07)")
+    if not _CALENDAR_DATE.match(text[:10]):
+        return f"holds {_shown(text)}, which is not an ISO 8601 date (write e.g. 2024-01-07)"
     try:
         return text, date_period_key(date.fromisoformat(text))
     except ValueError:
@@ -724,7 +754,7 @@ class _FastCsv:
             converted = pc.cast(plain, pa.float64()).to_numpy(zero_copy_only=False)
             converted = np.where(number, converted, math.nan)
             doubt |= ~number & ~empty
-            doubt |= number & ~np.isfinite(converted)
+            doubt |= number & ~(np.abs(converted) <= LARGEST_VALUE)  # NaN, infinite, too large
             values[:, j] = converted
         required = list(checker.required)
         if required:
@@ -733,6 +763,10 @@ class _FastCsv:
         is_plan: NDArray[np.bool_] = np.zeros(count, bool)
         if responses:
             is_plan = np.asarray(np.isnan(values[:, :responses]).all(axis=1))
+        latest = checker.plan.latest_actual
+        if latest is not None and keys:
+            # Actuals dated far beyond the business clock: the row checker gives the reason.
+            doubt |= (np.asarray(keys, np.int64)[period_index] > latest[1]) & ~is_plan
         for i in np.flatnonzero(doubt):
             line = int(lines[i])
             checked = checker.check(cells_of(line), line)
@@ -888,6 +922,26 @@ def screen_bytes(data: bytes) -> str | None:
     return screen.finish()
 
 
+_HEAD_BYTES = 200
+
+
+def _wide_text(head: bytes) -> str | None:
+    """How to name UTF-16 or UTF-32 text from a file's first bytes, or None."""
+    if head.startswith((b"\xff\xfe\x00\x00", b"\x00\x00\xfe\xff")):
+        return "UTF-32 text"
+    if head.startswith(b"\xff\xfe"):
+        return "UTF-16LE text (UTF-16)"
+    if head.startswith(b"\xfe\xff"):
+        return "UTF-16BE text (UTF-16)"
+    if len(head) >= 8:
+        odd, even = head[1::2], head[0::2]
+        if odd.count(0) >= 0.9 * len(odd) and even.count(0) == 0:
+            return "UTF-16LE text (UTF-16)"
+        if even.count(0) >= 0.9 * len(even) and odd.count(0) == 0:
+            return "UTF-16BE text (UTF-16)"
+    return None
+
+
 class ByteScreen:
     """Checks a file's bytes as they stream past: the first NUL byte, the first byte that is not
     UTF-8 (with its offset and line). A NUL anywhere is reported before any UTF-8 error."""
@@ -898,8 +952,11 @@ class ByteScreen:
         self.pending = b""  # the undecoded end of the last block (a character cut in two)
         self.nul_at: int | None = None
         self.bad: tuple[int, int, int] | None = None  # offset, byte, line
+        self.head = b""  # the first bytes, to name UTF-16 and UTF-32 text
 
     def feed(self, block: bytes) -> None:
+        if len(self.head) < _HEAD_BYTES:
+            self.head += block[: _HEAD_BYTES - len(self.head)]
         if self.nul_at is None:
             nul = block.find(b"\x00")
             if nul >= 0:
@@ -929,6 +986,9 @@ class ByteScreen:
     def finish(self) -> str | None:
         if self.bad is None and self.pending:
             self._decode(self.pending, self.offset - len(self.pending), final=True)
+        wide = _wide_text(self.head)
+        if wide is not None:
+            return f"the file is {wide}, not UTF-8; save or export the file as UTF-8"
         if self.nul_at is not None:
             return (
                 f"the file holds NUL bytes (the first at byte {self.nul_at}): it is binary "

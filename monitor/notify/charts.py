@@ -24,12 +24,14 @@ text (escaped by matplotlib), with math parsing off so a ``$`` in a name stays a
 
 from __future__ import annotations
 
+import hashlib
 import io
 import math
 import re
 import xml.etree.ElementTree as ET
+from collections import OrderedDict
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from datetime import date
 from typing import Any
 
@@ -370,11 +372,50 @@ def _describe_hit_rate(data: HitRateData) -> str:
 # ------------------------------------------------------------------------------------ drawing
 
 
+# Charts drawn in this process, by fingerprint: the same series and period asked for by a pass
+# page, a model page and a digest is drawn once. Drawn under a placeholder key, which each use
+# replaces with its own (ids stay unique per page).
+_DRAWN: OrderedDict[str, tuple[str | None, bytes | None]] = OrderedDict()
+_DRAWN_CAP = 256
+_PLACEHOLDER = "chartkeyplaceholder"
+
+
+def fingerprint(data: ChartData) -> str:
+    """A digest of everything a chart shows (its kind and every field, arrays by their bytes)."""
+    digest = hashlib.sha256(type(data).__name__.encode())
+    for item in fields(data):
+        value = getattr(data, item.name)
+        digest.update(item.name.encode())
+        if isinstance(value, np.ndarray):
+            digest.update(f"{value.dtype}{value.shape}".encode())
+            digest.update(np.ascontiguousarray(value).tobytes())
+        else:
+            digest.update(repr(value).encode())
+    return digest.hexdigest()
+
+
 def draw(data: ChartData, *, key: str, svg: bool = True, png: bool = False) -> Chart:
     """Render ``data``: inline-ready SVG text and/or PNG bytes. ``key`` must be unique per page
-    (letters, digits and hyphens); it prefixes every id inside the SVG."""
+    (letters, digits and hyphens); it prefixes every id inside the SVG. A chart of the same data
+    drawn before in this process is reused (with its ids given ``key``)."""
     if not re.fullmatch(r"[A-Za-z][A-Za-z0-9-]*", key):
         raise ValueError(f"chart key {key!r}: letters, digits and hyphens, starting with a letter")
+    name = fingerprint(data)
+    svg_text, png_bytes = _DRAWN.get(name, (None, None))
+    if (svg and svg_text is None) or (png and png_bytes is None):
+        drawn = _draw(data, svg=svg and svg_text is None, png=png and png_bytes is None)
+        svg_text = svg_text if drawn.svg is None else drawn.svg
+        png_bytes = png_bytes if drawn.png is None else drawn.png
+        _DRAWN[name] = (svg_text, png_bytes)
+        while len(_DRAWN) > _DRAWN_CAP:
+            _DRAWN.popitem(last=False)
+    _DRAWN.move_to_end(name)
+    own_svg = None if not svg or svg_text is None else svg_text.replace(_PLACEHOLDER, key)
+    return Chart(key, data.title, describe(data), own_svg, png_bytes if png else None)
+
+
+def _draw(data: ChartData, *, svg: bool, png: bool) -> Chart:
+    key = _PLACEHOLDER
     settings: dict[str, Any] = {**_RC, "svg.hashsalt": key}
     with matplotlib.rc_context(settings):  # type: ignore[arg-type]
         # Fixed margins instead of a layout engine: a constrained layout draws every figure

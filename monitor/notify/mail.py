@@ -72,13 +72,18 @@ never stored, logged or put in an error text; a password is never sent over ``se
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import re
 import smtplib
+import socket
 import ssl
+import threading
+import time
 import unicodedata
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from email.headerregistry import Address
@@ -92,6 +97,7 @@ from typing import Protocol
 
 from monitor.config import Email, PlumblineConfig, models_of_feed
 from monitor.store import OutboxMessage, Store, utc_text
+from monitor.text import printable
 
 # --------------------------------------------------------------------------- content
 
@@ -208,12 +214,17 @@ def recipient_key(address: str) -> str:
     return f"{parsed.username}@{parsed.domain.lower()}"
 
 
-def _message_id(sender: Address, dedupe_key: str | None) -> str:
-    if dedupe_key is None:
+def _message_id(
+    sender: Address, dedupe_key: str | None, identity: str | None, moment: datetime
+) -> str:
+    if dedupe_key is None or identity is None:
         return make_msgid(domain=sender.domain)
-    # Stable for a given sender and key: a message composed again after a crash, or sent
-    # twice in the one unavoidable case, carries the same id.
-    digest = hashlib.sha256(f"plumbline\0{sender.addr_spec}\0{dedupe_key}".encode()).hexdigest()
+    # The database's random identity and the moment of composing make the id unique across
+    # databases: two instances, a restored backup or a rebuilt database number their passes
+    # from the same ids, and would otherwise reuse a Message-ID. A retry sends the stored bytes,
+    # so the one unavoidable double send carries the same id.
+    text = f"plumbline\0{identity}\0{sender.addr_spec}\0{dedupe_key}\0{moment.isoformat()}"
+    digest = hashlib.sha256(text.encode()).hexdigest()
     return f"<{digest[:40]}@{sender.domain}>"
 
 
@@ -228,13 +239,15 @@ def build_message(
     headers: Mapping[str, str] | None = None,
     dedupe_key: str | None = None,
     date: datetime | None = None,
+    identity: str | None = None,
 ) -> bytes:
     """The whole message as bytes (CRLF line ends), ready for the outbox or a ``.eml`` file.
 
     Structure: ``multipart/alternative`` of a ``text/plain`` part and the HTML, which becomes
     ``multipart/related`` with each PNG as an inline part whose ``Content-ID`` is ``<cid>``.
     Headers: From, To (all ``recipients``), Subject, Date (``date``, default now), Message-ID
-    (derived from ``dedupe_key`` when given, else random), ``Auto-Submitted: auto-generated``
+    (derived from ``dedupe_key``, the database's ``identity`` and the date when both are given,
+    else random), ``Auto-Submitted: auto-generated``
     (RFC 3834, so auto-responders stay quiet), then ``headers``. Raises ValueError for a line
     break in any header value, a malformed address, a non-PNG image, a bad or repeated
     Content-ID, or a ``cid:`` in the HTML with no image behind it.
@@ -262,7 +275,7 @@ def build_message(
     message["To"] = to_addresses
     message["Subject"] = subject
     message["Date"] = format_datetime(moment)
-    message["Message-ID"] = _message_id(from_address, dedupe_key)
+    message["Message-ID"] = _message_id(from_address, dedupe_key, identity, moment)
     message["Auto-Submitted"] = "auto-generated"
     for name, value in extra.items():
         message[name] = value
@@ -403,13 +416,17 @@ def _compose(
     created_at: datetime,
     pass_id: int | None,
     models: tuple[str, ...],
+    identity: str | None = None,
 ) -> ComposedMessage:
     subject = header_text(content.subject) or "Plumbline"
     envelope = tuple(_parse_address("To", recipient).addr_spec for recipient in recipients)
     body = build_message(
-        sender=email.sender, recipients=recipients, subject=subject, text=content.text,
+        # The plain-text part is read in terminals and text viewers: escape the control
+        # characters and bidirectional marks a file value may bring (monitor.text.printable).
+        sender=email.sender, recipients=recipients, subject=subject,
+        text=printable(content.text),
         html=content.html, inline_images=content.images, dedupe_key=dedupe_key,
-        date=created_at,
+        date=created_at, identity=identity,
     )
     return ComposedMessage(kind, dedupe_key, envelope, subject, body, created_at, pass_id, models)
 
@@ -422,15 +439,17 @@ def compose_pass_messages(
     changed_models: Iterable[str],
     render: Renderer,
     created_at: datetime,
+    identity: str | None = None,
 ) -> list[ComposedMessage]:
-    """One message per recipient who owns a model in ``changed_models``; none when it is empty."""
+    """One message per recipient who owns a model in ``changed_models``; none when it is empty.
+    ``identity``: the database's (``Store.identity``), for the Message-IDs."""
     messages = []
     for recipient, models in group_by_recipient(owners_by_model, changed_models).items():
         messages.append(
             _compose(
                 email, render(recipient, models), kind="pass",
                 dedupe_key=f"pass:{pass_id}:{recipient_key(recipient)}", recipients=[recipient],
-                created_at=created_at, pass_id=pass_id, models=models,
+                created_at=created_at, pass_id=pass_id, models=models, identity=identity,
             )
         )
     return messages
@@ -442,6 +461,7 @@ def compose_owner_messages(
     *,
     pass_id: int,
     created_at: datetime,
+    identity: str | None = None,
 ) -> list[ComposedMessage]:
     """A pass's messages as grouped by the renderer, with their own dedupe keys. Two messages to
     one recipient (by :func:`recipient_key`) are refused: each recipient gets one per pass."""
@@ -459,7 +479,7 @@ def compose_owner_messages(
             _compose(
                 email, message.content, kind="pass", dedupe_key=message.dedupe_key,
                 recipients=[message.recipient], created_at=created_at, pass_id=pass_id,
-                models=tuple(message.models),
+                models=tuple(message.models), identity=identity,
             )
         )
     return composed
@@ -473,13 +493,14 @@ def compose_digest(
     created_at: datetime,
     recipients: Sequence[str] | None = None,
     pass_id: int | None = None,
+    identity: str | None = None,
 ) -> ComposedMessage:
     """The digest for the period ending ``period_end``, to ``recipients`` (default
     ``notify.email.to``), all in one message with dedupe key ``digest:<period_end as UTC>``."""
     return _compose(
         email, content, kind="digest", dedupe_key=f"digest:{utc_text(period_end)}",
         recipients=list(email.to if recipients is None else recipients), created_at=created_at,
-        pass_id=pass_id, models=(),
+        pass_id=pass_id, models=(), identity=identity,
     )
 
 
@@ -514,6 +535,7 @@ def enqueue_pass_messages(
         compose_pass_messages(
             email, pass_id=pass_id, owners_by_model=owners_by_model,
             changed_models=changed_models, render=render, created_at=created_at,
+            identity=store.identity,
         ),
     )
 
@@ -531,7 +553,7 @@ def enqueue_digest(
     """Compose and queue the digest (:func:`compose_digest`); queued at most once per period."""
     message = compose_digest(
         email, content, period_end=period_end, created_at=created_at, recipients=recipients,
-        pass_id=pass_id,
+        pass_id=pass_id, identity=store.identity,
     )
     return enqueue(store, [message])[0]
 
@@ -597,22 +619,30 @@ def _credentials(email: Email) -> tuple[_Credentials | None, tuple[str, ...]]:
     return (user, password), ()
 
 
+def _session(email: Email, timeout: float, context: ssl.SSLContext) -> smtplib.SMTP:
+    """An SMTP session not yet connected, so a deadline can close its socket from the start."""
+    session: smtplib.SMTP
+    if email.security == "tls":
+        session = smtplib.SMTP_SSL(timeout=timeout, context=context)
+    else:
+        session = smtplib.SMTP(timeout=timeout)
+    # What the constructor would have recorded had it been given the host (it would also have
+    # connected at once, outside any deadline): the name TLS checks the certificate against.
+    session._host = email.smtp_host  # type: ignore[attr-defined]
+    return session
+
+
 def _connect(
-    email: Email, timeout: float, context: ssl.SSLContext, credentials: _Credentials | None
+    session: smtplib.SMTP, email: Email, context: ssl.SSLContext,
+    credentials: _Credentials | None,
 ) -> smtplib.SMTP:
     if credentials is not None and email.security == "none":
         raise _NoPlainPassword(
             "refusing to send the SMTP password over an unencrypted connection "
             "(security: none); use starttls or tls"
         )
-    session: smtplib.SMTP
-    if email.security == "tls":
-        session = smtplib.SMTP_SSL(
-            email.smtp_host, email.smtp_port, timeout=timeout, context=context
-        )
-    else:
-        session = smtplib.SMTP(email.smtp_host, email.smtp_port, timeout=timeout)
     try:
+        session.connect(email.smtp_host, email.smtp_port)
         session.ehlo()
         if email.security == "starttls":
             # Raises SMTPNotSupportedError when the server does not offer STARTTLS: never
@@ -625,6 +655,49 @@ def _connect(
         session.close()
         raise
     return session
+
+
+# A message (with the connection when it opens one) must be done within this many times
+# ``notify.email.timeout`` in all: the timeout alone bounds each read, and a server that trickles
+# a byte at a time would never reach it.
+MESSAGE_DEADLINE_FACTOR = 4
+
+
+@contextmanager
+def _deadline(
+    session: smtplib.SMTP, seconds: float, stop: threading.Event | None
+) -> Iterator[list[str]]:
+    """Shut the session's socket down when ``seconds`` pass or ``stop`` is set, whichever is
+    first; the blocked read or write then fails at once. Yields a list that says which."""
+    done = threading.Event()
+    why: list[str] = []
+
+    def watch() -> None:
+        end = time.monotonic() + seconds
+        while not done.is_set():
+            left = end - time.monotonic()
+            if left <= 0:
+                why.append(f"not done within the overall deadline of {seconds:g} s per message "
+                           "(the server is too slow or stalled)")
+                break
+            if stop is not None and stop.is_set():
+                why.append("stopped: Plumbline is shutting down; it is tried again later")
+                break
+            done.wait(min(left, 0.2))
+        else:
+            return
+        sock = session.sock
+        if sock is not None:
+            with contextlib.suppress(OSError):
+                sock.shutdown(socket.SHUT_RDWR)
+
+    watcher = threading.Thread(target=watch, name="plumbline-smtp-deadline", daemon=True)
+    watcher.start()
+    try:
+        yield why
+    finally:
+        done.set()
+        watcher.join()
 
 
 def _describe(stage: str, exc: BaseException) -> str:
@@ -658,6 +731,7 @@ def deliver_outbox(
     connect_timeout: float | None = None,
     ssl_context: ssl.SSLContext | None = None,
     batch_size: int = 100,
+    stop: threading.Event | None = None,
 ) -> DeliveryReport:
     """Send every outbox message due at ``now`` (the real clock, normally) over one connection.
 
@@ -665,8 +739,11 @@ def deliver_outbox(
     failure is recorded with its back-off, and when the server cannot be reached every due
     message is marked failed without trying again in this run. ``connect_timeout`` (seconds)
     overrides ``notify.email.timeout``; ``ssl_context`` replaces the default verifying context.
+    Each message, with the connection it opens, has ``MESSAGE_DEADLINE_FACTOR`` times the
+    timeout in all; ``stop`` (the daemon's) cuts a send short and leaves the rest due.
     """
     timeout = email.timeout.total_seconds() if connect_timeout is None else connect_timeout
+    deadline = timeout * MESSAGE_DEADLINE_FACTOR
     context = ssl.create_default_context() if ssl_context is None else ssl_context
     credentials, notes = _credentials(email)
     sent: list[int] = []
@@ -681,47 +758,67 @@ def deliver_outbox(
         next_at = store.mark_failed(message.id, at=now, error=error)
         failed.append(DeliveryFailure(message.id, error, next_at))
 
+    def stopping() -> bool:
+        return stop is not None and stop.is_set()
+
     try:
-        while True:
+        while not stopping():
             batch = [m for m in store.due_messages(now, limit=batch_size) if m.id not in handled]
             if not batch:
                 break
             for message in batch:
+                if stopping():
+                    break  # the rest stay due, untouched
                 handled.add(message.id)
                 if unreachable is not None:
                     fail(message, unreachable)
                     continue
-                if session is None:
+                current = session or _session(email, timeout, context)
+                with _deadline(current, deadline, stop) as cut:
+                    if session is None:
+                        try:
+                            session = _connect(current, email, context, credentials)
+                            connections += 1
+                        except (OSError, _NoPlainPassword) as exc:  # SMTPException is OSError
+                            if cut and stopping():
+                                break
+                            unreachable = header_text(f"connect: {cut[0]}") if cut else (
+                                _describe("connect", exc)
+                            )
+                            fail(message, unreachable)
+                            continue
                     try:
-                        session = _connect(email, timeout, context, credentials)
-                        connections += 1
-                    except (OSError, _NoPlainPassword) as exc:  # SMTPException is an OSError
-                        unreachable = _describe("connect", exc)
-                        fail(message, unreachable)
+                        rejected = session.sendmail(
+                            email.sender, list(message.recipients), message.body
+                        )
+                    except OSError as exc:  # smtplib.SMTPException is an OSError too
+                        # A refusal leaves the connection usable (smtplib sends RSET); a lost
+                        # connection or a 421 reply does not, and the next message opens a new
+                        # one.
+                        usable = (
+                            not cut
+                            and isinstance(exc, smtplib.SMTPException)
+                            and not isinstance(exc, smtplib.SMTPServerDisconnected)
+                            and session.sock is not None
+                        )
+                        if not usable:
+                            session.close()
+                            session = None
+                        if cut and stopping():
+                            break
+                        fail(message, header_text(f"send: {cut[0]}") if cut else
+                             _describe("send", exc))
                         continue
-                try:
-                    rejected = session.sendmail(
-                        email.sender, list(message.recipients), message.body
-                    )
-                except OSError as exc:  # smtplib.SMTPException is an OSError too
-                    # A refusal leaves the connection usable (smtplib sends RSET); a lost
-                    # connection or a 421 reply does not, and the next message opens a new one.
-                    usable = (
-                        isinstance(exc, smtplib.SMTPException)
-                        and not isinstance(exc, smtplib.SMTPServerDisconnected)
-                        and session.sock is not None
-                    )
-                    if not usable:
-                        session.close()
-                        session = None
-                    fail(message, _describe("send", exc))
-                    continue
                 store.mark_sent(message.id, at=now)
                 sent.append(message.id)
                 refused.extend((message.id, address) for address in sorted(rejected))
     finally:
         if session is not None:
-            _quit(session)
+            if stopping():
+                session.close()
+            else:
+                with _deadline(session, deadline, stop):
+                    _quit(session)
     return DeliveryReport(tuple(sent), tuple(failed), tuple(refused), connections, notes)
 
 

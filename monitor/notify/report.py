@@ -14,7 +14,8 @@ recipient with nothing to hear about gets no message, and a pass with nothing ne
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+import threading
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
@@ -27,6 +28,7 @@ from monitor.notify.html import (
     ChartBudget,
     attention_sentence,
     coverage_sentence,
+    model_page_name,
     pass_page_name,
     render,
     series_chart_data,
@@ -76,6 +78,18 @@ class ModelSection:
     sentence: str
     zone: str | None
     charts: list[ChartView]
+
+
+class _Histories(dict[str, ModelHistory]):
+    """Models' histories, each read from the store the first time it is asked for."""
+
+    def __init__(self, store: Store, config: PlumblineConfig) -> None:
+        super().__init__()
+        self.store, self.config = store, config
+
+    def __missing__(self, name: str) -> ModelHistory:
+        history = self[name] = load_model(self.store, self.config, name)
+        return history
 
 
 def _recipients(config: PlumblineConfig, record: FindingRecord) -> set[str]:
@@ -192,8 +206,12 @@ def render_pass_report(
     escalated: Iterable[int] = (),
     notify: Iterable[int] | None = None,
     write_models: bool = True,
+    before_pages: Callable[[tuple[OwnerMessage, ...]], None] | None = None,
 ) -> PassReport:
     """Write the pass's page (and the model pages and index) and build its messages.
+
+    ``before_pages`` is called with the messages before any page is written (``notify_pass``
+    queues them there), so a failure to write pages never loses a message.
 
     ``notify``, when given, is the pass's own list of findings to send (``findings_to_notify``:
     raised, more severe, no longer seen; those with an owner's note left out): the messages cover
@@ -211,13 +229,7 @@ def render_pass_report(
     rising = set(escalated) | ((wanted or set()) - raised - closed)
     rose = [f for f in (store.get_finding(i) for i in sorted(rising))
             if f is not None and f.id not in raised and f.state.value != "cleared"]
-    histories = {name: load_model(store, config, name) for name in config.models}
-    html, _ = _render("pass.html", store, config, record, histories, new, cleared, rose,
-                      email=False)
-    path = write_page(folder, pass_page_name(pass_id), html)
-    if write_models:
-        write_model_pages(store, config, folder, histories=histories)
-    write_index(store, config, folder)
+    histories = _Histories(store, config)  # each model read once, when first needed
 
     messages = []
     recipients: dict[str, list[FindingRecord]] = {}
@@ -245,6 +257,23 @@ def render_pass_report(
         )
         messages.append(OwnerMessage(address, tuple(models), f"pass:{pass_id}:{address}",
                                      content))
+    # The messages are handed over before any page is written: a reports folder that cannot be
+    # written (full, read-only, permissions) then never costs a message.
+    if before_pages is not None:
+        before_pages(tuple(messages))
+    html, _ = _render("pass.html", store, config, record, histories, new, cleared, rose,
+                      email=False)
+    path = write_page(folder, pass_page_name(pass_id), html)
+    if write_models:
+        # Only the pages of models this pass changed (fits, forecasts, outcomes, findings), and
+        # any page not written yet: the others would come out the same.
+        changed = store.models_changed_in_pass(pass_id)
+        changed |= {f.model for f in (*new, *cleared, *rose) if f.model is not None}
+        names = [name for name in config.models
+                 if name in changed or not (folder / model_page_name(name)).exists()]
+        if names:
+            write_model_pages(store, config, folder, models=names, histories=histories)
+    write_index(store, config, folder)
     return PassReport(pass_id, path, tuple(new), tuple(cleared), tuple(rose), tuple(messages))
 
 
@@ -292,19 +321,31 @@ def notify_pass(
     now: datetime,
     notify: Iterable[int] | None = None,
     deliver: bool = True,
+    stop: threading.Event | None = None,
 ) -> tuple[PassReport, DeliveryReport | None]:
-    """DESIGN.md section 5 step 7 in one call: write the pass's pages; with ``notify.email``,
-    queue one message per recipient in the outbox (dedupe key ``pass:<id>:<recipient>``, so a
-    re-run queues nothing new) and, with ``deliver``, send what is due. ``now`` is the real
+    """DESIGN.md section 5 step 7 in one call: with ``notify.email``, queue one message per
+    recipient in the outbox (dedupe key ``pass:<id>:<recipient>``, so a re-run queues nothing
+    new), then write the pass's pages (a page that cannot be written never costs a message),
+    and, with ``deliver``, send what is due. ``now`` is the real
     clock (the outbox's), ``notify`` the pass's ``findings_to_notify``."""
-    report = render_pass_report(store, config, pass_id, notify=notify)
     email = config.notify.email
+
+    def queue(messages: tuple[OwnerMessage, ...]) -> None:
+        if email is not None and messages:
+            enqueue(store, compose_owner_messages(email, messages, pass_id=pass_id,
+                                                  created_at=now, identity=store.identity))
+
+    try:
+        report = render_pass_report(store, config, pass_id, notify=notify, before_pages=queue)
+    except OSError:
+        # The pages could not be written; the messages are queued. Send them anyway, then
+        # report the pages' failure (the pass records it and tries the pages again).
+        if email is not None and deliver:
+            deliver_outbox(store, email, now=now, stop=stop)
+        raise
     if email is None:
         return report, None
-    if report.messages:
-        enqueue(store, compose_owner_messages(email, report.messages, pass_id=pass_id,
-                                              created_at=now))
-    return report, deliver_outbox(store, email, now=now) if deliver else None
+    return report, deliver_outbox(store, email, now=now, stop=stop) if deliver else None
 
 
 __all__ = ["EMAIL_CHART_CAP", "FORECASTS_CAP", "PassReport", "notify_pass", "render_pass_report"]

@@ -15,8 +15,9 @@ Published (copied from the literature; the tests check them against independent 
 Simulated (by ``tests/simulations/simulate_supf.py``; the table in ``monitor/stats/tables/
 supf_quantiles.json`` records seed, replications, grid and Monte Carlo standard errors):
 
-- the quantiles of the null limit of p·sup-F with 15 % trimming for p = 1 … 10 restrictions,
-  which ``supf_p_value`` and ``supf_critical_value`` interpolate. The table covers upper-tail
+- the quantiles of the null limit of p·sup-F with 15 % trimming for p = 1 … 24 restrictions
+  (1 … 10 from 400,000 draws, 11 … 24 from the first 100,000 of the same seeded draws), which
+  ``supf_p_value`` and ``supf_critical_value`` interpolate. The table covers upper-tail
   probabilities 0.001 … 0.999; beyond it a p-value is clipped to 0.001 or 0.999 and flagged
   (``SupFPValue.bound`` = "below" means the true p-value is below the reported 0.001).
 """

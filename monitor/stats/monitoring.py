@@ -70,6 +70,7 @@ rows after the horizon's ``horizon`` used rows are ignored until the caller star
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import json
 import math
@@ -87,6 +88,8 @@ IntArray = NDArray[np.int64]
 BoolArray = NDArray[np.bool_]
 
 __all__ = [
+    "DEFAULT_BOUNDARY",
+    "ERROR_MODELS",
     "MIN_RESIDUAL_DF",
     "PUBLISHED_A_SQUARED",
     "MonitorResult",
@@ -97,6 +100,7 @@ __all__ = [
     "history_form_crossing_probability",
     "monitor",
     "monitoring_boundary",
+    "monitoring_p_value",
     "post_history_crossing_probability",
     "start_monitoring",
 ]
@@ -105,6 +109,14 @@ __all__ = [
 MIN_RESIDUAL_DF = 4
 #: Default horizon, in multiples of the baseline's rows (DESIGN.md section 6).
 DEFAULT_HORIZON_FACTOR = 2
+#: The boundary family used unless another is asked for (chosen by measured detection delay;
+#: DEVELOPERS.md "Sequential monitoring").
+DEFAULT_BOUNDARY = "weighted-0"
+#: Ways of scaling the forecast errors: "iid" (the baseline's residual standard error) or "ar1"
+#: (its long-run version under the AR(1) autocorrelation measured on the baseline residuals).
+ERROR_MODELS = ("iid", "ar1")
+# The bias-corrected lag-1 autocorrelation used for the long-run scale is clipped to this range.
+_AR1_CLIP = (0.0, 0.9)
 #: Chu, Stinchcombe & White (1996), start-of-history form, infinite horizon: alpha -> a^2.
 #: Published values recalled from memory (MEM, CHECK_VALUES item 5); checks only, not used.
 PUBLISHED_A_SQUARED: dict[float, float] = {0.05: 7.78, 0.10: 6.25}
@@ -144,41 +156,57 @@ def post_history_crossing_probability(a_squared: float) -> float:
 
 
 @dataclass(frozen=True, eq=False)
-class _Table:
-    log_alpha: FloatArray  # (A,) ascending
+class _Family:
     residual_df: IntArray  # (D,) ascending, finite
-    # per residual df: log horizon ratios (H_i,) ascending and a^2 (H_i, A)
+    # per residual df: log horizon ratios (H_i,) ascending and constants (H_i, T), squared scale
     log_ratio: tuple[FloatArray, ...]
-    a_squared: tuple[FloatArray, ...]
-    limit_log_ratio: FloatArray
-    limit_a_squared: FloatArray
+    values: tuple[FloatArray, ...]
+    limit_log_ratio: FloatArray | None  # None: beyond the largest nu its constants are used
+    limit_values: FloatArray | None
+
+
+@dataclass(frozen=True, eq=False)
+class _Table:
+    log_tail: FloatArray  # (T,) ascending log tail probabilities
+    log_alpha: FloatArray  # (A,) the significance grid (its ends bound the allowed range)
+    families: dict[str, _Family]
     max_ratio: float
     metadata: dict[str, Any]
+
+
+def _family(data: dict[str, Any], order: IntArray) -> _Family:
+    cells = sorted(data["finite_sample"], key=lambda cell: cell["residual_df"])
+    limit = data.get("limit")
+    return _Family(
+        residual_df=np.asarray([cell["residual_df"] for cell in cells], dtype=np.int64),
+        log_ratio=tuple(
+            np.log(np.asarray(cell["horizon"], dtype=np.float64) / cell["residual_df"])
+            for cell in cells
+        ),
+        values=tuple(np.asarray(cell["values"], dtype=np.float64)[:, order] for cell in cells),
+        limit_log_ratio=(
+            None if limit is None else np.log(np.asarray(limit["horizon_ratio"], dtype=np.float64))
+        ),
+        limit_values=(
+            None if limit is None else np.asarray(limit["values"], dtype=np.float64)[:, order]
+        ),
+    )
 
 
 @functools.cache
 def _table() -> _Table:
     text = resources.files("monitor.stats").joinpath(_TABLE_RESOURCE).read_text(encoding="utf-8")
     data = json.loads(text)
-    alphas = np.asarray(data["alpha"], dtype=np.float64)
-    cells = sorted(data["finite_sample"], key=lambda cell: cell["residual_df"])
-    dfs = np.asarray([cell["residual_df"] for cell in cells], dtype=np.int64)
-    log_ratio = tuple(
-        np.log(np.asarray(cell["horizon"], dtype=np.float64) / cell["residual_df"])
-        for cell in cells
-    )
-    a_squared = tuple(np.asarray(cell["a_squared"], dtype=np.float64) for cell in cells)
-    limit = data["limit"]
-    limit_log_ratio = np.log(np.asarray(limit["horizon_ratio"], dtype=np.float64))
-    metadata = {key: value for key, value in data.items() if key not in {"finite_sample", "limit"}}
+    tails = np.asarray(data["tail_probabilities"], dtype=np.float64)
+    order = np.argsort(tails)
+    families = {name: _family(family, order) for name, family in data["boundaries"].items()}
+    ratios = [float(np.exp(cell[-1])) for family in families.values() for cell in family.log_ratio]
+    metadata = {key: value for key, value in data.items() if key != "boundaries"}
     return _Table(
-        log_alpha=np.log(alphas),
-        residual_df=dfs,
-        log_ratio=log_ratio,
-        a_squared=a_squared,
-        limit_log_ratio=limit_log_ratio,
-        limit_a_squared=np.asarray(limit["a_squared"], dtype=np.float64),
-        max_ratio=float(np.exp(limit_log_ratio[-1])),
+        log_tail=np.log(tails[order]),
+        log_alpha=np.log(np.asarray(data["alpha"], dtype=np.float64)),
+        families=families,
+        max_ratio=min(ratios) if ratios else 0.0,
         metadata=metadata,
     )
 
@@ -188,16 +216,27 @@ def boundary_table_description() -> dict[str, Any]:
     table = _table()
     return {
         **table.metadata,
-        "residual_df": table.residual_df.tolist(),
+        "boundaries": sorted(table.families),
+        "residual_df": {name: f.residual_df.tolist() for name, f in table.families.items()},
         "max_horizon_ratio": table.max_ratio,
     }
 
 
 def _interpolate_curve(log_ratio: FloatArray, values: FloatArray, at: float) -> FloatArray:
-    """a^2 per alpha at one log horizon ratio, linear in ln(H/nu); clamped below the grid."""
+    """Constants per tail probability at one log horizon ratio, linear in ln(H/nu); clamped."""
     return np.asarray(
         [np.interp(at, log_ratio, values[:, column]) for column in range(values.shape[1])]
     )
+
+
+def _check_boundary(boundary: str) -> _Family:
+    family = _table().families.get(boundary)
+    if family is None:
+        raise ValueError(
+            f"unknown monitoring boundary {boundary!r}; the table has "
+            + ", ".join(sorted(_table().families))
+        )
+    return family
 
 
 def _check_alpha(alpha: float) -> None:
@@ -223,53 +262,112 @@ def _horizon_problem(residual_df: int, horizon: int) -> str | None:
     return None
 
 
-def boundary_constant(alpha: float, residual_df: int, horizon: int) -> float:
-    """The simulated constant a^2 for false-alarm chance ``alpha`` over ``horizon`` new periods.
+def boundary_constant(
+    alpha: float, residual_df: int, horizon: int, boundary: str = DEFAULT_BOUNDARY
+) -> float:
+    """The simulated constant for false-alarm chance ``alpha`` over ``horizon`` new periods.
 
+    On the squared scale: a^2 for "csw", c^2 for "weighted-<gamma>" (module docstring).
     ``residual_df`` is nu = n - p of the baseline fit. Interpolated from the committed table (see
     the module docstring: simulated by tests/simulations/simulate_monitoring.py, none published)
     linearly in ln(alpha), ln(H / nu) and 1 / sqrt(nu). Raises ValueError outside the table.
     """
+    _check_boundary(boundary)
     _check_alpha(alpha)
     if horizon < 1:
         raise ValueError(f"horizon must be at least 1 period, got {horizon}")
     problem = _horizon_problem(residual_df, horizon)
     if problem is not None:
         raise ValueError(problem)
-    return _constant(alpha, residual_df, horizon)
+    return _constant(boundary, alpha, residual_df, horizon)
 
 
 @functools.lru_cache(maxsize=4096)
-def _constant(alpha: float, residual_df: int, horizon: int) -> float:
+def _constants(boundary: str, residual_df: int, horizon: int) -> FloatArray:
+    """Constants at every tabulated tail probability (ascending), for one (nu, H)."""
     table = _table()
+    family = table.families[boundary]
     at = math.log(horizon / residual_df)
-    dfs = table.residual_df
+    dfs = family.residual_df
     if residual_df >= dfs[-1]:
+        near = _interpolate_curve(family.log_ratio[-1], family.values[-1], at)
+        if family.limit_log_ratio is None or family.limit_values is None:
+            return near
         # Between the largest simulated nu and the limit, linear in 1/sqrt(nu) (0 at the limit).
         weight = math.sqrt(float(dfs[-1]) / residual_df)
-        near = _interpolate_curve(table.log_ratio[-1], table.a_squared[-1], at)
-        far = _interpolate_curve(table.limit_log_ratio, table.limit_a_squared, at)
-        per_alpha = weight * near + (1 - weight) * far
-    else:
-        index = int(np.searchsorted(dfs, residual_df))
-        if dfs[index] == residual_df:
-            per_alpha = _interpolate_curve(table.log_ratio[index], table.a_squared[index], at)
-        else:
-            low_df, high_df = float(dfs[index - 1]), float(dfs[index])
-            u, u_low, u_high = (1 / math.sqrt(v) for v in (residual_df, low_df, high_df))
-            weight = (u - u_high) / (u_low - u_high)
-            low = _interpolate_curve(table.log_ratio[index - 1], table.a_squared[index - 1], at)
-            high = _interpolate_curve(table.log_ratio[index], table.a_squared[index], at)
-            per_alpha = weight * low + (1 - weight) * high
-    return float(np.interp(math.log(alpha), table.log_alpha, per_alpha))
+        far = _interpolate_curve(family.limit_log_ratio, family.limit_values, at)
+        return np.asarray(weight * near + (1 - weight) * far)
+    index = int(np.searchsorted(dfs, residual_df))
+    if dfs[index] == residual_df:
+        return _interpolate_curve(family.log_ratio[index], family.values[index], at)
+    low_df, high_df = float(dfs[index - 1]), float(dfs[index])
+    u, u_low, u_high = (1 / math.sqrt(v) for v in (residual_df, low_df, high_df))
+    weight = (u - u_high) / (u_low - u_high)
+    low = _interpolate_curve(family.log_ratio[index - 1], family.values[index - 1], at)
+    high = _interpolate_curve(family.log_ratio[index], family.values[index], at)
+    return np.asarray(weight * low + (1 - weight) * high)
+
+
+def _constant(boundary: str, alpha: float, residual_df: int, horizon: int) -> float:
+    values = _constants(boundary, residual_df, horizon)
+    return float(np.interp(math.log(alpha), _table().log_tail, values))
+
+
+def _tail_probability(
+    boundary: str, residual_df: int, horizon: int, statistic: FloatArray
+) -> tuple[FloatArray, BoolArray]:
+    """P(max_{j <= H} T_j >= statistic) under the null, and where it is extrapolated.
+
+    The inverse of ``_constant``'s interpolation (linear in ln tail probability between the
+    tabulated constants). Beyond the smallest tabulated tail probability ln p is extended
+    linearly in the statistic with the slope between the two smallest decades of the table,
+    floored at 1e-12 (flagged as extrapolated). Below the largest tabulated tail probability the
+    p-value runs linearly up to 1 at the least value the statistic can take.
+    """
+    values = _constants(boundary, residual_df, horizon)  # ascending tails -> descending values
+    log_tail = _table().log_tail
+    reversed_values, reversed_tail = values[::-1], log_tail[::-1]  # ascending values
+    stat = np.asarray(statistic, dtype=np.float64)
+    log_p = np.interp(stat, reversed_values, reversed_tail)
+    top = values[0]
+    decade = int(np.searchsorted(log_tail, log_tail[0] + math.log(10.0)))
+    decade = min(max(decade, 1), len(values) - 1)
+    slope = (log_tail[decade] - log_tail[0]) / max(values[0] - values[decade], 1e-12)
+    beyond = stat > top
+    log_p = np.where(beyond, log_tail[0] - slope * (stat - top), log_p)
+    p = np.exp(np.maximum(log_p, math.log(1e-12)))
+    floor = -math.log1p(1.0 / residual_df) if boundary == "csw" else 0.0
+    last, last_tail = values[-1], float(np.exp(log_tail[-1]))
+    low = stat < last
+    span = max(last - floor, 1e-12)
+    p = np.where(low, last_tail + (1 - last_tail) * np.clip((last - stat) / span, 0, 1), p)
+    return np.asarray(p, dtype=np.float64), np.asarray(beyond, dtype=bool)
+
+
+def monitoring_p_value(
+    statistic: float, residual_df: int, horizon: int, boundary: str = DEFAULT_BOUNDARY
+) -> float:
+    """The null chance that the boundary-normalised statistic reaches ``statistic`` within H.
+
+    ``statistic`` on the squared scale of ``boundary`` (the largest T_j so far; module
+    docstring). The p-value is at most alpha exactly when T exceeds ``boundary_constant``.
+    """
+    _check_boundary(boundary)
+    problem = _horizon_problem(residual_df, horizon)
+    if problem is not None:
+        raise ValueError(problem)
+    p, _ = _tail_probability(boundary, residual_df, horizon, np.asarray([statistic]))
+    return float(p[0])
 
 
 @dataclass(frozen=True, eq=False)
 class MonitoringBoundary:
     """The boundary for one (alpha, nu, H): |Q_j| > values[j - 1] raises an alarm at period j.
 
-    ``values`` (horizon,) = sqrt((nu + j)(a^2 + ln(1 + j / nu))), j = 1..H (Chu, Stinchcombe &
-    White 1996, post-history form); ``a_squared`` simulated for the finite horizon (module docs).
+    ``values`` (horizon,): for "csw" sqrt((nu + j)(a^2 + ln(1 + j / nu))) (Chu, Stinchcombe &
+    White 1996, post-history form), for "weighted-<gamma>" c sqrt(nu) (1 + j/nu) (j/(nu + j))^gamma
+    (Horvath, Huskova, Kokoszka & Steinebach 2004), j = 1..H; ``a_squared`` is the constant on the
+    squared scale (a^2 or c^2), simulated for the finite horizon (module docs).
     """
 
     alpha: float
@@ -278,35 +376,57 @@ class MonitoringBoundary:
     a_squared: float
     values: FloatArray
     source: str
+    boundary: str = DEFAULT_BOUNDARY
 
 
-def monitoring_boundary(alpha: float, residual_df: int, horizon: int) -> MonitoringBoundary:
+def monitoring_boundary(
+    alpha: float, residual_df: int, horizon: int, boundary: str = DEFAULT_BOUNDARY
+) -> MonitoringBoundary:
     """Constant and boundary curve for false-alarm chance ``alpha`` over ``horizon`` periods.
 
     ``residual_df`` = n - p of the baseline fit. Returns a ``MonitoringBoundary`` whose ``values``
     has shape (horizon,). Raises ValueError outside the simulated table.
     """
-    a_squared = boundary_constant(alpha, residual_df, horizon)
+    a_squared = boundary_constant(alpha, residual_df, horizon, boundary)
     return MonitoringBoundary(
         alpha=alpha,
         residual_df=residual_df,
         horizon=horizon,
         a_squared=a_squared,
-        values=_boundary_values(a_squared, residual_df, np.arange(1, horizon + 1)),
+        values=_boundary_values(boundary, a_squared, residual_df, np.arange(1, horizon + 1)),
         source=(
             "simulated finite-sample constant, tests/simulations/simulate_monitoring.py "
             f"(seed {_table().metadata.get('seed')}, {_table().metadata.get('reps')} replications)"
         ),
+        boundary=boundary,
     )
 
 
+def _gamma(boundary: str) -> float:
+    return float(boundary.split("-", 1)[1])
+
+
 def _boundary_values(
-    a_squared: ArrayLike, residual_df: ArrayLike, periods: ArrayLike
+    boundary: str, a_squared: ArrayLike, residual_df: ArrayLike, periods: ArrayLike
 ) -> FloatArray:
     a2 = np.asarray(a_squared, dtype=np.float64)
     nu = np.asarray(residual_df, dtype=np.float64)
     j = np.asarray(periods, dtype=np.float64)
-    return np.asarray(np.sqrt((nu + j) * (a2 + np.log1p(j / nu))), dtype=np.float64)
+    if boundary == "csw":
+        return np.asarray(np.sqrt((nu + j) * (a2 + np.log1p(j / nu))), dtype=np.float64)
+    with np.errstate(divide="ignore"):
+        shape = np.sqrt(nu) * (1.0 + j / nu) * (j / (nu + j)) ** _gamma(boundary)
+    return np.asarray(np.sqrt(a2) * shape, dtype=np.float64)
+
+
+def _scores(
+    boundary: str, q: FloatArray, residual_df: FloatArray, periods: FloatArray
+) -> FloatArray:
+    """The statistic on the boundary's squared scale at each period (T_j of the module docs)."""
+    if boundary == "csw":
+        return np.asarray(q * q / (residual_df + periods) - np.log1p(periods / residual_df))
+    shape = _boundary_values(boundary, 1.0, residual_df, periods)
+    return np.asarray(q * q / np.maximum(shape * shape, 1e-300))
 
 
 # --------------------------------------------------------------------------- baseline
@@ -325,7 +445,11 @@ class MonitorState:
     their coefficients are kept, but forecast errors have no scale to be judged against, so they
     are not monitorable (residual_std_error 0) and ``monitor`` reports no alarm for them. The
     ``internal_*`` fields are the same fit in centred and scaled predictor units, used by the
-    updating recursion for numerical stability.
+    updating recursion for numerical stability. ``autocorrelation`` (s,) is the lag-1
+    autocorrelation of the baseline residuals (0 where not monitorable) and ``error_scale`` (s,)
+    the factor the monitoring statistic's scale is multiplied by: 1 with ``errors="iid"``,
+    sqrt((1 + r) / (1 - r)) with ``errors="ar1"``, r the bias-corrected autocorrelation clipped to
+    [0, 0.9] (the long-run standard deviation of an AR(1); module docstring).
     """
 
     intercept: bool
@@ -342,6 +466,8 @@ class MonitorState:
     internal_scale: FloatArray
     internal_coef: FloatArray
     internal_cov: FloatArray
+    autocorrelation: FloatArray
+    error_scale: FloatArray
 
     @property
     def series_count(self) -> int:
@@ -373,8 +499,14 @@ def start_monitoring(
     *,
     intercept: bool = True,
     names: Sequence[str] | None = None,
+    errors: str = "iid",
 ) -> MonitorState:
     """Fit each series' baseline by least squares and keep what monitoring needs.
+
+    ``errors="ar1"`` scales the monitoring statistic by the long-run standard deviation of AR(1)
+    errors with the autocorrelation measured on the baseline residuals (module docstring), so
+    mildly autocorrelated errors keep roughly the false-alarm rate; "iid" (the default) keeps the
+    exact finite-sample table for independent errors.
 
     ``x_base`` (s, n, k) predictors without an intercept column, ``y_base`` (s, n), ``mask``
     (s, n) bool, True = row used (rows with NaN or infinity are left out too). QR of the centred
@@ -382,6 +514,8 @@ def start_monitoring(
     To start again after the horizon passes (the baseline rolled forward), call this on the new
     baseline's rows; nothing else carries over.
     """
+    if errors not in ERROR_MODELS:
+        raise ValueError(f"errors must be one of {ERROR_MODELS}, got {errors!r}")
     x, y, used = _as_batch(x_base, y_base, mask, "baseline")
     series, rows, k = x.shape
     p = k + int(intercept)
@@ -446,6 +580,9 @@ def start_monitoring(
     estimable = ok.copy()
     ok &= ~exact
     sigma = np.where(ok, np.sqrt(sse / np.maximum(residual_df, 1)), 0.0)
+    autocorrelation, error_scale = _long_run_scale(
+        np.where(used, ym[:, :rows] - fitted[:, :rows], 0.0), used, count, ok, errors
+    )
 
     # Back to original units: slope_j = b_j / scale_j, intercept = b_0 - sum b_j center_j / scale_j.
     transform = np.zeros((series, p, p))
@@ -472,7 +609,33 @@ def start_monitoring(
         internal_scale=scale,
         internal_coef=np.where(zero[:, None], 0.0, coef_internal),
         internal_cov=np.where(zero[:, None, None], 0.0, cov_internal),
+        autocorrelation=autocorrelation,
+        error_scale=error_scale,
     )
+
+
+def _long_run_scale(
+    residuals: FloatArray, used: BoolArray, count: IntArray, ok: BoolArray, errors: str
+) -> tuple[FloatArray, FloatArray]:
+    """Lag-1 autocorrelation of the baseline residuals and the AR(1) long-run scale factor.
+
+    r1 = sum e_t e_{t-1} / sum e_t^2 over consecutive used rows (the residuals have mean 0 with
+    an intercept, so this is the usual sample autocorrelation). The AR(1) long-run variance is
+    sigma^2 (1 + rho) / (1 - rho) (the spectral density at frequency 0 of an AR(1), as in Andrews
+    1991's AR(1) plug-in); rho is estimated by r1 + (1 + 3 r1) / n, the first-order bias
+    correction of the lag-1 autocorrelation of an AR(1) with estimated mean (Kendall 1954, MEM),
+    and clipped to [0, 0.9]: a negative estimate is not used to narrow the boundary.
+    """
+    pairs = used[:, 1:] & used[:, :-1]
+    lagged = np.where(pairs, residuals[:, 1:] * residuals[:, :-1], 0.0).sum(axis=1)
+    energy = (residuals * residuals).sum(axis=1)
+    rho = np.where(ok & (energy > 0), lagged / np.where(energy > 0, energy, 1.0), 0.0)
+    if errors == "iid":
+        return rho, np.ones_like(rho)
+    corrected = rho + (1.0 + 3.0 * rho) / np.maximum(count, 1)
+    clipped = np.clip(corrected, *_AR1_CLIP)
+    scale = np.where(ok, np.sqrt((1.0 + clipped) / (1.0 - clipped)), 1.0)
+    return rho, np.asarray(scale, dtype=np.float64)
 
 
 # --------------------------------------------------------------------------- weekly monitoring
@@ -488,7 +651,8 @@ class MonitorResult:
     including that row, 0 if none), ``break_index`` / ``break_offset`` (the estimated first row of
     the new regime as an index into the new rows and as a 1-based count of monitored periods; -1 /
     0 if no alarm), ``statistic`` (Q at the latest monitored period, signed: positive means actuals
-    above forecasts), ``boundary`` (the boundary at that period; at j = 0 when none),
+    above forecasts), ``boundary`` (the boundary at that period; at j = 0 when none: sqrt(nu a^2)
+    for csw, 0 for a weighted boundary with gamma > 0),
     ``latest_ratio`` (|statistic| / boundary) and ``max_ratio`` (largest |Q_j| / boundary so far;
     above 1 means crossed), ``periods_monitored``, ``horizon``, ``horizon_exhausted`` (the
     horizon's periods have all been monitored: with no alarm the caller rolls the baseline forward
@@ -496,8 +660,12 @@ class MonitorResult:
     ``reason``. Per row (s, m): ``monitored_rows`` (the row entered the statistic),
     ``recursive_residuals`` (w_t, 0 on rows not monitored), ``cusum_path`` (Q after the row,
     carried over rows not monitored, 0 before the first) and ``boundary_path`` (the boundary at
-    the same period count). A series that is not monitorable has zeros, False and -1 throughout,
-    never NaN.
+    the same period count). ``boundary_name`` names the boundary family; ``p_value`` (s,) is the
+    chance under no change that the statistic would reach, within the horizon, the largest value
+    (on the boundary's squared scale) it has reached so far: at most ``alpha`` exactly when
+    ``crossed``; 1 where nothing was monitored. ``p_value_extrapolated`` marks p-values below the
+    table's smallest tail probability (module docstring). A series that is not monitorable has
+    zeros, False and -1 throughout (p-value 1), never NaN.
     """
 
     alpha: float
@@ -520,6 +688,11 @@ class MonitorResult:
     recursive_residuals: FloatArray
     cusum_path: FloatArray
     boundary_path: FloatArray
+    boundary_name: str = DEFAULT_BOUNDARY
+    p_value: FloatArray = dataclasses.field(default_factory=lambda: np.zeros(0))
+    p_value_extrapolated: BoolArray = dataclasses.field(
+        default_factory=lambda: np.zeros(0, dtype=bool)
+    )
 
 
 def _horizons(state: MonitorState, horizon: int | ArrayLike | None) -> IntArray:
@@ -543,6 +716,7 @@ def monitor(
     *,
     alpha: float = 0.05,
     horizon: int | ArrayLike | None = None,
+    boundary: str = DEFAULT_BOUNDARY,
 ) -> MonitorResult:
     """Monitor each series' new rows against its baseline; stateless, recomputed every call.
 
@@ -555,6 +729,7 @@ def monitor(
     of the module docstring (Chu, Stinchcombe & White 1996, post-history form, constants simulated
     for the finite horizon).
     """
+    _check_boundary(boundary)
     _check_alpha(alpha)
     x, y, used = _as_batch(x_new, y_new, mask_new, "new rows")
     series, rows, k = x.shape
@@ -574,7 +749,7 @@ def monitor(
         members = active & (nu == residual_df) & (horizons == periods)
         problem = _horizon_problem(residual_df, periods)
         if problem is None:
-            critical[members] = _constant(alpha, residual_df, periods)
+            critical[members] = _constant(boundary, alpha, residual_df, periods)
         else:
             active &= ~members
             for i in np.flatnonzero(members):
@@ -605,13 +780,13 @@ def monitor(
         coef += gain * error[:, None]
         cov -= np.einsum("si,sj->sij", gain, cov_row)
 
-    sigma = np.where(active, state.residual_std_error, 1.0)
+    sigma = np.where(active, state.residual_std_error * state.error_scale, 1.0)
     nu_safe = np.where(active, nu, 1).astype(np.float64)
     running = np.cumsum(residuals, axis=1)
     cusum = running / sigma[:, None]
     step_numbers = np.arange(1, steps + 1, dtype=np.float64)[None, :]
-    bound = _boundary_values(critical[:, None], nu_safe[:, None], step_numbers)
-    ratio = np.where(live, np.abs(cusum) / bound, 0.0)
+    bound = _boundary_values(boundary, critical[:, None], nu_safe[:, None], step_numbers)
+    ratio = np.where(live, np.abs(cusum) / np.where(bound > 0, bound, 1.0), 0.0)
     crossing = ratio > 1.0
     crossed: BoolArray = np.asarray(crossing.any(axis=1), dtype=bool)
     first_step = np.where(crossed, np.argmax(crossing, axis=1) if steps else 0, -1)
@@ -619,8 +794,21 @@ def monitor(
     last = np.maximum(count - 1, 0)
     has_rows = count > 0
     statistic = np.where(has_rows, cusum[index, last] if steps else 0.0, 0.0)
-    boundary_now = np.where(active, _boundary_values(critical, nu_safe, count), 0.0)
-    latest_ratio = np.where(has_rows, np.abs(statistic) / np.where(active, boundary_now, 1.0), 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        boundary_now = np.where(active, _boundary_values(boundary, critical, nu_safe, count), 0.0)
+    latest_ratio = np.where(
+        has_rows, np.abs(statistic) / np.where(active & has_rows, boundary_now, 1.0), 0.0
+    )
+    scores = np.where(live, _scores(boundary, cusum, nu_safe[:, None], step_numbers), -np.inf)
+    reached = scores.max(axis=1) if steps else np.full(series, -np.inf)
+    p_value = np.ones(series)
+    extrapolated = np.zeros(series, dtype=bool)
+    for residual_df, periods in {(int(a), int(b)) for a, b in pairs}:
+        members = active & has_rows & (nu == residual_df) & (horizons == periods)
+        if members.any():
+            p_value[members], extrapolated[members] = _tail_probability(
+                boundary, residual_df, periods, reached[members]
+            )
 
     # Break start k (0-based step tau = k - 1): argmax of (S_J - S_tau)^2 / (J - tau).
     cumulated = np.concatenate([np.zeros((series, 1)), running], axis=1)
@@ -645,11 +833,12 @@ def monitor(
     if steps:
         gathered = np.take_along_axis(cusum, np.maximum(count_after_row - 1, 0), axis=1)
         cusum_path = np.where(count_after_row > 0, gathered, 0.0)
-    boundary_path = np.where(
-        active[:, None],
-        _boundary_values(critical[:, None], nu_safe[:, None], count_after_row),
-        0.0,
-    )
+    with np.errstate(divide="ignore", invalid="ignore"):
+        boundary_path = np.where(
+            active[:, None],
+            _boundary_values(boundary, critical[:, None], nu_safe[:, None], count_after_row),
+            0.0,
+        )
     return MonitorResult(
         alpha=alpha,
         horizon=horizons,
@@ -671,4 +860,7 @@ def monitor(
         recursive_residuals=row_residuals,
         cusum_path=cusum_path,
         boundary_path=boundary_path,
+        boundary_name=boundary,
+        p_value=p_value,
+        p_value_extrapolated=extrapolated,
     )

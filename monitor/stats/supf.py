@@ -256,7 +256,7 @@ def sup_f_test(
     Andrews (1993) with the critical values as corrected in Andrews (2003); see the module
     docstring for the exact F form, the scanned range and what ``break_index`` means.
     x (n, k) / (s, n, k) or None, y (n,) / (s, n), mask (s, n). p-values exist for trimming
-    0.15 and up to the table's number of restrictions (10); otherwise ``p_value`` is NaN and
+    0.15 and up to the table's number of restrictions (24); otherwise ``p_value`` is NaN and
     ``p_value_note`` says why.
     """
     prep = prepare(x, y, mask, intercept=intercept, names=names)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import errno
 import os
 import sqlite3
 from collections.abc import Iterator, Sequence
@@ -10,6 +11,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Self, TypeVar
 
+from monitor.errors import DatabaseFaultError, PlumblineError
+from monitor.lock import database_path_problem
 from monitor.store.records import StoreError
 from monitor.store.schema import APPLICATION_ID, SCHEMA_VERSION, apply_migrations
 
@@ -41,6 +44,7 @@ class StoreBase:
         self._conn = conn
         self.path = path
         self._depth = 0
+        self.readonly = False  # opened with readonly=True: a write is the program's error
 
     @classmethod
     def open(cls, path: str | Path, *, readonly: bool = False) -> Self:
@@ -50,6 +54,9 @@ class StoreBase:
         migration. Opening a database newer than this program is refused either way.
         """
         db_path = Path(path)
+        problem = database_path_problem(db_path)
+        if problem is not None:
+            raise StoreError(problem)
         if readonly:
             if not db_path.exists():
                 raise StoreError(f"{db_path}: no database here")
@@ -60,14 +67,24 @@ class StoreBase:
                 isolation_level=None,
             )
         else:
-            db_path.parent.mkdir(parents=True, exist_ok=True)
-            conn = sqlite3.connect(db_path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None)
+            try:
+                db_path.parent.mkdir(parents=True, exist_ok=True)
+                conn = sqlite3.connect(
+                    db_path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None
+                )
+            except (OSError, sqlite3.Error) as exc:
+                raise database_fault(exc, db_path) from exc
         try:
             _configure(conn, db_path, readonly=readonly)
+        except sqlite3.Error as exc:
+            conn.close()
+            raise database_fault(exc, db_path) from exc
         except BaseException:
             conn.close()
             raise
-        return cls(conn, db_path)
+        store = cls(conn, db_path)
+        store.readonly = readonly
+        return store
 
     def close(self) -> None:
         self._conn.close()
@@ -91,17 +108,27 @@ class StoreBase:
         the caller's when there is one.
         """
         depth = self._depth
-        self._conn.execute("BEGIN IMMEDIATE" if depth == 0 else f"SAVEPOINT level{depth}")
+        try:
+            self._conn.execute("BEGIN IMMEDIATE" if depth == 0 else f"SAVEPOINT level{depth}")
+        except sqlite3.Error as exc:
+            if self.readonly:
+                raise
+            raise database_fault(exc, self.path) from exc
         self._depth = depth + 1
         try:
             yield
-        except BaseException:
+        except BaseException as exc:
             self._depth = depth
             if depth == 0:
-                self._conn.execute("ROLLBACK")
+                if self._conn.in_transaction:
+                    self._conn.execute("ROLLBACK")
             else:
                 self._conn.execute(f"ROLLBACK TO level{depth}")
                 self._conn.execute(f"RELEASE level{depth}")
+            if isinstance(exc, sqlite3.Error) and depth == 0 and not self.readonly:
+                fault = database_fault(exc, self.path)
+                if isinstance(fault, DatabaseFaultError):
+                    raise fault from exc
             raise
         self._depth = depth
         if depth > 0:
@@ -109,10 +136,20 @@ class StoreBase:
             return
         try:
             self._conn.execute("COMMIT")
-        except BaseException:
+        except BaseException as exc:
             if self._conn.in_transaction:
                 self._conn.execute("ROLLBACK")
+            if isinstance(exc, sqlite3.Error):
+                raise database_fault(exc, self.path) from exc
             raise
+
+    @property
+    def identity(self) -> str:
+        """The database's random identity (32 hex digits, made when it was created)."""
+        row = self._conn.execute("SELECT token FROM database_identity WHERE id = 1").fetchone()
+        if row is None:
+            raise StoreError(f"{self.path}: the database has no identity row")
+        return str(row[0])
 
     def table_counts(self) -> dict[str, int]:
         """Rows per table, for status pages, tests and checking a backup."""
@@ -176,6 +213,55 @@ class StoreBase:
         return value
 
 
+_DAMAGED = ("file is not a database", "database disk image is malformed", "file is encrypted")
+_FULL = ("database or disk is full", "disk is full")
+_READ_ONLY = ("readonly database", "read-only", "unable to open database file")
+
+
+# SQLite reports a write refused for want of space as a plain "disk I/O error" when it happens in
+# the write-ahead log; with less than this much room left, that is what we call it.
+_NEARLY_FULL_BYTES = 1 << 20
+
+
+def _free_bytes(path: Path) -> int:
+    try:
+        info = os.statvfs(path.parent if path.parent.exists() else Path("."))
+    except OSError:
+        return 1 << 62
+    return info.f_bavail * info.f_frsize
+
+
+def database_fault(exc: BaseException, path: Path) -> PlumblineError:
+    """The one-line error for a database that cannot be read or written (exit 3), or, for an
+    SQLite error that is none of those faults, a plain :class:`StoreError` (exit 2)."""
+    text = str(exc)
+    lowered = text.lower()
+    number = getattr(exc, "errno", None)
+    if any(words in lowered for words in _DAMAGED):
+        return DatabaseFaultError(
+            f"the database {path} is damaged ({text}: a garbled or truncated file); nothing was "
+            "changed. Restore it from a backup (the operations guide, 'Backups')"
+        )
+    io_error = isinstance(exc, sqlite3.Error) and "disk i/o error" in lowered
+    full = number in (errno.ENOSPC, errno.EDQUOT) or any(w in lowered for w in _FULL)
+    if full or (io_error and _free_bytes(path) < _NEARLY_FULL_BYTES):
+        return DatabaseFaultError(
+            f"the disk holding the database {path} is full ({text}); the transaction in "
+            "progress was rolled back and nothing is lost. Free some space and run again"
+        )
+    if number == errno.EROFS or number == errno.EACCES or any(w in lowered for w in _READ_ONLY):
+        return DatabaseFaultError(
+            f"the database {path} cannot be written ({text}): a read-only mount or folder, or "
+            "missing permissions. Give Plumbline a writable folder for it and run again"
+        )
+    if io_error:
+        return DatabaseFaultError(
+            f"the disk holding the database {path} reported an I/O error ({text}); the "
+            "transaction in progress was rolled back. Check the disk and run again"
+        )
+    return StoreError(f"the database {path}: {text}")
+
+
 def _configure(conn: sqlite3.Connection, db_path: Path, *, readonly: bool) -> None:
     conn.execute("PRAGMA foreign_keys=ON")
     conn.execute("PRAGMA temp_store=MEMORY")
@@ -205,4 +291,6 @@ def _configure(conn: sqlite3.Connection, db_path: Path, *, readonly: bool) -> No
     apply_migrations(conn, SCHEMA_VERSION)
 
 
-__all__ = ["BUSY_TIMEOUT_SECONDS", "BackupResult", "StoreBase", "fsync_dir"]
+__all__ = [
+    "BUSY_TIMEOUT_SECONDS", "BackupResult", "StoreBase", "database_fault", "fsync_dir",
+]

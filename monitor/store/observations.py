@@ -150,9 +150,19 @@ class FilesMixin(StoreBase):
         row = self._dict("SELECT * FROM files WHERE id = ?", (file_id,))
         return None if row is None else _file_record(row)
 
-    def file_by_sha256(self, sha256: str) -> FileRecord | None:
-        """The file whose rows were ingested with these bytes (outcome ``archived``), or None."""
-        row = self._dict("SELECT * FROM files WHERE sha256 = ? AND outcome = 'archived'", (sha256,))
+    def file_by_sha256(self, sha256: str, feed: str | None = None) -> FileRecord | None:
+        """The file whose rows were ingested with these bytes (outcome ``archived``), or None;
+        with ``feed``, in that feed only (duplicates are judged per feed)."""
+        if feed is None:
+            row = self._dict(
+                "SELECT * FROM files WHERE sha256 = ? AND outcome = 'archived' ORDER BY id",
+                (sha256,),
+            )
+        else:
+            row = self._dict(
+                "SELECT * FROM files WHERE sha256 = ? AND feed = ? AND outcome = 'archived'",
+                (sha256, feed),
+            )
         return None if row is None else _file_record(row)
 
     def files_awaiting_move(self, feed: str) -> list[FileRecord]:
@@ -476,10 +486,11 @@ class FilesMixin(StoreBase):
         if width == 0 or count == 0:
             return np.full((count, len(names)), _NAN)
         full = 8 * width
-        if any(len(blob) != full for blob in blobs):
+        joined = b"".join(blobs)  # no blob is longer than the registry: all full if this is
+        if len(joined) != full * count:
             padding = struct.pack(f"<{width}d", *([_NAN] * width))
-            blobs = [blob + padding[len(blob) :] for blob in blobs]
-        matrix = np.frombuffer(b"".join(blobs), dtype="<f8").reshape(count, width)
+            joined = b"".join(blob + padding[len(blob) :] for blob in blobs)
+        matrix = np.frombuffer(joined, dtype="<f8").reshape(count, width)
         out = np.full((count, len(names)), _NAN)
         for index, name in enumerate(names):
             if name in registry:
@@ -559,7 +570,10 @@ class FilesMixin(StoreBase):
 
     def period_labels(self, feed: str, keys: Iterable[int]) -> dict[int, str]:
         """Each period key's label as first written in the feed."""
-        wanted = {int(key) for key in keys}
+        if isinstance(keys, np.ndarray):
+            wanted = set(np.unique(keys).tolist())
+        else:
+            wanted = {int(key) for key in keys}
         if not wanted:
             return {}
         cursor = self._conn.execute(

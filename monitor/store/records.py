@@ -84,7 +84,10 @@ def _plain(value: Any) -> Any:
 
 def to_json(value: Any) -> str:
     """Compact JSON with NaN written as null (strict JSON has no NaN)."""
-    return json.dumps(_plain(value), separators=(",", ":"), allow_nan=False)
+    try:  # plain Python values with finite numbers: the C encoder alone, no copy
+        return json.dumps(value, separators=(",", ":"), allow_nan=False)
+    except (TypeError, ValueError):
+        return json.dumps(_plain(value), separators=(",", ":"), allow_nan=False)
 
 
 # --------------------------------------------------------------------------- record types

@@ -194,6 +194,19 @@ class ResultsMixin(StoreBase):
         )
         return {_series(key): (last, bool(estimable)) for key, last, estimable in rows}
 
+    def models_changed_in_pass(self, pass_id: int) -> set[str]:
+        """Models that a pass gave fits, forecasts, outcomes or finding changes."""
+        cursor = self._conn.execute(
+            "SELECT model FROM fits WHERE pass_id = ?1 "
+            "UNION SELECT model FROM forecasts WHERE pass_id = ?1 "
+            "UNION SELECT f.model FROM outcomes AS o JOIN forecasts AS f ON f.id = o.forecast_id "
+            "WHERE o.pass_id = ?1 "
+            "UNION SELECT model FROM findings WHERE model IS NOT NULL AND (first_pass_id = ?1 "
+            "OR last_pass_id = ?1 OR last_false_pass_id = ?1 OR cleared_pass_id = ?1)",
+            (pass_id,),
+        )
+        return {row[0] for row in cursor}
+
     # ----------------------------------------------------------------- forecasts and outcomes
 
     def record_forecasts(self, pass_id: int, rows: Sequence[ForecastRow]) -> RecordedForecasts:

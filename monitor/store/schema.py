@@ -290,12 +290,27 @@ _FINDING_NOTES = (
     *_append_only("finding_notes"),
 )
 
+_PER_FEED_DUPLICATES_AND_IDENTITY = (
+    # Duplicates are judged per feed: the same bytes dropped into two feeds are two deliveries.
+    "DROP INDEX files_ingested_sha256",
+    "CREATE UNIQUE INDEX files_ingested_sha256 ON files(feed, sha256) WHERE outcome = 'archived'",
+    # A random identity made when the database is created, mixed into every Message-ID with the
+    # moment of composing, so two instances, a restore or a rebuilt database never reuse one.
+    """CREATE TABLE database_identity (
+        id INTEGER PRIMARY KEY CHECK (id = 1),
+        token TEXT NOT NULL
+    )""",
+    "INSERT INTO database_identity (id, token) VALUES (1, lower(hex(randomblob(16))))",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "passes, files, rejected rows, series, observations", _FILES_AND_OBSERVATIONS),
     Migration(2, "model versions, fits, forecasts, outcomes, baselines", _MODELS_FITS_FORECASTS),
     Migration(3, "findings, digests, the outbox", _FINDINGS_DIGESTS_OUTBOX),
     Migration(4, "calibrated intervals beside forecasts", _CALIBRATED_INTERVALS),
     Migration(5, "owners' notes on findings", _FINDING_NOTES),
+    Migration(6, "duplicate files per feed; the database's random identity",
+              _PER_FEED_DUPLICATES_AND_IDENTITY),
 )
 SCHEMA_VERSION = MIGRATIONS[-1].version
 

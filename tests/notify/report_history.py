@@ -287,6 +287,7 @@ def _monitoring(s: _Series, start: int) -> dict | None:
     return {
         "statistic": float(result.statistic[0]),
         "max_ratio": float(result.max_ratio[0]),
+        "p_value": float(result.p_value[0]),
         "crossed": crossed,
         "periods_monitored": int(result.periods_monitored[0]),
         "break_period": s.periods[start + brk] if crossed and brk >= 0 else None,
@@ -405,15 +406,15 @@ def _findings(store, config, series, baselines, pass_id, week, clock, fit_ids) -
             names.append(ser)
     conditions += autocorrelation_conditions("pick_hours", names, dws, [None] * len(names))
     depot_names = [d for d in DEPOTS if ("delivery_hours", d) in baselines]
-    crossed, ratio, brk, evaluated = [], [], [], []
+    p_values, ratio, brk, evaluated = [], [], [], []
     for depot in depot_names:
         path = _monitoring(series[("delivery_hours", depot)], BASELINE_ROWS)
         evaluated.append(path is not None)
-        crossed.append(bool(path and path["crossed"]))
+        p_values.append(path["p_value"] if path else math.nan)
         ratio.append(path["max_ratio"] if path else math.nan)
         brk.append(path["break_period"] if path else None)
-    conditions += structural_break_conditions("delivery_hours", depot_names, crossed, ratio, brk,
-                                              evaluated)
+    conditions += structural_break_conditions("delivery_hours", depot_names, p_values, ratio,
+                                              brk, evaluated, thresholds)
     plans = [f for f in store.list_forecasts(model="delivery_hours", pass_id=pass_id)]
     flagged = [any(f.extrapolation for f in plans if f.series == d) for d in depot_names]
     first = [next((f.target_period for f in plans if f.series == d and f.extrapolation), None)

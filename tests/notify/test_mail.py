@@ -229,18 +229,24 @@ def test_long_and_non_ascii_headers_survive_folding() -> None:
     assert image.get_filename() == "Ausfälle.png"
 
 
-def test_message_id_follows_the_dedupe_key() -> None:
-    def build(key: str | None, date: datetime) -> str:
+def test_message_id_follows_the_key_the_database_and_the_moment() -> None:
+    def build(key: str | None, date: datetime, identity: str | None = "a" * 32) -> str:
         data = build_message(
             sender=SENDER, recipients=["a@example.org"], subject="s", text="t", html="<p>h</p>",
-            dedupe_key=key, date=date,
+            dedupe_key=key, date=date, identity=identity,
         )
         return str(parse(data)["Message-ID"])
 
     later = NOW + timedelta(hours=3)
-    assert build("pass:7:a@example.org", NOW) == build("pass:7:a@example.org", later)
+    # Composed again at the same moment in the same database: the same id.
+    assert build("pass:7:a@example.org", NOW) == build("pass:7:a@example.org", NOW)
     assert build("pass:7:a@example.org", NOW) != build("pass:8:a@example.org", NOW)
+    # Another database (a second instance, a rebuilt one) or a later composition (after a
+    # restore): another id, although pass numbers and keys repeat.
+    assert build("pass:7:a@example.org", NOW) != build("pass:7:a@example.org", NOW, "b" * 32)
+    assert build("pass:7:a@example.org", NOW) != build("pass:7:a@example.org", later)
     assert build(None, NOW) != build(None, NOW)
+    assert build("pass:7:a@example.org", NOW, None) != build("pass:7:a@example.org", NOW, None)
 
 
 @pytest.mark.parametrize(

@@ -34,6 +34,7 @@ import json
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -152,6 +153,35 @@ def build_table(
     }
 
 
+def extend_table(existing: dict[str, Any], fresh: dict[str, Any]) -> dict[str, Any]:
+    """The existing table with the restrictions it lacks taken from ``fresh``.
+
+    Both must share trimming, grid, seed, chunk size and tail probabilities. Chunk i of a run
+    draws from ``SeedSequence(seed).spawn(...)[i]`` whatever the number of chunks, and component
+    j of a draw is the same whatever ``max_p``, so the fresh run's first components repeat the
+    existing run's first draws; the added restrictions rest on the fresh run's ``reps`` draws,
+    recorded under "extension".
+    """
+    for key in ("trimming", "grid_points", "seed", "chunk", "tail_probabilities"):
+        if existing[key] != fresh[key]:
+            raise SystemExit(f"cannot extend: {key} differs ({existing[key]} vs {fresh[key]})")
+    added = sorted(set(fresh["quantiles"]) - set(existing["quantiles"]), key=int)
+    merged = dict(existing)
+    merged["quantiles"] = {**existing["quantiles"], **{p: fresh["quantiles"][p] for p in added}}
+    merged["standard_errors"] = {
+        **existing["standard_errors"],
+        **{p: fresh["standard_errors"][p] for p in added},
+    }
+    merged["extension"] = {
+        "restrictions": f"{added[0]} to {added[-1]}" if added else "none",
+        "reps": fresh["reps"],
+        "seconds": fresh["seconds"],
+        "numpy_version": fresh["numpy_version"],
+        "note": "the same seeded chunks as the main run, fewer of them",
+    }
+    return merged
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--reps", type=int, default=400_000)
@@ -162,10 +192,17 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--chunk", type=int, default=2000)
     parser.add_argument("--batches", type=int, default=20)
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT)
+    parser.add_argument(
+        "--extend",
+        action="store_true",
+        help="keep the restrictions already in --out and add the missing ones up to --max-p",
+    )
     args = parser.parse_args(argv)
     table = build_table(
         args.reps, args.grid, args.max_p, args.trimming, args.seed, args.chunk, args.batches
     )
+    if args.extend:
+        table = extend_table(json.loads(args.out.read_text(encoding="utf-8")), table)
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps(table, indent=1) + "\n", encoding="utf-8")
     print(f"wrote {args.out} in {table['seconds']} s", file=sys.stderr)

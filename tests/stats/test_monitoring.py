@@ -140,7 +140,7 @@ def test_table_at_horizon_one_matches_student_t() -> None:
             density = 2 * stats.t.pdf(t_quantile, residual_df)
             quantile_se = math.sqrt(alpha * (1 - alpha) / reps) / density
             a_squared_se = 2 * t_quantile * quantile_se / (residual_df + 1)
-            simulated = mon.boundary_constant(alpha, residual_df, 1)
+            simulated = mon.boundary_constant(alpha, residual_df, 1, "csw")
             assert simulated == pytest.approx(exact, abs=4.5 * a_squared_se)
             checked += 1
     assert checked >= 100
@@ -152,17 +152,17 @@ def test_finite_horizon_constants_sit_below_the_infinite_horizon_ones() -> None:
     for alpha in (0.01, 0.025, 0.05, 0.10):
         previous = 0.0
         for ratio in (0.5, 1, 2, 3, 4, 6, 10, 12):
-            limit = mon.boundary_constant(alpha, 10**6, ratio * 10**6)
+            limit = mon.boundary_constant(alpha, 10**6, ratio * 10**6, "csw")
             assert previous < limit < -2 * math.log(alpha)
             previous = limit
     # So over the default horizon (H = 2n, here nu = 50, H = 100) the infinite-horizon constant
     # -2 ln 0.05 = 5.991 gives under 1 % and CSW's 7.78 (MEM) under 0.5 % (CHECK_VALUES item 5).
-    assert mon.boundary_constant(0.01, 50, 100) < 5.991
-    assert mon.boundary_constant(0.005, 50, 100) < 7.78
+    assert mon.boundary_constant(0.01, 50, 100, "csw") < 5.991
+    assert mon.boundary_constant(0.005, 50, 100, "csw") < 7.78
     for residual_df in (4, 10, 20, 50, 100, 500):
         for horizon_ratio in (1, 2, 3):
             values = [
-                mon.boundary_constant(a, residual_df, horizon_ratio * residual_df)
+                mon.boundary_constant(a, residual_df, horizon_ratio * residual_df, "csw")
                 for a in (0.01, 0.025, 0.05, 0.10)
             ]
             assert values == sorted(values, reverse=True)
@@ -172,10 +172,10 @@ def test_small_baselines_need_larger_constants() -> None:
     # sigma_hat from few rows has heavy (Student-type) tails: at H = 2 nu the constant falls as nu
     # grows and approaches the large-sample limit (within 0.1 at nu = 500; Monte Carlo error of
     # a cell is about 0.03).
-    constants = [mon.boundary_constant(0.05, nu, 2 * nu) for nu in (4, 10, 20, 50)]
+    constants = [mon.boundary_constant(0.05, nu, 2 * nu, "csw") for nu in (4, 10, 20, 50)]
     assert constants == sorted(constants, reverse=True)
-    limit = mon.boundary_constant(0.05, 10**7, 2 * 10**7)
-    assert mon.boundary_constant(0.05, 500, 1000) == pytest.approx(limit, abs=0.1)
+    limit = mon.boundary_constant(0.05, 10**7, 2 * 10**7, "csw")
+    assert mon.boundary_constant(0.05, 500, 1000, "csw") == pytest.approx(limit, abs=0.1)
 
 
 def test_table_cell_reproduced_with_a_fresh_seed() -> None:
@@ -185,17 +185,19 @@ def test_table_cell_reproduced_with_a_fresh_seed() -> None:
     reps = 20_000
     sup_values = script.finite_sample_sup(50, [100], reps, np.random.default_rng(4242))[:, 0]
     for alpha in (0.01, 0.05, 0.10):
-        rate = float(np.mean(sup_values > mon.boundary_constant(alpha, 50, 100)))
+        rate = float(np.mean(sup_values > mon.boundary_constant(alpha, 50, 100, "csw")))
         assert rate == pytest.approx(alpha, abs=4 * math.sqrt(alpha * (1 - alpha) / reps))
 
 
 def test_interpolation_between_grid_points() -> None:
-    low = mon.boundary_constant(0.01, 50, 100)
-    high = mon.boundary_constant(0.025, 50, 100)
-    assert high < mon.boundary_constant(0.02, 50, 100) < low
-    between_df = mon.boundary_constant(0.05, 37, 74)
-    assert mon.boundary_constant(0.05, 40, 80) < between_df < mon.boundary_constant(0.05, 35, 70)
-    boundary = mon.monitoring_boundary(0.05, 50, 104)
+    low = mon.boundary_constant(0.01, 50, 100, "csw")
+    high = mon.boundary_constant(0.025, 50, 100, "csw")
+    assert high < mon.boundary_constant(0.02, 50, 100, "csw") < low
+    between_df = mon.boundary_constant(0.05, 37, 74, "csw")
+    assert mon.boundary_constant(0.05, 40, 80, "csw") < between_df < mon.boundary_constant(
+        0.05, 35, 70, "csw"
+    )
+    boundary = mon.monitoring_boundary(0.05, 50, 104, "csw")
     j = np.arange(1, 105)
     expected = np.sqrt((50 + j) * (boundary.a_squared + np.log1p(j / 50)))
     np.testing.assert_allclose(boundary.values, expected, rtol=1e-12)
@@ -220,7 +222,8 @@ def test_recursive_residuals_and_baseline_match_statsmodels() -> None:
     n, m = 30, 25
     x, y = _stable_series(rng, 3, n + m, predictors=2)
     state = mon.start_monitoring(x[:, :n], y[:, :n], intercept=True)
-    result = mon.monitor(state, x[:, n:], y[:, n:], horizon=m)
+    result = mon.monitor(state, x[:, n:], y[:, n:], horizon=m, boundary="csw")
+    weighted = mon.monitor(state, x[:, n:], y[:, n:], horizon=m, boundary="weighted-0.25")
     for i in range(3):
         design = sm.add_constant(x[i])
         baseline = sm.OLS(y[i, :n], design[:n]).fit()
@@ -238,6 +241,11 @@ def test_recursive_residuals_and_baseline_match_statsmodels() -> None:
         nu = n - 3
         expected_bound = np.sqrt((nu + j) * (result.critical_value[i] + np.log1p(j / nu)))
         np.testing.assert_allclose(result.boundary_path[i], expected_bound, rtol=1e-12)
+        # Horvath et al. (2004) weighted boundary, gamma = 0.25, typed in from its definition
+        c = math.sqrt(weighted.critical_value[i])
+        expected_weighted = c * math.sqrt(nu) * (1 + j / nu) * (j / (nu + j)) ** 0.25
+        np.testing.assert_allclose(weighted.boundary_path[i], expected_weighted, rtol=1e-12)
+        np.testing.assert_allclose(weighted.cusum_path[i], expected_path, rtol=1e-9)
 
 
 def test_no_intercept_and_large_offsets() -> None:
@@ -419,12 +427,15 @@ def test_no_new_rows_and_all_rows_masked() -> None:
     rng = np.random.default_rng(14)
     x, y = _stable_series(rng, 2, 30)
     state = mon.start_monitoring(x, y)
-    empty = mon.monitor(state, np.zeros((2, 0, 1)), np.zeros((2, 0)))
+    empty = mon.monitor(state, np.zeros((2, 0, 1)), np.zeros((2, 0)), boundary="csw")
     assert list(empty.periods_monitored) == [0, 0]
     assert not empty.crossed.any() and not empty.horizon_exhausted.any()
     assert list(empty.break_index) == [-1, -1]
     assert empty.statistic.tolist() == [0.0, 0.0]
     assert np.all(empty.boundary > 0)  # the boundary at j = 0, sqrt(nu a^2)
+    assert empty.p_value.tolist() == [1.0, 1.0]
+    weighted = mon.monitor(state, np.zeros((2, 0, 1)), np.zeros((2, 0)), boundary="weighted-0.25")
+    assert weighted.boundary.tolist() == [0.0, 0.0]  # c sqrt(nu) (j / (nu + j))^gamma at j = 0
     x_new, y_new = _stable_series(rng, 2, 5)
     none_used = mon.monitor(state, x_new, y_new, np.zeros((2, 5), dtype=bool))
     assert list(none_used.periods_monitored) == [0, 0]
@@ -470,3 +481,184 @@ def test_mean_only_model_recursive_residuals_by_hand() -> None:
     expected = (y[0, n:] - previous_mean) * np.sqrt((t - 1) / t)
     np.testing.assert_allclose(result.recursive_residuals[0], expected, rtol=1e-10)
     assert state.residual_std_error[0] == pytest.approx(float(np.std(y[0, :n], ddof=1)))
+
+
+# --------------------------------------------------------------------------- weighted boundaries
+
+
+WEIGHTED = ("weighted-0", "weighted-0.25", "weighted-0.45")
+
+
+@pytest.mark.parametrize("boundary", WEIGHTED)
+def test_weighted_boundaries_at_horizon_one_match_student_t(boundary: str) -> None:
+    # With H = 1 the weighted boundary c sqrt(nu) (1 + 1/nu) (1/(nu + 1))^gamma (Horvath, Huskova,
+    # Kokoszka & Steinebach 2004) is crossed when |t_nu| exceeds it, so on the squared scale
+    # c^2 = t_{nu, 1 - alpha/2}^2 / [nu (1 + 1/nu)^2 (1/(nu + 1))^(2 gamma)] exactly (scipy's t).
+    # Tolerance 4.5 delta-method standard errors of the simulated quantile.
+    gamma = float(boundary.split("-")[1])
+    reps = mon.boundary_table_description()["reps"]
+    for residual_df in range(4, 30):
+        weight = 1.0 / (residual_df * (1 + 1 / residual_df) ** 2
+                        * (1 / (residual_df + 1)) ** (2 * gamma))
+        for alpha in (0.01, 0.05, 0.10):
+            t_quantile = stats.t.isf(alpha / 2, residual_df)
+            density = 2 * stats.t.pdf(t_quantile, residual_df)
+            quantile_se = math.sqrt(alpha * (1 - alpha) / reps) / density
+            simulated = mon.boundary_constant(alpha, residual_df, 1, boundary)
+            assert simulated == pytest.approx(
+                t_quantile**2 * weight, abs=4.5 * 2 * t_quantile * quantile_se * weight
+            )
+
+
+def test_linear_boundary_over_an_unbounded_horizon_is_kolmogorov() -> None:
+    # gamma = 0: |W(s)| / (1 + s) is a Brownian bridge in u = s / (1 + s), so over s in [0, inf)
+    # the constant c is the Kolmogorov quantile (scipy's kstwobign: 1.6276 / 1.3581 / 1.2238 at
+    # 1 / 5 / 10 %). The committed self-check (100,000 paths, t <= 1e5) and a fresh 20,000-path
+    # run of the simulation machinery (t <= 1e6, 2 % steps, seed 12) both agree within 4 Monte
+    # Carlo standard errors plus 0.002 for the truncated horizon and coarse steps.
+    check = mon.boundary_table_description()["self_check"]["linear_boundary_unbounded_horizon"]
+    for row in check:
+        assert row["kolmogorov_c"] == pytest.approx(stats.kstwobign.isf(row["alpha"]), abs=1e-4)
+        assert row["simulated_c"] == pytest.approx(row["kolmogorov_c"], abs=0.02)
+    script = _simulation_script()
+    times, nodes = script.geometric_grid(1.0, [1e6], 0.02)
+    reps = 20_000
+    sample = script.continuous_sup(times, nodes, True, reps, np.random.default_rng(12),
+                                   boundary="weighted-0")[:, 0]
+    for alpha in (0.05, 0.10):
+        rate = float(np.mean(sample > stats.kstwobign.isf(alpha) ** 2))
+        assert rate == pytest.approx(alpha, abs=4 * math.sqrt(alpha * (1 - alpha) / reps) + 0.002)
+
+
+@pytest.mark.parametrize("boundary", ["csw", *WEIGHTED])
+def test_false_alarm_rate_of_every_boundary(boundary: str) -> None:
+    # 5,000 stable series (seed 2027), n = 52, default horizon 104: within 4 binomial standard
+    # errors of alpha = 0.05.
+    rng = np.random.default_rng(2027)
+    x, y = _stable_series(rng, 5000, 156)
+    state = mon.start_monitoring(x[:, :52], y[:, :52])
+    result = mon.monitor(state, x[:, 52:], y[:, 52:], alpha=0.05, boundary=boundary)
+    rate = float(result.crossed.mean())
+    print(f"{boundary}: false-alarm rate {rate:.4f}")
+    assert abs(rate - 0.05) <= 4 * math.sqrt(0.05 * 0.95 / 5000)
+    assert _all_finite(result)
+
+
+def test_weighted_boundary_catches_an_early_change_sooner() -> None:
+    # The reason for the weighted family: right after the baseline the CSW boundary is wide. A
+    # level shift of 2 error SDs from the first monitored period (2,000 series, seed 31).
+    rng = np.random.default_rng(31)
+    x, y = _stable_series(rng, 2000, 156)
+    y[:, 52:] += 20.0
+    state = mon.start_monitoring(x[:, :52], y[:, :52])
+    delays = {}
+    for boundary in ("csw", "weighted-0", "weighted-0.25"):
+        result = mon.monitor(state, x[:, 52:], y[:, 52:], alpha=0.05, boundary=boundary)
+        assert result.crossed.mean() > 0.99
+        delays[boundary] = float(np.median(result.detection_delay[result.crossed]))
+    print(f"median delays: {delays}")
+    assert delays["weighted-0.25"] < delays["weighted-0"] < delays["csw"]
+    assert mon.DEFAULT_BOUNDARY == "weighted-0"  # chosen by delay: DEVELOPERS.md
+
+
+# --------------------------------------------------------------------------- p-values
+
+
+@pytest.mark.parametrize("boundary", ["csw", *WEIGHTED])
+def test_p_value_is_below_alpha_exactly_when_crossed(boundary: str) -> None:
+    rng = np.random.default_rng(41)
+    x, y = _stable_series(rng, 3000, 120, mean=60.0)
+    y[:1000, 70:] += 12.0  # a third of the series change
+    state = mon.start_monitoring(x[:, :40], y[:, :40])
+    for alpha in (0.01, 0.05, 0.10):
+        result = mon.monitor(state, x[:, 40:], y[:, 40:], alpha=alpha, boundary=boundary)
+        np.testing.assert_array_equal(result.p_value < alpha, result.crossed)
+        assert np.all((result.p_value > 0) & (result.p_value <= 1))
+    early = mon.monitor(state, x[:, 40:45], y[:, 40:45], alpha=0.05, boundary=boundary)
+    later = mon.monitor(state, x[:, 40:], y[:, 40:], alpha=0.05, boundary=boundary)
+    assert np.all(later.p_value <= early.p_value + 1e-12)  # the running maximum only grows
+
+
+@pytest.mark.parametrize("boundary", ["csw", "weighted-0.25"])
+def test_p_values_are_uniform_under_no_change(boundary: str) -> None:
+    # A fresh draw of the finite-sample statistic (nu = 50, H = 100, 40,000 paths, seed 4343)
+    # through the p-value interpolation: P(p <= u) = u within 4 binomial standard errors plus
+    # the table's own Monte Carlo error, from u = 0.001 to 0.5.
+    script = _simulation_script()
+    reps = 40_000
+    draws = script.finite_sample_sups(50, [100], reps, np.random.default_rng(4343),
+                                      (boundary,))[boundary][:, 0]
+    p, _ = mon._tail_probability(boundary, 50, 100, draws.astype(np.float64))
+    table_reps = mon.boundary_table_description()["reps"]
+    for u in (0.001, 0.01, 0.05, 0.2, 0.5):
+        se = math.sqrt(u * (1 - u) / reps) + math.sqrt(u * (1 - u) / table_reps)
+        assert float(np.mean(p <= u)) == pytest.approx(u, abs=4 * se)
+
+
+def test_monitoring_p_value_entry_point() -> None:
+    a2 = mon.boundary_constant(0.05, 50, 100, "csw")
+    assert mon.monitoring_p_value(a2, 50, 100, "csw") == pytest.approx(0.05, rel=1e-9)
+    c2 = mon.boundary_constant(0.01, 50, 100)
+    assert mon.monitoring_p_value(c2, 50, 100) == pytest.approx(0.01, rel=1e-9)
+    assert mon.monitoring_p_value(1e3, 50, 100) < 1e-4  # beyond the table: extrapolated
+    assert mon.monitoring_p_value(-5.0, 50, 100, "csw") == 1.0
+    with pytest.raises(ValueError, match="unknown monitoring boundary"):
+        mon.monitoring_p_value(1.0, 50, 100, "straight")
+
+
+# --------------------------------------------------------------------------- autocorrelated errors
+
+
+def _ar1_series(
+    rng: np.random.Generator, series: int, rows: int, rho: float
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    x = rng.normal(100.0, 20.0, (series, rows, 1))
+    e = np.empty((series, rows))
+    e[:, 0] = rng.standard_normal(series) * 10.0
+    innovations = rng.standard_normal((series, rows)) * 10.0 * math.sqrt(1 - rho**2)
+    for t in range(1, rows):
+        e[:, t] = rho * e[:, t - 1] + innovations[:, t]
+    return x, 5.0 + 0.8 * x[:, :, 0] + e
+
+
+def test_baseline_autocorrelation_matches_statsmodels() -> None:
+    # The lag-1 autocorrelation of the baseline residuals against statsmodels' acf of the OLS
+    # residuals (a reference library), and the AR(1) long-run factor sqrt((1 + r)/(1 - r)) with
+    # r = r1 + (1 + 3 r1)/n clipped to [0, 0.9] (Kendall 1954 bias correction, MEM).
+    import statsmodels.api as sm
+    from statsmodels.tsa.stattools import acf
+
+    rng = np.random.default_rng(51)
+    x, y = _ar1_series(rng, 6, 52, 0.4)
+    state = mon.start_monitoring(x, y, errors="ar1")
+    for i in range(6):
+        residuals = sm.OLS(y[i], sm.add_constant(x[i, :, 0])).fit().resid
+        r1 = acf(residuals, nlags=1, fft=False)[1]
+        assert state.autocorrelation[i] == pytest.approx(r1, rel=1e-9)
+        r = min(max(r1 + (1 + 3 * r1) / 52, 0.0), 0.9)
+        assert state.error_scale[i] == pytest.approx(math.sqrt((1 + r) / (1 - r)), rel=1e-9)
+    plain = mon.start_monitoring(x, y)
+    np.testing.assert_array_equal(plain.error_scale, 1.0)
+    with pytest.raises(ValueError, match="errors"):
+        mon.start_monitoring(x, y, errors="garch")
+
+
+def test_long_run_scale_restores_most_of_the_false_alarm_rate() -> None:
+    # AR(1) errors with rho = 0.3 (4,000 series, seed 53, n = 52, H = 104, alpha = 0.05): the
+    # independent-errors scale alarms on about 20 % of stable series, the AR(1) long-run scale on
+    # about 6-7 % (measured; the remaining excess is the noise of r from 52 rows), and on
+    # independent errors the long-run scale stays at or below alpha.
+    rng = np.random.default_rng(53)
+    x, y = _ar1_series(rng, 4000, 156, 0.3)
+    rates = {}
+    for errors in ("iid", "ar1"):
+        state = mon.start_monitoring(x[:, :52], y[:, :52], errors=errors)
+        rates[errors] = float(mon.monitor(state, x[:, 52:], y[:, 52:]).crossed.mean())
+    x0, y0 = _ar1_series(rng, 4000, 156, 0.0)
+    state = mon.start_monitoring(x0[:, :52], y0[:, :52], errors="ar1")
+    rates["ar1 on independent errors"] = float(mon.monitor(state, x0[:, 52:], y0[:, 52:])
+                                               .crossed.mean())
+    print(f"false-alarm rates with AR(1) rho 0.3: {rates}")
+    assert rates["iid"] > 0.14
+    assert rates["ar1"] < 0.09
+    assert rates["ar1 on independent errors"] <= 0.05 + 4 * math.sqrt(0.05 * 0.95 / 4000)
