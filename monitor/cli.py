@@ -20,26 +20,31 @@ from monitor import __version__
 from monitor.errors import DatabaseFaultError, PlumblineError
 from monitor.text import printable
 
-# Module names under monitor.commands, in the order ``plumbline --help`` lists them.
-COMMAND_MODULES: tuple[str, ...] = (
-    "demo",
-    "one_pass",
-    "run",
-    "status",
-    "note",
-    "ack",
-    "rebaseline",
-    "check",
-    "fit",
-    "breaks",
-    "schema",
-    "backup",
-    "audit",
-    "digest",
-)
+# Each command and the module under monitor.commands that registers it, in the order
+# ``plumbline --help`` lists them. Only the module of the command given is imported, so a light
+# command (``--version``, ``status``, ``ack``, ``check``, ``schema``) never pays for the numerical
+# stack the heavy ones need; ``tests/test_cli_startup.py`` checks this table against the modules.
+COMMANDS: dict[str, str] = {
+    "demo": "demo",
+    "pass": "one_pass",
+    "run": "run",
+    "status": "status",
+    "note": "note",
+    "ack": "ack",
+    "rebaseline": "rebaseline",
+    "check": "check",
+    "fit": "fit",
+    "breaks": "breaks",
+    "schema": "schema",
+    "backup": "backup",
+    "audit": "audit",
+    "forecasts": "forecasts",
+    "digest": "digest",
+}
+COMMAND_MODULES: tuple[str, ...] = tuple(dict.fromkeys(COMMANDS.values()))
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(modules: Sequence[str] = COMMAND_MODULES) -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="plumbline",
         description="Monitor recurring linear-regression forecasts: refit, forecast with "
@@ -47,10 +52,24 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"plumbline {__version__}")
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for name in COMMAND_MODULES:
+    for name in modules:
         module = importlib.import_module(f"monitor.commands.{name}")
         module.register(subparsers)
     return parser
+
+
+def modules_needed(argv: Sequence[str]) -> tuple[str, ...]:
+    """The command modules to import for ``argv``: the one of the command named, none for
+    ``--version`` alone, every one for help or an unknown command (argparse lists them)."""
+    for arg in argv:
+        if arg in ("-h", "--help"):
+            return COMMAND_MODULES
+        if arg == "--version":
+            return ()
+        if arg.startswith("-"):
+            continue
+        return (COMMANDS[arg],) if arg in COMMANDS else COMMAND_MODULES
+    return COMMAND_MODULES
 
 
 class EscapedOutput:
@@ -80,9 +99,10 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 def _main(argv: Sequence[str] | None) -> int:
-    parser = build_parser()
+    arguments = sys.argv[1:] if argv is None else list(argv)
+    parser = build_parser(modules_needed(arguments))
     try:
-        args = parser.parse_args(argv)
+        args = parser.parse_args(arguments)
     except SystemExit as exc:  # argparse exits 2 on bad usage, 0 on --help
         return int(exc.code or 0)
     if getattr(args, "handler", None) is None:

@@ -474,7 +474,7 @@ class MonitorDaemon:
         }
         if digest is not None and digest_schedule is not None:
             self._jobs["digest"] = (self._trigger("schedule.digest", digest_schedule), digest)
-        self._lock = DatabaseLock(self.database)
+        self._lock = DatabaseLock(self.database, role="daemon")
         self._scheduler: _WakefulScheduler | None = None
         self._stop_reason = "request"
         self._signal_received: int | None = None

@@ -728,11 +728,17 @@ def stale_feed_condition(
         FindingKey(FindingKind.STALE_FEED, None, None, feed), overdue > limit,
         FindingKind.STALE_FEED.declaration.severity,
         days, None, latest_period_text,
-        f"Feed {feed} has delivered nothing newer than {latest_period_text} "
-        f"({days:.0f} days before now, more than 1.5 cadences); forecasts for its models are "
-        "not being scored or refreshed.",
+        f"Feed {feed} has delivered nothing newer than {latest_period_text}: {days:.0f} days "
+        f"before the business clock of the pass that checked it ({as_of:%Y-%m-%d}), more than "
+        f"{STALE_CADENCES:g} × its cadence of {_cadence_text(cadence)}; forecasts for its models "
+        "are not being scored or refreshed.",
         "Check the upstream export that drops files into the inbox.",
     )
+
+
+def _cadence_text(cadence: timedelta) -> str:
+    days = cadence.total_seconds() / 86400
+    return f"{days:g} days" if days >= 1 else f"{cadence.total_seconds() / 3600:g} hours"
 
 
 @dataclass(frozen=True)

@@ -85,9 +85,10 @@ class DatabaseLock:
     holder wrote it, the holder's process id. It never waits for the other process.
     """
 
-    def __init__(self, database: str | os.PathLike[str]) -> None:
+    def __init__(self, database: str | os.PathLike[str], *, role: str | None = None) -> None:
         self.database = Path(database)
         self.path = lock_path_for(self.database)
+        self.role = role  # written after the pid: "daemon" for plumbline run
         self._fd: int | None = None
 
     @property
@@ -130,9 +131,10 @@ class DatabaseLock:
             raise PlumblineError(f"cannot lock {self.path}: {exc.strerror or exc}") from exc
         # Informational: who holds it. Written only once the flock is ours, and best effort: on
         # a full disk the lock still holds, and the database's own write reports the fault.
+        stamp = f"{os.getpid()}" if self.role is None else f"{os.getpid()} {self.role}"
         with contextlib.suppress(OSError):
             os.ftruncate(fd, 0)
-            os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
+            os.pwrite(fd, f"{stamp}\n".encode("ascii"), 0)
         self._fd = fd
 
     def release(self) -> None:
@@ -173,7 +175,33 @@ def _read_holder(fd: int) -> int | None:
         text = os.pread(fd, 32, 0).decode("ascii", errors="replace").strip()
     except OSError:
         return None
-    return int(text) if text.isdigit() else None
+    first = text.split()[0] if text else ""
+    return int(first) if first.isdigit() else None
 
 
-__all__ = ["LOCK_SUFFIX", "DatabaseLock", "database_path_problem", "lock_path_for"]
+def running_daemon(database: str | os.PathLike[str]) -> int | None:
+    """The process id of the ``plumbline run`` daemon holding the database's lock, or None.
+
+    Read from the lock file without locking (a reader must never make a writer fail): the
+    daemon writes ``PID daemon`` there and clears it on release. A daemon killed with SIGKILL
+    leaves its line behind, so the process must also still exist; a reused process id is the
+    one way this can be wrong, and then only until the next daemon or pass takes the lock.
+    """
+    try:
+        tokens = lock_path_for(database).read_text(encoding="ascii", errors="replace").split()
+    except OSError:
+        return None
+    if len(tokens) != 2 or tokens[1] != "daemon" or not tokens[0].isdigit():
+        return None
+    pid = int(tokens[0])
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return None
+    except PermissionError:
+        return pid  # it exists, under another user
+    return pid
+
+
+__all__ = ["LOCK_SUFFIX", "DatabaseLock", "database_path_problem", "lock_path_for",
+           "running_daemon"]

@@ -54,6 +54,7 @@ from monitor.calibration import calibrations
 from monitor.compute import Compute, compute_for
 from monitor.config import Feed, Model, PlumblineConfig, model_signature, models_of_feed
 from monitor.errors import ClockRefusedError, ComputeLostError, DatabaseFaultError
+from monitor.exports import ExportedFile, export_forecasts
 from monitor.findings import (
     DIAGNOSTIC_MIN_ROWS,
     Condition,
@@ -73,7 +74,14 @@ from monitor.findings import (
     structural_break_conditions,
     weak_fit_conditions,
 )
-from monitor.ingest import FileReport, IngestSpec, ingest_feed, inspect_inbox
+from monitor.ingest import (
+    FileReport,
+    InboxNote,
+    IngestSpec,
+    inbox_notes,
+    ingest_feed,
+    inspect_inbox,
+)
 from monitor.stats.accuracy import accuracy_batch
 from monitor.stats.coverage import audit_batch
 from monitor.stats.diagnostics import (
@@ -131,6 +139,8 @@ class PassReport:
     findings_raised: tuple[int, ...] = ()
     findings_cleared: tuple[int, ...] = ()
     findings_to_notify: tuple[int, ...] = ()
+    exports: tuple[ExportedFile, ...] = ()
+    not_taken: tuple[InboxNote, ...] = ()  # files left in an inbox, why, and what to do
     skipped: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     stopped_early: str | None = None
@@ -138,6 +148,17 @@ class PassReport:
     @property
     def nothing_to_do(self) -> bool:
         return self.pass_id is None
+
+    @property
+    def files_taken(self) -> tuple[FileReport, ...]:
+        """Files whose rows were taken (archived, or empty): never a refused file."""
+        return tuple(f for f in self.files
+                     if not (f.whole_file_rejected or f.duplicate))
+
+    @property
+    def files_refused(self) -> tuple[FileReport, ...]:
+        """Files refused as a whole or as a duplicate: moved to rejected/, nothing taken."""
+        return tuple(f for f in self.files if f.whole_file_rejected or f.duplicate)
 
 
 class PassNotifier(Protocol):
@@ -205,6 +226,7 @@ class _PassState:
     compute: Compute
     compute_lost: str | None = None  # why the analysis cluster stopped the pass
     skipped: list[str] = field(default_factory=list)
+    not_taken: list[InboxNote] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
     conditions: list[tuple[Condition, int]] = field(default_factory=list)  # (condition, clear)
     feed_problems: dict[str, list[str]] = field(default_factory=dict)  # files stuck, per feed
@@ -313,7 +335,8 @@ def _run(
         and latest.counts.get("notified", True)
         and not files_waiting(store, config, real_clock)
     ):
-        return PassReport(None, as_of, timings={"total": time.perf_counter() - started})
+        return PassReport(None, as_of, not_taken=tuple(files_not_taken(config, real_clock)),
+                          timings={"total": time.perf_counter() - started})
 
     compute.connect()  # an unreachable cluster stops the pass here, before anything is recorded
     record = store.record_pass(as_of=as_of, started_at=real_clock())
@@ -335,9 +358,11 @@ def _run(
         # The mark moves only once the findings of what was analysed are recorded: a pass
         # stopped before that leaves the series to be analysed again by the next one.
         new_mark = analysed_mark
+        exported = _stage(state, "export", lambda: _export(state))
     except _Stopped as stop_at:
         stopped = stop_at.stage
         raised, cleared, notify = (), (), ()
+        exported = []
     report = PassReport(
         pass_id=record.id,
         as_of=as_of,
@@ -349,6 +374,8 @@ def _run(
         findings_raised=tuple(raised),
         findings_cleared=tuple(cleared),
         findings_to_notify=tuple(notify),
+        exports=tuple(exported),
+        not_taken=tuple(state.not_taken),
         skipped=tuple(state.skipped),
         timings=state.timings,
         stopped_early=stopped,
@@ -356,7 +383,8 @@ def _run(
     state.timings["total"] = time.perf_counter() - started
     counts = {
         "observation_mark": new_mark,
-        "files": len(files),
+        "files": len(report.files_taken),
+        "files_refused": len(report.files_refused),
         "outcomes_scored": report.outcomes_scored,
         "series_analysed": report.series_analysed,
         "fits": report.fits_recorded,
@@ -367,6 +395,7 @@ def _run(
         "timings": {k: round(v, 4) for k, v in state.timings.items()},
         "stopped_early": stopped,
         "notify": list(report.findings_to_notify),
+        "exports": [str(e.path) for e in exported],
         "notified": notifier is None,
     }
     store.finish_pass(record.id, finished_at=real_clock(), counts=counts)
@@ -475,6 +504,8 @@ def ingest_spec(
         required=tuple(required),
         optional=tuple(optional),
         settle=feed.settle,
+        delimiter=feed.delimiter,
+        decimal=feed.decimal,
         latest_actual=latest_actual,
     )
 
@@ -490,6 +521,19 @@ def files_waiting(
     return False
 
 
+def files_not_taken(
+    config: PlumblineConfig, real_clock: Callable[[], datetime] = utc_now
+) -> list[InboxNote]:
+    """Files in the inboxes that a scan now would leave there, each with why and what to do."""
+    notes: list[InboxNote] = []
+    for name, feed in config.feeds.items():
+        spec = ingest_spec(name, feed, config)
+        survey = inspect_inbox(spec, real_clock=real_clock)
+        notes.extend(inbox_notes(name, feed.settle.total_seconds(), survey,
+                                 now=real_clock().timestamp()))
+    return notes
+
+
 def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[FileReport]:
     reports: list[FileReport] = []
     for name, feed in state.config.feeds.items():
@@ -497,6 +541,7 @@ def _ingest_all(state: _PassState, real_clock: Callable[[], datetime]) -> list[F
             spec = ingest_spec(name, feed, state.config, state.as_of)
             result = ingest_feed(state.store, spec, pass_id=state.pass_id, real_clock=real_clock)
             reports.extend(result.reports)
+            state.not_taken.extend(result.notes)
             state.skipped.extend(f"feed {name}: {problem}" for problem in result.problems)
             state.feed_problems.setdefault(name, []).extend(result.problems)
         except DatabaseFaultError:
@@ -1197,7 +1242,24 @@ def _rejection_reason(report: FileReport) -> str:
         return report.note or (report.errors.strip().splitlines() or [""])[0]
     first = report.rejected[0] if report.rejected else None
     where = f"first at line {first.line}: {first.reason}" if first else report.note
-    return f"{where}; see {report.name}.rejected.csv"
+    hint = f". {report.note}" if first and report.note else ""
+    return f"{where}; see {report.name}.rejected.csv{hint}"
+
+
+# --------------------------------------------------------------------------- export
+
+
+def _export(state: _PassState) -> list[ExportedFile]:
+    """Write the forecasts this pass issued (and any a crashed pass since the last finished one
+    issued) into the export folder. A folder that cannot be written is reported in ``skipped``;
+    the forecasts stay in the database and ``plumbline forecasts`` lists them."""
+    try:
+        return export_forecasts(state.store, state.config,
+                                range(state.finished_id + 1, state.pass_id + 1))
+    except OSError as exc:
+        state.skipped.append(f"export: {exc.strerror or exc} ({exc.filename}); the forecasts are "
+                             "in the database: plumbline forecasts lists them")
+        return []
 
 
 # --------------------------------------------------------------------------- 6. findings
@@ -1252,6 +1314,7 @@ __all__ = [
     "business_key",
     "cadence_steps",
     "clock_tolerance",
+    "files_not_taken",
     "files_waiting",
     "ingest_spec",
     "run_pass",

@@ -351,7 +351,7 @@ def test_schema_is_json_with_the_files_keys(capsys: pytest.CaptureFixture[str]) 
     assert document["$schema"] == "https://json-schema.org/draft/2020-12/schema"
     assert document["type"] == "object" and document["additionalProperties"] is False
     assert set(document["properties"]) == {
-        "database", "timezone", "feeds", "models", "schedule", "notify", "compute"
+        "database", "timezone", "feeds", "models", "schedule", "notify", "export", "compute"
     }  # fmt: skip
     assert set(document["required"]) == {"feeds", "models"}
     feed = document["$defs"]["Feed"]

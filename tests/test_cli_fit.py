@@ -490,3 +490,69 @@ def test_durbin_watson_verdict_follows_the_announced_significance(
     assert "tests at the 5 % significance level" in flat
     assert "Durbin–Watson 1.46 (p = 0.1251): no sign of autocorrelated errors" in flat
     assert "look positively correlated" not in flat
+
+
+# --------------------------------------------------------------------------- plan rows
+
+
+def test_plan_rows_are_forecast_like_at_points_and_left_out_of_the_fit(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Rows with the response empty (the README's plan rows) are forecast, not fitted: the
+    result equals fitting the rows with actuals and asking --at the plan rows' values, and both
+    match statsmodels' get_prediction."""
+    lines = EXAMPLE.read_text(encoding="utf-8").splitlines()
+    history = lines[:31]
+    plans = [",".join(line.split(",")[:3]) + "," for line in lines[31:33]]
+    with_plans = tmp_path / "with_plans.csv"
+    with_plans.write_text("\n".join([*history, *plans]) + "\n", encoding="utf-8")
+    only_history = tmp_path / "history.csv"
+    only_history.write_text("\n".join(history) + "\n", encoding="utf-8")
+    values = [float(p.split(",")[1]) for p in plans]
+    report = _json(capsys, str(with_plans), "--response", "pick_hours",
+                   "--predictors", "order_lines")
+    by_at = _json(capsys, str(only_history), "--response", "pick_hours",
+                  "--predictors", "order_lines", *(a for v in values
+                                                   for a in ("--at", f"order_lines={v!r}")))
+    assert report["n"] == 30 == by_at["n"]
+    assert report["coefficients"] == by_at["coefficients"]
+    assert [p["plan_row"] for p in report["predictions"]] == [
+        {"line": 32, "label": f"week_ending {plans[0].split(',')[0]}"},
+        {"line": 33, "label": f"week_ending {plans[1].split(',')[0]}"},
+    ]
+    assert all(p["plan_row"] is None for p in by_at["predictions"])
+    for mine, theirs in zip(report["predictions"], by_at["predictions"], strict=True):
+        assert {k: v for k, v in mine.items() if k != "plan_row"} == {
+            k: v for k, v in theirs.items() if k != "plan_row"}
+    # statsmodels on the 30 rows with actuals
+    data = np.array([[float(c) for c in line.split(",")[1:]] for line in history[1:]])
+    model = sm.OLS(data[:, 2], sm.add_constant(data[:, 0])).fit()
+    frame = model.get_prediction(sm.add_constant(np.array(values), has_constant="add"))
+    interval = frame.summary_frame(alpha=0.05)
+    for i, prediction in enumerate(report["predictions"]):
+        assert prediction["point"] == pytest.approx(interval["mean"][i], rel=RELATIVE)
+        assert prediction["lower"] == pytest.approx(interval["obs_ci_lower"][i], rel=RELATIVE)
+        assert prediction["upper"] == pytest.approx(interval["obs_ci_upper"][i], rel=RELATIVE)
+    status, out, _ = _run(capsys, str(with_plans), "--response", "pick_hours",
+                          "--predictors", "order_lines")
+    assert status == 0
+    assert f"week_ending {plans[0].split(',')[0]} (line 32): order_lines=" in out
+
+
+def test_a_plan_row_without_a_predictor_names_its_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    lines = EXAMPLE.read_text(encoding="utf-8").splitlines()[:31]
+    path = tmp_path / "bad_plan.csv"
+    path.write_text("\n".join([*lines, "2025-08-03,,118,"]) + "\n", encoding="utf-8")
+    err = _error(capsys, str(path), "--response", "pick_hours", "--predictors", "order_lines")
+    assert "line 32" in err and "column 'order_lines'" in err and "empty value" in err
+
+
+def test_only_plan_rows_is_nothing_to_fit(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = tmp_path / "plans.csv"
+    path.write_text("week,x,y\n1,2,\n2,3,\n", encoding="utf-8")
+    err = _error(capsys, str(path), "--response", "y", "--predictors", "x")
+    assert "nothing to fit" in err and "plan rows" in err

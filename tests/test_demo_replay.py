@@ -10,7 +10,11 @@ planted week's tolerance.
 
 from __future__ import annotations
 
+import csv
+import io
 import json
+import re
+import sqlite3
 from datetime import date, datetime
 from pathlib import Path
 
@@ -135,6 +139,80 @@ def test_forecasts_answer_each_plan_row_once(replayed: ReplayResult) -> None:
     assert len(keys) == len(set(keys))
     # weekly plans: each forecast targets the week after the latest actual (lead 1)
     assert {f.lead for f in forecasts} == {1}
+
+
+# --------------------------------------------------------------------------- forecasts out
+
+
+def test_forecasts_csv_lists_exactly_the_forecasts_in_the_database(
+    replayed: ReplayResult, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # Counted straight from the SQLite file, not through the store's own query.
+    with sqlite3.connect(f"file:{replayed.config.database}?mode=ro", uri=True) as conn:
+        expected = dict(conn.execute(
+            "SELECT f.id, o.actual FROM forecasts AS f LEFT JOIN outcomes AS o "
+            "ON o.forecast_id = f.id").fetchall())
+    assert len(expected) > 1000
+    capsys.readouterr()
+    assert main(["forecasts", "--format", "csv",
+                 "-c", str(replayed.root / "plumbline.yaml")]) == 0
+    rows = list(csv.DictReader(io.StringIO(capsys.readouterr().out)))
+    assert len(rows) == len(expected)
+    assert {int(r["forecast_id"]) for r in rows} == set(expected)
+    for row in rows:
+        actual = expected[int(row["forecast_id"])]
+        assert (row["actual"] == "") == (actual is None)
+        assert row["outcome"] in ({""} if actual is None else {"hit", "miss_high", "miss_low"})
+        if actual is not None:
+            assert float(row["actual"]) == actual
+        assert float(row["lower"]) <= float(row["point"]) <= float(row["upper"])
+
+
+def test_export_folder_holds_one_file_per_pass_and_model_equal_to_the_command(
+    replayed: ReplayResult, capsys: pytest.CaptureFixture[str]
+) -> None:
+    config = replayed.config
+    capsys.readouterr()
+    assert main(["forecasts", "--format", "csv", "-c", str(replayed.root / "plumbline.yaml")]) == 0
+    listed = list(csv.DictReader(io.StringIO(capsys.readouterr().out)))
+    by_file: dict[tuple[str, int], list[dict[str, str]]] = {}
+    for row in listed:
+        by_file.setdefault((row["model"], int(row["pass_id"])), []).append(row)
+    exported: dict[tuple[str, int], list[dict[str, str]]] = {}
+    for path in sorted(config.export.folder.rglob("*")):
+        if path.is_dir():
+            continue
+        assert not path.name.startswith("."), f"temporary file left behind: {path}"
+        match = re.fullmatch(r"pass-(\d{6})\.csv", path.name)
+        assert match, path.name
+        with path.open(encoding="utf-8", newline="") as handle:
+            exported[(path.parent.name, int(match.group(1)))] = list(csv.DictReader(handle))
+    assert set(exported) == set(by_file)
+    for key, rows in exported.items():
+        assert rows, f"{key}: an empty export file"
+        columns = list(rows[0])
+        assert columns == list(by_file[key][0])[: len(columns)]
+        assert list(by_file[key][0])[len(columns):] == ["actual", "outcome"]
+        assert rows == [{c: r[c] for c in columns} for r in by_file[key]]
+    # the passes' own records name the files they wrote
+    written = {Path(p) for report in replayed.passes for p in
+               (str(e.path) for e in report.exports)}
+    assert written == {config.export.model_folder(m) / f"pass-{p:06d}.csv" for m, p in exported}
+
+
+def test_the_demo_index_links_the_pass_pages_it_wrote(replayed: ReplayResult) -> None:
+    from monitor.commands.demo import DEMO_PASS_PAGES, render_pass_pages
+
+    pages = render_pass_pages(replayed.config)
+    render_digest(replayed.config)  # writes the index too
+    assert 1 < len(pages) <= DEMO_PASS_PAGES
+    folder = replayed.config.notify.html_dir
+    index = (folder / "index.html").read_text(encoding="utf-8")
+    linked = set(re.findall(r'href="(pass-\d+\.html)"', index))
+    assert linked == {page.name for page in pages}
+    for page in pages:
+        assert page.is_file()
+        assert page.stem.split("-")[1] in page.read_text(encoding="utf-8")
 
 
 def _run(capsys: pytest.CaptureFixture[str], *argv: str) -> str:

@@ -86,7 +86,7 @@ def seconds(text: str) -> float:
 
 def config_write_paths(config: PlumblineConfig) -> list[Path]:
     """Every folder a pass or the daemon writes into, by the config."""
-    paths = [config.database.parent, config.notify.html_dir]
+    paths = [config.database.parent, config.notify.html_dir, config.export.folder]
     for feed in config.feeds.values():
         paths += [feed.inbox, feed.archive, feed.rejected]
     return paths

@@ -283,3 +283,16 @@ def test_forecast_bias_from_the_mean_error_test() -> None:
     # too few scored forecasts: not judged
     short = accuracy_batch(np.zeros(5, dtype=np.int64), np.ones(5), np.zeros(5))
     assert forecast_bias_conditions("m", ["s"], short, Thresholds(), [None]) == []
+
+
+def test_the_stale_feed_message_names_the_clock_it_was_true_at() -> None:
+    """The message stays true after it is written: it names the pass's business clock, not
+    "now", and the cadence it counts in."""
+    latest = datetime(2025, 3, 2)
+    stale = stale_feed_condition("f", latest, "2025-03-02", datetime(2025, 3, 30, 6),
+                                 timedelta(days=7))
+    assert stale is not None and stale.holds
+    assert "now" not in stale.message
+    assert "28 days before the business clock of the pass that checked it (2025-03-30)" in (
+        stale.message)
+    assert "more than 1.5 × its cadence of 7 days" in stale.message

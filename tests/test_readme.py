@@ -225,17 +225,13 @@ def _walkthrough() -> str:
     return _section(README, lambda title: title == "Your first model")
 
 
-def test_walkthrough_config_loads_and_its_first_pass_prints_what_the_readme_shows(
-    tmp_path: Path, capsys: pytest.CaptureFixture[str]
-) -> None:
+def _first_pass(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> tuple[Path, str]:
+    """Steps 2-4 of the walk-through in ``tmp_path`` (the working folder): its config, the
+    history with next week's plan row and its marker, and the first pass. Returns the config's
+    path and what the pass printed."""
     (yaml_text,) = _blocks(_walkthrough(), "yaml")
     config_path = tmp_path / "plumbline.yaml"
     config_path.write_text(yaml_text, encoding="utf-8")
-    config = load_config(config_path)
-    assert list(config.feeds) == ["warehouse"] and list(config.models) == ["pick_hours"]
-    assert config.models["pick_hours"].predictors == ["order_lines"]
-
-    # Step 3 of the walk-through: the history with next week's plan row, and its marker.
     inbox = tmp_path / "feeds" / "warehouse" / "inbox"
     inbox.mkdir(parents=True)
     history = EXAMPLE.read_text(encoding="utf-8").splitlines()[:31]
@@ -244,9 +240,65 @@ def test_walkthrough_config_loads_and_its_first_pass_prints_what_the_readme_show
     (inbox / "history.csv.ready").touch()
     capsys.readouterr()
     assert main(["pass", "-c", str(config_path), "--as-of", "2025-07-28T07:00"]) == 0
-    printed = capsys.readouterr().out.strip()
+    return config_path, capsys.readouterr().out.strip()
+
+
+def test_walkthrough_config_loads_and_its_first_pass_prints_what_the_readme_shows(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.chdir(tmp_path)  # the walk-through runs in its workspace folder
+    config_path, printed = _first_pass(tmp_path, capsys)
+    config = load_config(config_path)
+    assert list(config.feeds) == ["warehouse"] and list(config.models) == ["pick_hours"]
+    assert config.models["pick_hours"].predictors == ["order_lines"]
     assert printed in _walkthrough()
     assert "1 forecast(s) issued" in printed
+    assert (tmp_path / "exports" / "pick_hours" / "pass-000001.csv").is_file()
+
+
+def test_planners_week_runs_as_the_readme_shows(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """"A planner's week": drop the week's actual and plan rows, run the pass, take the
+    forecasts; every output shown is the program's own, and the export equals the listing."""
+    section = _section(README, lambda title: title.startswith("A planner's week"))
+    monkeypatch.chdir(tmp_path)
+    config_path, _ = _first_pass(tmp_path, capsys)
+    texts = _blocks(section, "text")
+    week_file = texts[0]
+    assert week_file.startswith("week_ending,order_lines,pallets,pick_hours\n")
+    name = re.search(r"Save it as `(feeds/warehouse/inbox/[\w.-]+\.csv)`", section)
+    assert name, "the section does not say where the file goes"
+    (tmp_path / name.group(1)).write_text(week_file, encoding="utf-8")
+    touch = re.search(r"^\$ touch (\S+)$", texts[1], re.M)
+    assert touch and touch.group(1) == name.group(1) + ".ready"
+    (tmp_path / touch.group(1)).touch()
+
+    run = re.search(r"^\$ plumbline pass --as-of (\S+)$", texts[1], re.M)
+    assert run
+    capsys.readouterr()
+    assert main(["pass", "-c", str(config_path), "--as-of", run.group(1)]) == 0
+    printed = capsys.readouterr().out
+    assert printed in texts[1]
+    assert "3 forecast(s) issued" in printed
+
+    assert texts[2].startswith("$ plumbline forecasts --open\n")
+    assert main(["forecasts", "-c", str(config_path), "--open"]) == 0
+    assert "$ plumbline forecasts --open\n" + capsys.readouterr().out == texts[2]
+
+    exported = re.search(r"\(`(exports/pick_hours/pass-\d+\.csv)`\)", section)
+    assert exported
+    export_text = (tmp_path / exported.group(1)).read_text(encoding="utf-8")
+    assert export_text == texts[3]
+    assert main(["forecasts", "-c", str(config_path), "--open", "--format", "csv"]) == 0
+    listed = capsys.readouterr().out.splitlines()
+    assert listed[0] == export_text.splitlines()[0] + ",actual,outcome"
+    assert [line + ",," for line in export_text.splitlines()[1:]] == listed[1:]
+    # the figures the prose reads off the first forecast, recomputed from the export
+    first = dict(zip(listed[0].split(","), listed[1].split(","), strict=True))
+    point, lower, upper = (round(float(first[c])) for c in ("point", "lower", "upper"))
+    assert f"number for {first['target_period']} is {point} picking hours" in section
+    assert f"between {lower} and {upper}" in section
 
 
 def test_walkthrough_fit_outputs_are_the_commands_own(
@@ -389,3 +441,15 @@ def test_every_benchmark_is_listed_in_developers() -> None:
     listed = DEVELOPERS[start:end]
     for bench in sorted((REPO_ROOT / "tests" / "benchmarks").glob("bench_*.py")):
         assert f"tests/benchmarks/{bench.name}" in listed, f"{bench.name} not in DEVELOPERS.md"
+
+
+def test_forecasts_columns_table_is_the_codes() -> None:
+    """The README's table of `plumbline forecasts` columns is monitor.exports' own list, in
+    order, with the same words."""
+    from monitor.exports import FORECAST_COLUMNS, SCORED_COLUMNS
+
+    section = _command_section("forecasts")
+    rows = re.findall(r"^\| `(\w+)` \| (.+) \|$", section, re.M)
+    columns = [(name, meaning) for name, meaning in rows if name not in {"--model"}]
+    expected = [(name, meaning) for name, meaning in FORECAST_COLUMNS + SCORED_COLUMNS]
+    assert [c for c in columns if c[0] in dict(expected)] == expected

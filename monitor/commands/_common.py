@@ -31,6 +31,24 @@ def open_existing_store(config: PlumblineConfig, *, readonly: bool = False) -> S
     return Store.open(config.database, readonly=readonly)
 
 
+def finding_id(text: str) -> int:
+    """A finding's id as typed: ``12`` or ``#12``, the way ``plumbline status`` shows it (an
+    argparse ``type``)."""
+    stripped = text.strip()
+    digits = stripped[1:] if stripped.startswith("#") else stripped
+    if not digits.isdigit():
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a finding id; give the number 'plumbline status' shows, e.g. 12 or "
+            "#12"
+        )
+    return int(digits)
+
+
+def local_moment(moment: datetime, config: PlumblineConfig) -> str:
+    """A moment for people: ISO 8601 in the config's time zone, to the second."""
+    return moment.astimezone(config.zone).replace(microsecond=0).isoformat()
+
+
 def parse_as_of(text: str, config: PlumblineConfig) -> datetime:
     """``--as-of``: ISO 8601; a time without an offset is read in the config's time zone, and a
     bare date means its midnight there (DESIGN.md section 6)."""
@@ -46,4 +64,5 @@ def parse_as_of(text: str, config: PlumblineConfig) -> datetime:
     return moment
 
 
-__all__ = ["add_config_argument", "config_from", "open_existing_store", "parse_as_of"]
+__all__ = ["add_config_argument", "config_from", "finding_id", "local_moment",
+           "open_existing_store", "parse_as_of"]

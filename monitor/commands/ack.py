@@ -6,7 +6,12 @@ from __future__ import annotations
 import argparse
 import sys
 
-from monitor.commands._common import add_config_argument, config_from, open_existing_store
+from monitor.commands._common import (
+    add_config_argument,
+    config_from,
+    finding_id,
+    open_existing_store,
+)
 from monitor.commands.note import default_author, record_note, report
 
 DEPRECATION = (
@@ -22,7 +27,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "TEXT'. Records the note \"acknowledged\" on the finding, so no message mentions it again.",
     )
     add_config_argument(parser)
-    parser.add_argument("id", type=int, help="the finding's id")
+    parser.add_argument("id", type=finding_id, help="the finding's id (12 or #12)")
     parser.set_defaults(handler=handle)
 
 

@@ -29,7 +29,6 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 
-from monitor.compute import probe
 from monitor.config import (
     CronSchedule,
     Feed,
@@ -40,7 +39,8 @@ from monitor.config import (
     parse_schedule,
 )
 from monitor.errors import ConfigError
-from monitor.ingest.folders import survey_inbox
+from monitor.ingest.dialect import separator_hint
+from monitor.ingest.folders import InboxNote, inbox_notes, survey_inbox
 from monitor.lock import database_path_problem
 from monitor.text import did_you_mean
 
@@ -100,6 +100,7 @@ class InboxReport:
     header: tuple[str, ...] | None = None
     header_error: str | None = None
     missing: list[str] = field(default_factory=list)  # needed columns the header lacks
+    notes: list[InboxNote] = field(default_factory=list)  # files a pass would leave, and why
     future: list[tuple[Path, float]] = field(default_factory=list)  # (file, seconds ahead)
     ignored: list[tuple[str, str]] = field(default_factory=list)  # (name, why) never data
 
@@ -194,7 +195,16 @@ def _check_email(config: PlumblineConfig, report: CheckReport) -> None:
         )
 
 
+LOCAL_COMPUTE = "local (in the pass's own process)"  # monitor.compute.LocalCompute.describe
+
+
 def _check_compute(config: PlumblineConfig, report: CheckReport) -> None:
+    if config.compute.engine == "local":
+        # Said without importing monitor.compute, which loads the statistics: check stays light.
+        report.say(f"compute: {LOCAL_COMPUTE}")
+        return
+    from monitor.compute import probe
+
     found = probe(config.compute)
     report.say(f"compute: {found.summary}" + (f"; {found.detail}" if found.answered else ""))
     if found.answered is False:
@@ -214,7 +224,7 @@ def _check_feed(
     if not models:
         report.warn(f"feed {name}: no model reads this feed")
     needed = set(feed_columns(config, name)) | set(feed.columns or ())
-    inbox = inspect_inbox(feed, needed, now=now)
+    inbox = inspect_inbox(feed, needed, now=now, name=name)
     report.inboxes[name] = inbox
     if not inbox.exists:
         report.say(f"  inbox {feed.inbox}: does not exist")
@@ -225,6 +235,8 @@ def _check_feed(
     if settling:
         waiting += f" ({settling} not complete yet)"
     report.say(f"  inbox {feed.inbox}: {waiting}")
+    for note in inbox.notes:
+        report.say(f"  not taken: {note.name}: {note.reason}; {note.action}")
     for path, ahead in inbox.future:
         report.warn(
             f"feed {name}: {path.name} has a modification time {_ahead_text(ahead)} in the future "
@@ -242,12 +254,24 @@ def _check_feed(
     elif inbox.missing:
         header = inbox.header or ()
         lacking = ", ".join(f"'{column}'{did_you_mean(column, header)}" for column in inbox.missing)
-        report.warn(f"feed {name}: {shown} lacks column(s) the config needs: {lacking}")
+        hint = _separator_hint(inbox.newest, name, feed)
+        report.warn(f"feed {name}: {shown} lacks column(s) the config needs: {lacking}{hint}")
     else:
         report.say(f"  newest complete file {shown}: its header has every column needed")
 
 
-def inspect_inbox(feed: Feed, needed: set[str], *, now: float) -> InboxReport:
+def _separator_hint(path: Path, name: str, feed: Feed) -> str:
+    if feed.format != "csv":
+        return ""
+    try:
+        with path.open("rb") as stream:
+            head = stream.read(1 << 16)
+    except OSError:
+        return ""
+    return separator_hint(head, name, feed.delimiter, feed.decimal)
+
+
+def inspect_inbox(feed: Feed, needed: set[str], *, now: float, name: str = "") -> InboxReport:
     """The inbox's data files, which are complete, and the newest complete file's header."""
     if not feed.inbox.is_dir():
         return InboxReport(exists=False)
@@ -258,6 +282,7 @@ def inspect_inbox(feed: Feed, needed: set[str], *, now: float) -> InboxReport:
                           real_clock=lambda: now, detect_rename=True)
     report.waiting.extend(item.path for item in (*survey.complete, *survey.waiting))
     report.waiting.sort()
+    report.notes = list(inbox_notes(name, feed.settle.total_seconds(), survey, now=now))
     report.ignored.extend(survey.ignored)
     for item in (*survey.complete, *survey.waiting):
         ahead = item.mtime_ns / 1e9 - now
@@ -271,7 +296,7 @@ def inspect_inbox(feed: Feed, needed: set[str], *, now: float) -> InboxReport:
         return report
     report.newest = max(stamped)[2]
     try:
-        report.header = read_header(report.newest, feed.format)
+        report.header = read_header(report.newest, feed.format, feed.delimiter)
     except ValueError as exc:
         report.header_error = str(exc)
         return report
@@ -279,7 +304,7 @@ def inspect_inbox(feed: Feed, needed: set[str], *, now: float) -> InboxReport:
     return report
 
 
-def read_header(path: Path, file_format: str) -> tuple[str, ...]:
+def read_header(path: Path, file_format: str, delimiter: str = ",") -> tuple[str, ...]:
     """The column names of a data file, reading only its header. Raises ValueError."""
     if file_format == "parquet":
         # Imported here: pyarrow is slow to import and only Parquet feeds need it.
@@ -303,7 +328,7 @@ def read_header(path: Path, file_format: str) -> tuple[str, ...]:
     except UnicodeDecodeError as exc:
         raise ValueError(f"not UTF-8 text (byte {exc.start} of the header)") from None
     try:
-        cells = next(csv.reader([text]))
+        cells = next(csv.reader([text], delimiter=delimiter))
     except csv.Error as exc:
         raise ValueError(f"the header is not CSV ({exc})") from None
     return tuple(cell.strip() for cell in cells)

@@ -19,6 +19,8 @@ from monitor.demo import WEEK_COUNT, ScenarioWeek
 from monitor.demo.replay import replay_scenario
 from monitor.errors import UsageError
 from monitor.notify.digest import write_digest
+from monitor.notify.html import pass_page_name
+from monitor.notify.report import render_pass_report
 from monitor.notify.words import SEVERITY_MARKS, finding_headline
 from monitor.passes import PassReport
 from monitor.store import FindingRecord, Store
@@ -61,16 +63,41 @@ def handle(args: argparse.Namespace) -> int:
     result = replay_scenario(root, progress=progress)
     if tty:
         print()
-    digest_path = render_digest(result.config)
+    pass_pages = render_pass_pages(result.config)
+    digest_path = render_digest(result.config)  # and the index, which links the pass pages
     elapsed = time.perf_counter() - started
     with Store.open(result.config.database, readonly=True) as store:
         findings = store.list_findings(state="all")
     print(f"Replayed {len(result.passes)} weeks in {elapsed:.1f} s into {root}.")
     print(f"Digest: {digest_path}")
+    print(f"Pass pages: {len(pass_pages)} (the passes that raised or cleared findings, latest "
+          f"{DEMO_PASS_PAGES}), linked from {digest_path.parent / 'index.html'}")
     for line in findings_summary(findings):
         print(line)
     print(f"Look closer: plumbline status -c {root / 'plumbline.yaml'}")
     return 0
+
+
+# The replay writes no pages while it runs (it would redraw every model's charts 125 times);
+# afterwards the pages of the latest passes that raised or cleared findings are written.
+DEMO_PASS_PAGES = 12
+
+
+def render_pass_pages(config: PlumblineConfig) -> list[Path]:
+    """The pages of the latest passes that raised or cleared findings (at most
+    ``DEMO_PASS_PAGES``), and of the latest pass."""
+    with Store.open(config.database) as store:
+        passes = store.list_passes(limit=1000)
+        if not passes:
+            return []
+        eventful = [p.id for p in passes
+                    if p.counts.get("findings_raised") or p.counts.get("findings_cleared")]
+        chosen = sorted({passes[0].id, *eventful[:DEMO_PASS_PAGES - 1]})
+        paths = []
+        for pass_id in chosen:
+            render_pass_report(store, config, pass_id, write_models=False)
+            paths.append(Path(config.notify.html_dir) / pass_page_name(pass_id))
+        return paths
 
 
 def findings_summary(findings: list[FindingRecord]) -> list[str]:

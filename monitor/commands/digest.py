@@ -16,7 +16,8 @@ page instead, and changes nothing in the database: no digest recorded, nothing q
 the page when no e-mail is configured); it does nothing before the first pass.
 
 Exit status 0; 2 for an invalid config, a database that does not exist yet, no pass run yet, or
-``--send``/``--dry-run`` without ``notify.email`` in the config.
+``--send`` without ``notify.email`` in the config (``--dry-run`` works without it: the message
+goes to placeholder addresses in the reserved ``.invalid`` domain).
 """
 
 from __future__ import annotations
@@ -27,11 +28,14 @@ from pathlib import Path
 from typing import Any
 
 from monitor.commands.audit import open_database
-from monitor.config import PlumblineConfig, load_config
+from monitor.config import Email, PlumblineConfig, load_config
 from monitor.errors import UsageError
 from monitor.notify import build_digest, digest_message, write_digest
 from monitor.notify.mail import compose_digest, deliver_outbox, enqueue_digest, write_eml
 from monitor.store import Store
+
+PREVIEW_RECIPIENT = "recipients-not-configured@example.invalid"
+PREVIEW_SENDER = "plumbline@example.invalid"
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -77,14 +81,21 @@ def publish(
     path = write_digest(store, config, out_dir, digest=digest, now=now, record=not dry_run)
     done: dict[str, Any] = {"digest": str(path), "period_end": digest.period_end.isoformat(),
                             "open_findings": digest.open_total}
-    if email is None or not (send or dry_run):
-        return done
-    content = digest_message(digest)
     if dry_run:
-        message = compose_digest(email, content, period_end=digest.period_end, created_at=now,
+        # Without notify.email the message is still written, to placeholder addresses in the
+        # reserved .invalid domain (RFC 2606), so the e-mail can be looked at before SMTP is set.
+        preview = email if email is not None else Email(
+            to=[PREVIEW_RECIPIENT], sender=PREVIEW_SENDER)
+        content = digest_message(digest)
+        message = compose_digest(preview, content, period_end=digest.period_end, created_at=now,
                                  pass_id=digest.pass_id, identity=store.identity)
         done["eml"] = str(write_eml(message.body, out_dir, message.eml_name))
+        if email is None:
+            done["placeholder_addresses"] = True
         return done
+    if email is None or not send:
+        return done
+    content = digest_message(digest)
     queued = enqueue_digest(store, email, content, period_end=digest.period_end,
                             created_at=now, pass_id=digest.pass_id)
     report = deliver_outbox(store, email, now=now)
@@ -112,9 +123,9 @@ def send_scheduled_digest(config: PlumblineConfig) -> dict[str, Any] | None:
 
 def run(args: argparse.Namespace) -> int:
     config = load_config(args.config)
-    if (args.send or args.dry_run) and config.notify.email is None:
-        flag = "--dry-run" if args.dry_run else "--send"
-        raise UsageError(f"{flag} needs notify.email in the config (sender, to, smtp_host)")
+    if args.send and not args.dry_run and config.notify.email is None:
+        raise UsageError("--send needs notify.email in the config (sender, to, smtp_host); "
+                         "--dry-run writes the message to a file without it")
     out_dir = Path(args.out) if args.out else Path(config.notify.html_dir)
     with open_database(config, readonly=False) as store:
         done = publish(store, config, out_dir=out_dir, now=datetime.now(UTC),
@@ -122,6 +133,9 @@ def run(args: argparse.Namespace) -> int:
     print(done["digest"])
     if "eml" in done:
         print(done["eml"])
+        if done.get("placeholder_addresses"):
+            print("note: no notify.email in the config, so the message is addressed to "
+                  f"{PREVIEW_RECIPIENT}; nothing was sent")
     if "sent" in done:
         if not done["newly_queued"]:
             print(f"the digest for this period was queued before (outbox message "

@@ -19,12 +19,14 @@ import math
 import sys
 import textwrap
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from monitor.commands._csv import check_model_names, read_csv_table
+from monitor.commands._csv import CsvTable, check_model_names, read_csv_table
 from monitor.errors import InputFileError, UsageError
+from monitor.figures import leverage_text, number
 from monitor.stats import diagnostics
 from monitor.stats.ols import OlsFit, fit_ols
 from monitor.text import did_you_mean, format_p_value
@@ -79,10 +81,22 @@ def run(args: argparse.Namespace) -> int:
     predictors = list(args.predictors)
     check_model_names(args.response, predictors, intercept=not args.no_intercept)
     points = [parse_at(text, predictors) for text in args.at]
-    table = read_csv_table(args.file)
+    whole = read_csv_table(args.file)
+    table, plans = split_plan_rows(whole, args.response)
+    if not table.rows:
+        raise InputFileError(
+            f"{whole.path.name}: every row has an empty {args.response!r}, so there is nothing "
+            "to fit; rows with the response empty are plan rows to forecast"
+        )
     y = np.asarray(table.numeric_column(args.response), dtype=np.float64)
     columns = [table.numeric_column(name) for name in predictors]
     x = np.asarray(columns, dtype=np.float64).T.reshape(len(y), len(predictors))
+    plan_columns = [plans.numeric_column(name) for name in predictors]
+    plan_rows = [
+        PlanRow(line, _row_label(plans, i, [args.response, *predictors]),
+                {name: plan_columns[j][i] for j, name in enumerate(predictors)})
+        for i, line in enumerate(plans.line_numbers)
+    ]
     fit = fit_ols(x, y, intercept=not args.no_intercept, level=level, names=predictors)
     if not fit.estimable:
         raise InputFileError(
@@ -96,6 +110,7 @@ def run(args: argparse.Namespace) -> int:
         file_name=table.path.name,
         line_numbers=table.line_numbers,
         points=points,
+        plan_rows=plan_rows,
     )
     if args.format == "json":
         sys.stdout.write(json.dumps(report, indent=2, allow_nan=False) + "\n")
@@ -157,6 +172,39 @@ def parse_at(text: str, predictors: Sequence[str]) -> dict[str, float]:
     return {name: values[name] for name in predictors}
 
 
+@dataclass(frozen=True)
+class PlanRow:
+    """A row of the file with its response empty: a request for a forecast, as in a feed."""
+
+    line: int
+    label: str | None  # its first column (the period, in the README's format)
+    at: dict[str, float]
+
+
+def split_plan_rows(table: CsvTable, response: str) -> tuple[CsvTable, CsvTable]:
+    """The rows with an actual (to fit) and the plan rows (response empty: to forecast, as a
+    pass forecasts them; README "Your first model")."""
+    texts = table.column_text(response)
+    keep = [i for i, text in enumerate(texts) if text.strip()]
+    plan = [i for i, text in enumerate(texts) if not text.strip()]
+
+    def subset(indices: list[int]) -> CsvTable:
+        return CsvTable(table.path, table.header, tuple(table.rows[i] for i in indices),
+                        tuple(table.line_numbers[i] for i in indices))
+
+    return subset(keep), subset(plan)
+
+
+def _row_label(table: CsvTable, index: int, used: Sequence[str]) -> str | None:
+    """What the file says the plan row is for: its first column, when that column is not one
+    the model uses (a period, by the README's format)."""
+    first = table.header[0]
+    if first in used:
+        return None
+    text = table.rows[index][0].strip()
+    return f"{first} {text}" if text else None
+
+
 def _example(predictors: Sequence[str]) -> str:
     return ",".join(f"{name}=V" for name in predictors)
 
@@ -191,11 +239,13 @@ def build_report(
     file_name: str,
     line_numbers: Sequence[int],
     points: Sequence[dict[str, float]],
+    plan_rows: Sequence[PlanRow] = (),
 ) -> dict[str, Any]:
     """The whole result as plain JSON-ready values: DESIGN.md section 9's keys and a few more.
 
     ``x`` (n, k) are the predictors the fit was made from; ``line_numbers`` the file line of each
-    row (for naming the most influential rows); ``points`` the ``--at`` points.
+    row (for naming the most influential rows); ``points`` the ``--at`` points; ``plan_rows``
+    the file's rows with an empty response, forecast after the ``--at`` points.
     """
     predictors = list(fit.terms[int(fit.intercept) :])
     coefficients = [
@@ -234,14 +284,17 @@ def build_report(
         "level": fit.level,
         "correlation": correlation,
         "coefficients": coefficients,
-        "predictions": _predictions(fit, predictors, points),
+        "predictions": _predictions(fit, predictors, points, plan_rows),
         "diagnostics": _diagnostics(fit, x, predictors, line_numbers),
     }
 
 
 def _predictions(
-    fit: OlsFit, predictors: list[str], points: Sequence[dict[str, float]]
+    fit: OlsFit, predictors: list[str], at_points: Sequence[dict[str, float]],
+    plan_rows: Sequence[PlanRow] = (),
 ) -> list[dict[str, Any]]:
+    sources: list[PlanRow | None] = [None] * len(at_points) + list(plan_rows)
+    points = [*at_points, *(plan.at for plan in plan_rows)]
     if not points:
         return []
     x0 = np.array([[point[name] for name in predictors] for point in points], dtype=np.float64)
@@ -255,9 +308,11 @@ def _predictions(
             if not fit.x_min[j] <= point[name] <= fit.x_max[j]
         ]
         above = bool(forecast.leverage[i] > window_leverage)
+        plan = sources[i]
         rows.append(
             {
                 "at": dict(point),
+                "plan_row": None if plan is None else {"line": plan.line, "label": plan.label},
                 "point": _number(forecast.point[i]),
                 "mean_lower": _number(forecast.mean_lower[i]),
                 "mean_upper": _number(forecast.mean_upper[i]),
@@ -618,6 +673,15 @@ def _vif_line(vif: dict[str, float | None]) -> str:
     return f"VIF {shown}: {verdict}."
 
 
+def _at_text(row: dict[str, Any]) -> str:
+    """Where a forecast is made: the predictor values, and for a plan row its line and label."""
+    at = ", ".join(f"{name}={value:g}" for name, value in row["at"].items())
+    plan = row.get("plan_row")
+    if plan is None:
+        return at
+    return f"{plan['label'] or 'plan row'} (line {plan['line']}): {at}"
+
+
 def _prediction_lines(report: dict[str, Any]) -> str:
     percent = f"{report['level'] * 100:g} %"
     lines = [
@@ -630,11 +694,12 @@ def _prediction_lines(report: dict[str, Any]) -> str:
     header = ("at", "point", "prediction interval", "mean-response interval", "leverage")
     rows = [
         (
-            ", ".join(f"{name}={value:g}" for name, value in row["at"].items()),
-            _fmt(row["point"], 6),
-            f"{_fmt(row['lower'], 6)} to {_fmt(row['upper'], 6)}",
-            f"{_fmt(row['mean_lower'], 6)} to {_fmt(row['mean_upper'], 6)}",
-            _fmt(row["leverage"], 3),
+            _at_text(row),
+            # forecasts by the reports' rule for them (monitor.figures): 4 significant digits
+            number(row["point"]),
+            f"{number(row['lower'])} to {number(row['upper'])}",
+            f"{number(row['mean_lower'])} to {number(row['mean_upper'])}",
+            leverage_text(row["leverage"]),
         )
         for row in report["predictions"]
     ]
@@ -645,7 +710,7 @@ def _prediction_lines(report: dict[str, Any]) -> str:
     for row in report["predictions"]:
         if not row["extrapolation"]:
             continue
-        at = ", ".join(f"{name}={value:g}" for name, value in row["at"].items())
+        at = _at_text(row)
         reasons = []
         if row["outside_range"]:
             reasons.append(f"{', '.join(row['outside_range'])} outside the range of the data")

@@ -10,7 +10,12 @@ import getpass
 from datetime import UTC, datetime
 from zoneinfo import ZoneInfo
 
-from monitor.commands._common import add_config_argument, config_from, open_existing_store
+from monitor.commands._common import (
+    add_config_argument,
+    config_from,
+    finding_id,
+    open_existing_store,
+)
 from monitor.errors import UsageError
 from monitor.notify.words import finding_headline, local_time
 from monitor.store import FindingNote, FindingRecord, Store
@@ -24,7 +29,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "note, in status and on the pages; no message mentions it again. Every note is kept.",
     )
     add_config_argument(parser)
-    parser.add_argument("id", type=int, help="the finding's id")
+    parser.add_argument("id", type=finding_id, help="the finding's id (12 or #12)")
     parser.add_argument("text", nargs="?", help="the note, e.g. \"roadworks on the A7 until "
                         "March; expected\" (quote it)")
     parser.add_argument("--by", metavar="NAME",

@@ -11,6 +11,7 @@ import json
 import sys
 import threading
 from datetime import datetime
+from pathlib import Path
 
 from monitor.commands._common import add_config_argument, config_from, parse_as_of
 from monitor.config import PlumblineConfig
@@ -54,20 +55,28 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 
 def summary(report: PassReport) -> dict[str, object]:
+    taken = report.files_taken
     return {
         "pass_id": report.pass_id,
         "as_of": report.as_of.isoformat(),
         "nothing_to_do": report.nothing_to_do,
         "files": [{"feed": f.feed, "name": f.name, "outcome": f.outcome.value,
+                   "taken": f in taken, "reason": f.note or None,
                    "rows_ingested": f.rows_ingested, "rows_rejected": f.rows_rejected,
                    "revisions": [{"series": r.series, "period": r.period,
                                   "revision": r.revision} for r in f.revised]}
                   for f in report.files],
+        "files_taken": len(taken),
+        "files_refused": len(report.files_refused),
+        "not_taken": [{"feed": n.feed, "name": n.name, "state": n.state, "reason": n.reason,
+                       "action": n.action} for n in report.not_taken],
         "outcomes_scored": report.outcomes_scored,
         "series_analysed": report.series_analysed,
         "forecasts_issued": report.forecasts_issued,
         "findings_raised": list(report.findings_raised),
         "findings_cleared": list(report.findings_cleared),
+        "exports": [{"model": e.model, "pass_id": e.pass_id, "path": str(e.path),
+                     "forecasts": e.forecasts} for e in report.exports],
         "skipped": list(report.skipped),
         "stopped_early": report.stopped_early,
         "timings": {k: round(v, 3) for k, v in report.timings.items()},
@@ -78,13 +87,55 @@ def sentence(report: PassReport) -> str:
     if report.nothing_to_do:
         return (f"Nothing to do at {report.as_of.isoformat()}: no new complete files and the "
                 "latest pass ran at this business clock.")
-    files = len(report.files)
+    files = f"{len(report.files_taken)} file(s) taken"
+    if report.files_refused:
+        files += f", {len(report.files_refused)} refused"
     return (
-        f"Pass {report.pass_id} at {report.as_of.isoformat()}: {files} file(s) taken, "
+        f"Pass {report.pass_id} at {report.as_of.isoformat()}: {files}, "
         f"{report.outcomes_scored} actual(s) scored, {report.series_analysed} series refitted, "
         f"{report.forecasts_issued} forecast(s) issued; {len(report.findings_raised)} finding(s) "
         f"raised and {len(report.findings_cleared)} no longer seen."
     )
+
+
+def shown_path(path: Path) -> str:
+    """A path as people type it: relative to the working folder when inside it."""
+    try:
+        return str(path.relative_to(Path.cwd()))
+    except ValueError:
+        return str(path)
+
+
+def table_lines(report: PassReport) -> list[str]:
+    """The sentence, then what needs a look: exports, skipped work, refused files, rejected
+    rows, revisions, and each file left in an inbox with why and what to do."""
+    lines = [sentence(report)]
+    for exported in report.exports:
+        lines.append(f"  {exported.forecasts} forecast(s) of {exported.model} exported to "
+                     f"{shown_path(exported.path)}")
+    lines += [f"  skipped: {line}" for line in report.skipped]
+    for f in report.files_refused:
+        if f.duplicate:
+            lines.append(f"  refused {f.feed}/{f.name}: the same bytes as {f.duplicate_of}, "
+                         f"taken before; it is in {shown_path(f.stored_path)}")
+        else:
+            lines.append(f"  refused {f.feed}/{f.name}: {f.note}. Nothing of it was taken; it "
+                         f"is in {shown_path(f.stored_path)}, the reason in "
+                         f"{f.stored_path.name}.errors.txt beside it")
+    for f in report.files_taken:
+        if f.rows_rejected:
+            lines.append(f"  {f.feed}/{f.name}: {f.rows_rejected} row(s) rejected, listed in "
+                         f"{f.stored_path.name}.rejected.csv in the rejected folder"
+                         f"{'. ' + f.note if f.note else ''}")
+        elif f.outcome.value == "empty":
+            lines.append(f"  {f.feed}/{f.name}: {f.note or 'no rows'}; archived")
+        if f.revisions:
+            keys = ", ".join(r.period if r.series is None else f"{r.series} {r.period}"
+                             for r in f.revised)
+            lines.append(f"  {f.feed}/{f.name}: {f.revisions} revision(s) of actuals held "
+                         f"before ({keys}); the revised values are used from now on")
+    lines += [f"  not taken: {note.line()}" for note in report.not_taken]
+    return lines
 
 
 def handle(args: argparse.Namespace) -> int:
@@ -96,18 +147,7 @@ def handle(args: argparse.Namespace) -> int:
     if args.format == "json":
         print(json.dumps(summary(report), indent=2))
     else:
-        print(sentence(report))
-        for line in report.skipped:
-            print(f"  skipped: {line}")
-        for f in report.files:
-            if f.rows_rejected or f.outcome.value != "archived":
-                print(f"  {f.feed}/{f.name}: {f.outcome.value}, {f.rows_rejected} row(s) "
-                      "rejected")
-            if f.revisions:
-                keys = ", ".join(r.period if r.series is None else f"{r.series} {r.period}"
-                                 for r in f.revised)
-                print(f"  {f.feed}/{f.name}: {f.revisions} revision(s) of actuals held "
-                      f"before ({keys}); the revised values are used from now on")
+        print("\n".join(table_lines(report)))
     if args.strict:
         with Store.open(config.database, readonly=True) as store:
             critical = [f for f in store.open_findings() if f.severity is Severity.CRITICAL]

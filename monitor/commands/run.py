@@ -63,7 +63,8 @@ def scan_job(config: PlumblineConfig, compute: Compute | None = None) -> JobFunc
                 pass_log.warning("pass %s could not do everything: %s", report.pass_id, line)
             _warn_failing_outbox(store, now)
         return {
-            "pass_id": report.pass_id, "files": len(report.files),
+            "pass_id": report.pass_id, "files": len(report.files_taken),
+            "refused": len(report.files_refused),
             "forecasts": report.forecasts_issued, "raised": len(report.findings_raised),
             "cleared": len(report.findings_cleared), "skipped": len(report.skipped),
             "stopped_early": report.stopped_early,

@@ -8,9 +8,14 @@ import json
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from monitor.commands._common import add_config_argument, config_from, open_existing_store
+from monitor.commands._common import (
+    add_config_argument,
+    config_from,
+    local_moment,
+    open_existing_store,
+)
 from monitor.config import PlumblineConfig
-from monitor.daemon import upcoming_runs
+from monitor.lock import running_daemon
 from monitor.notify.words import (
     KIND_WORDS,
     SEVERITY_MARKS,
@@ -54,22 +59,31 @@ def finding_record(f: FindingRecord) -> dict[str, Any]:
     }
 
 
-def pass_record(p: PassRecord) -> dict[str, Any]:
+def pass_record(p: PassRecord, config: PlumblineConfig) -> dict[str, Any]:
     return {
-        "id": p.id, "as_of": p.as_of.isoformat(), "started_at": p.started_at.isoformat(),
-        "finished_at": None if p.finished_at is None else p.finished_at.isoformat(),
+        "id": p.id, "as_of": local_moment(p.as_of, config),
+        "started_at": local_moment(p.started_at, config),
+        "finished_at": None if p.finished_at is None else local_moment(p.finished_at, config),
         "status": p.status,
-        "files": p.counts.get("files"), "forecasts": p.counts.get("forecasts"),
+        "files": p.counts.get("files"), "files_refused": p.counts.get("files_refused", 0),
+        "forecasts": p.counts.get("forecasts"),
         "findings_raised": p.counts.get("findings_raised"),
         "findings_cleared": p.counts.get("findings_cleared"),
     }
 
 
-def next_runs(config: PlumblineConfig, now: datetime) -> dict[str, str]:
-    runs = {}
+def next_runs(config: PlumblineConfig, now: datetime) -> dict[str, Any]:
+    """The daemon's next scan and digest, when a ``plumbline run`` daemon holds the database;
+    null times otherwise (nothing runs on a schedule then, unless cron starts it)."""
+    pid = running_daemon(config.database)
+    runs: dict[str, Any] = {"daemon_pid": pid, "scan": None, "digest": None}
+    if pid is None:
+        return runs
+    from monitor.daemon import upcoming_runs  # APScheduler: only when a daemon runs
+
     for name, text in (("scan", config.schedule.scan), ("digest", config.schedule.digest)):
         (when,) = upcoming_runs(text, config.zone, now, 1)
-        runs[name] = when.astimezone(config.zone).isoformat()
+        runs[name] = local_moment(when, config)
     return runs
 
 
@@ -112,7 +126,7 @@ def handle(args: argparse.Namespace) -> int:
     findings.sort(key=lambda f: (rank[f.severity.value], f.model or "", f.series or "", f.id))
     document = {
         "findings": [finding_record(f) for f in findings],
-        "passes": [pass_record(p) for p in passes],
+        "passes": [pass_record(p, config) for p in passes],
         "next_runs": next_runs(config, datetime.now(UTC)),
         "problems": problems(passes, unsent, datetime.now(UTC)),
     }
@@ -140,5 +154,10 @@ def handle(args: argparse.Namespace) -> int:
         print(f"  problem: {line}")
     runs = document["next_runs"]
     assert isinstance(runs, dict)
-    print(f"Next scan {runs['scan']}; next digest {runs['digest']}.")
+    if runs["daemon_pid"] is None:
+        print("No daemon is running on this database ('plumbline run'), so nothing is scheduled "
+              "here; passes and digests run when started (by cron, or by hand).")
+    else:
+        print(f"Daemon running (process {runs['daemon_pid']}): next scan {runs['scan']}; next "
+              f"digest {runs['digest']}.")
     return 0

@@ -69,6 +69,8 @@ class Feed(_Section):
     archive: Path = _field("feeds.NAME.archive")
     rejected: Path = _field("feeds.NAME.rejected")
     format: Literal["csv", "parquet"] = _field("feeds.NAME.format")
+    delimiter: Literal[",", ";", "\t"] = _field("feeds.NAME.delimiter")
+    decimal: Literal[".", ","] = _field("feeds.NAME.decimal")
     period: ColumnName = _field("feeds.NAME.period")
     period_type: Literal["date", "integer"] = _field("feeds.NAME.period_type")
     settle: Duration = _field("feeds.NAME.settle")
@@ -121,9 +123,18 @@ class Feed(_Section):
 
     @model_validator(mode="after")
     def _declared_columns(self) -> Feed:
-        if self.columns is None:
-            return self
         problems: list[Problem] = []
+        if self.decimal == "," and self.delimiter == ",":
+            problems.append(Problem(("decimal",), "with decimal ',' the fields cannot also be "
+                                    "separated by ','; set delimiter: ';' (the usual pair)"))
+        if self.format == "parquet":
+            problems += [Problem((key,), f"{key} applies to CSV feeds only; Parquet files carry "
+                                 "typed columns")
+                         for key in ("delimiter", "decimal") if key in self.model_fields_set]
+        if self.columns is None:
+            if problems:
+                raise problems_error(problems)
+            return self
         seen: set[str] = set()
         for index, column in enumerate(self.columns):
             if column in seen:
@@ -362,6 +373,22 @@ class Notify(_Section):
         return resolve_path(value, info)
 
 
+class Export(_Section):
+    """Where each pass writes the forecasts it issued."""
+
+    folder: Path = _field("export.folder")
+    format: Literal["csv", "parquet"] = _field("export.format")
+
+    @field_validator("folder", mode="after")
+    @classmethod
+    def _resolve_folder(cls, value: Path, info: ValidationInfo) -> Path:
+        return resolve_path(value, info)
+
+    def model_folder(self, model: str) -> Path:
+        """The folder of one model's forecast files."""
+        return self.folder / model
+
+
 class PlumblineConfig(_Section):
     """The whole file. After loading, every path is absolute (resolved against the file's folder),
     every default is filled in, and each model's ``owners`` is a list (``notify.email.to`` when
@@ -375,6 +402,7 @@ class PlumblineConfig(_Section):
     models: dict[Name, Model] = _field("models")
     schedule: Schedule = _field("schedule", section=True)
     notify: Notify = _field("notify", section=True)
+    export: Export = _field("export", section=True)
     compute: Compute = _field("compute", section=True)
 
     _source: Path | None = PrivateAttr(default=None)
@@ -510,6 +538,7 @@ SECTIONS: dict[str, type[BaseModel]] = {
     "schedule": Schedule,
     "notify": Notify,
     "notify.email": Email,
+    "export": Export,
     "compute": Compute,
 }
 
@@ -578,6 +607,7 @@ __all__ = [
     "Baseline",
     "Compute",
     "Email",
+    "Export",
     "Feed",
     "IntervalColumns",
     "Loc",

@@ -60,6 +60,8 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("schedule", None, "When the daemon scans the inboxes and builds the digest.",
             computed=_SEE_BELOW),
     Setting("notify", None, "Where findings and digests go.", computed=_SEE_BELOW),
+    Setting("export", None, "Where each pass writes the forecasts it issued, for other jobs "
+            "to take.", computed=_SEE_BELOW),
     Setting("compute", None, "Where the analysis step of a pass runs.", computed=_SEE_BELOW),
     # feeds.NAME
     Setting("feeds.NAME.inbox", ..., "Folder where new data files land."),
@@ -69,6 +71,12 @@ SETTINGS: tuple[Setting, ...] = (
             "Folder for files that cannot be used, each with a `NAME.errors.txt` saying why.",
             computed="`rejected` beside the inbox"),
     Setting("feeds.NAME.format", "csv", "`csv` (UTF-8 with a header line) or `parquet`."),
+    Setting("feeds.NAME.delimiter", ",",
+            "The character between a CSV file's fields: `,`, `;` or a tab (`\"\\t\"`). Files "
+            "saved by a spreadsheet in many locales use `;`."),
+    Setting("feeds.NAME.decimal", ".",
+            "The decimal mark of a CSV file's numbers: `.` or `,` (`1234,5`; then the delimiter "
+            "cannot be `,`). Thousands separators are refused either way."),
     Setting("feeds.NAME.period", ..., "Column holding each row's period."),
     Setting("feeds.NAME.period_type", "date",
             "`date` (ISO 8601, e.g. 2024-01-07) or `integer` (years, sequence numbers)."),
@@ -153,6 +161,13 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("schedule.digest", "0 8 * * mon",
             "When the digest is built and sent: a five-field cron expression read in "
             "`timezone`, or a duration."),
+    # export
+    Setting("export.folder", "exports",
+            "Folder of the forecast files: one subfolder per model, one file per pass that "
+            "issued forecasts for it (`exports/NAME/pass-000012.csv`), written under a temporary "
+            "name starting with `.` and renamed when complete."),
+    Setting("export.format", "csv",
+            "`csv` (UTF-8, a header line, `.` decimals, ISO 8601 times) or `parquet`."),
     # notify
     Setting("notify.html_dir", "reports", "Folder for the HTML pages and digests."),
     Setting("notify.email", None, "SMTP settings; without them Plumbline writes HTML only."),

@@ -34,16 +34,28 @@ from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
-from typing import BinaryIO, Literal
+from typing import TYPE_CHECKING, BinaryIO, Literal
 
-import numpy as np
-
+if TYPE_CHECKING:
+    import numpy as np
+else:  # numpy on first use: `plumbline check` reads inboxes without it
+    from monitor.store.lazy import np
 from monitor.errors import DatabaseFaultError
+from monitor.ingest.dialect import (
+    DEFAULT_DECIMAL,
+    DEFAULT_DELIMITER,
+    decimal_comma_hint,
+    needs_rewrite,
+    separator_hint,
+    standard_csv,
+)
 from monitor.ingest.folders import (
     MARKER_SUFFIX,
     InboxFile,
+    InboxNote,
     InboxSurvey,
     free_name,
+    inbox_notes,
     is_temporary_name,
     move_no_clobber,
     same_file,
@@ -113,6 +125,8 @@ class IngestSpec:
     optional: tuple[str, ...] = ()
     settle: timedelta = timedelta(seconds=30)
     detect_rename: bool = True  # rule 2 of monitor.ingest.folders
+    delimiter: str = DEFAULT_DELIMITER  # CSV only: see monitor.ingest.dialect
+    decimal: str = DEFAULT_DECIMAL
     batch_bytes: int = DEFAULT_BLOCK_BYTES  # how much of a file is read and checked at a time
     # Actuals dated after this day are refused as rows (date periods; the pass gives a few
     # cadences past its business clock's date). None: no limit.
@@ -195,6 +209,7 @@ class FeedIngest:
     waiting: tuple[str, ...]  # files not complete yet: they stay and raise nothing
     ignored: tuple[tuple[str, str], ...]  # (name, why) never read as data
     problems: tuple[str, ...] = ()
+    notes: tuple[InboxNote, ...] = ()  # why each file left in the inbox was not taken
 
     @property
     def findings(self) -> tuple[Finding, ...]:
@@ -242,6 +257,7 @@ def ingest_feed(
     if survey.problem:
         problems.append(survey.problem)
     waiting = [item.name for item in survey.waiting]
+    changing: list[str] = []
     for item in survey.complete:
         try:
             report = ingest_file(store, spec, item, pass_id=pass_id, real_clock=real_clock)
@@ -254,6 +270,7 @@ def ingest_feed(
             continue
         if report is None:
             waiting.append(item.name)
+            changing.append(item.name)
         else:
             reports.append(report)
     for record in store.files_awaiting_move(spec.feed):
@@ -261,7 +278,10 @@ def ingest_feed(
             f"{record.name} was recorded (file id {record.id}) but is neither in the inbox nor "
             f"at {record.stored_path}; if it turns up in the inbox it will be moved"
         )
-    return FeedIngest(spec.feed, tuple(reports), tuple(waiting), survey.ignored, tuple(problems))
+    notes = inbox_notes(spec.feed, spec.settle.total_seconds(), survey,
+                        now=_seconds(real_clock), changing=tuple(changing))
+    return FeedIngest(spec.feed, tuple(reports), tuple(waiting), survey.ignored, tuple(problems),
+                      notes)
 
 
 def ingest_file(
@@ -599,10 +619,17 @@ def _store_rows(
         hashing = _HashingReader(handle)
         if spec.format == "parquet":
             reading = open_parquet(handle, plan, block_bytes=spec.batch_bytes)
+        elif needs_rewrite(spec.delimiter, spec.decimal):
+            # Another locale's CSV (monitor.ingest.dialect): rewritten whole into the standard
+            # form, then read like any file; the hash is still of the bytes as sent.
+            rewritten = standard_csv(hashing.read(), spec.delimiter, spec.decimal)
+            if isinstance(rewritten, str):
+                raise Refused(rewritten, ())
+            reading = open_csv(io.BytesIO(rewritten), plan, block_bytes=spec.batch_bytes)
         else:
             reading = open_csv(hashing, plan, block_bytes=spec.batch_bytes)  # type: ignore[arg-type]
         if reading.refusal is not None:
-            raise Refused(reading.refusal, reading.header)
+            raise Refused(reading.refusal + _separator_hint(path, spec), reading.header)
         codes: dict[str | None, int] = {}
         who: list[np.ndarray] = []
         when: list[np.ndarray] = []
@@ -652,6 +679,11 @@ def _store_rows(
         store.record_rejected_rows(file_id, twice)
         rows_rejected += len(twice)
         rejected = sorted([*rejected, *twice], key=lambda r: r.line)[:REPORTED_REJECTIONS]
+    note = "" if rows_seen else (reading.note or reading.empty_note)
+    if rejected and spec.format == "csv":
+        hint = decimal_comma_hint(
+            [cell for row in rejected[:50] for cell in row.cells], spec.feed, spec.decimal)
+        note = f"{note} {hint}".strip()
     return _Stored(
         header=reading.header,
         columns=reading.columns,
@@ -660,8 +692,20 @@ def _store_rows(
         rows_rejected=rows_rejected,
         rejected=tuple(rejected),
         counts=_sum_counts(counts),
-        note="" if rows_seen else (reading.note or reading.empty_note),
+        note=note,
     )
+
+
+def _separator_hint(path: Path, spec: IngestSpec) -> str:
+    """For a refused CSV whose fields another separator splits: the sentence naming it."""
+    if spec.format != "csv":
+        return ""
+    try:
+        with path.open("rb") as handle:
+            head = handle.read(1 << 16)
+    except OSError:
+        return ""
+    return separator_hint(head, spec.feed, spec.delimiter, spec.decimal)
 
 
 def _repeated(
@@ -824,12 +868,13 @@ def _findings(spec: IngestSpec, report: FileReport) -> tuple[Finding, ...]:
         word = "row" if spec.format == "parquet" else "line"
         sample = "" if first is None else f" (the first, {word} {first.line}: {first.reason})"
         total = report.rows_rejected + report.rows_ingested + report.unchanged
+        hint = f" {report.note}" if report.note else ""
         return (
             finding(
                 Severity.NOTICE, float(report.rows_rejected),
                 f"{report.rows_rejected} of {total} rows of {report.name} were rejected{sample}; "
                 f"the other rows were ingested. The rejected rows are listed in "
-                f"{spec.rejected / (where.name + '.rejected.csv')}.",
+                f"{spec.rejected / (where.name + '.rejected.csv')}.{hint}",
                 "Correct the listed rows and send them in a new file; rows already ingested "
                 "are recognised and not counted twice.",
             ),
@@ -842,11 +887,13 @@ __all__ = [
     "FeedIngest",
     "FileReport",
     "InboxFile",
+    "InboxNote",
     "InboxSurvey",
     "IngestSpec",
     "RealClock",
     "commit_file",
     "complete_move",
+    "inbox_notes",
     "ingest_feed",
     "ingest_file",
     "inspect_inbox",

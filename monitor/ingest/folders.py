@@ -34,6 +34,7 @@ import stat
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Literal
 
 from monitor.store import fsync_dir
 
@@ -49,6 +50,7 @@ class InboxFile:
     size: int
     mtime_ns: int
     rule: str | None  # "marker" | "renamed" | "settled"; None while still waiting
+    changed_ns: int = 0  # the later of its modification and change times
 
     @property
     def name(self) -> str:
@@ -67,6 +69,7 @@ class InboxSurvey:
     waiting: tuple[InboxFile, ...]  # not settled yet: stay, and raise nothing
     ignored: tuple[tuple[str, str], ...]  # (name, why)
     problem: str | None = None  # e.g. the inbox folder does not exist
+    lone_markers: tuple[str, ...] = ()  # NAME.ready with no NAME beside it
 
 
 def is_temporary_name(name: str) -> bool:
@@ -92,9 +95,12 @@ def survey_inbox(
     complete: list[InboxFile] = []
     waiting: list[InboxFile] = []
     ignored: list[tuple[str, str]] = []
+    lone: list[str] = []
     for entry in entries:
         name = entry.name
         if name.endswith(MARKER_SUFFIX) and not name.startswith("."):
+            if name[: -len(MARKER_SUFFIX)] not in names:
+                lone.append(name)
             continue  # a marker: read together with its file
         if is_temporary_name(name):
             ignored.append((name, "a temporary or hidden name"))
@@ -122,10 +128,78 @@ def survey_inbox(
             rule = "renamed"
         elif now - changed >= settle_seconds:
             rule = "settled"
-        found = InboxFile(Path(entry.path), info.st_size, info.st_mtime_ns, rule)
+        found = InboxFile(Path(entry.path), info.st_size, info.st_mtime_ns, rule,
+                          max(info.st_mtime_ns, info.st_ctime_ns))
         (complete if rule else waiting).append(found)
     complete.sort(key=lambda f: (f.mtime_ns, f.name))
-    return InboxSurvey(tuple(complete), tuple(waiting), tuple(ignored))
+    return InboxSurvey(tuple(complete), tuple(waiting), tuple(ignored), None, tuple(lone))
+
+
+@dataclass(frozen=True)
+class InboxNote:
+    """A file in an inbox that a scan did not take, why, and what to do about it."""
+
+    feed: str
+    name: str
+    state: Literal["settling", "changing", "ignored", "lone_marker"]
+    reason: str
+    action: str
+
+    def line(self) -> str:
+        return f"{self.feed}/{self.name}: {self.reason}; {self.action}"
+
+
+def _duration_text(seconds: float) -> str:
+    seconds = max(0.0, seconds)
+    if seconds < 120:
+        return f"{seconds:.0f} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def inbox_notes(
+    feed: str, settle: float, survey: InboxSurvey, *, now: float,
+    changing: tuple[str, ...] = (),
+) -> tuple[InboxNote, ...]:
+    """Why each file the survey found was not taken (``settle``: the feed's settle time in
+    seconds; ``changing``: files that changed while they were read), in words a user can act
+    on."""
+    notes: list[InboxNote] = []
+    for item in survey.waiting:
+        age = now - item.changed_ns / 1e9
+        notes.append(InboxNote(
+            feed, item.name, "settling",
+            f"not complete yet: it last changed {_duration_text(age)} ago, and a file is taken "
+            f"once unchanged for {_duration_text(settle)} (the feed's settle)",
+            f"it is taken in about {_duration_text(max(settle - age, 1.0))}, or at the next scan "
+            f"once "
+            f"{item.name}{MARKER_SUFFIX} stands beside it",
+        ))
+    for name in changing:
+        notes.append(InboxNote(
+            feed, name, "changing", "it changed while it was being read",
+            "it is taken once it stops changing; write it under a temporary name and rename it "
+            f"when done, or add {name}{MARKER_SUFFIX}",
+        ))
+    for name, why in survey.ignored:
+        if why == "a temporary or hidden name":
+            notes.append(InboxNote(
+                feed, name, "ignored",
+                "never read as data: a temporary or hidden name (starting with '.', or ending "
+                "in .part or .tmp)",
+                "rename it to its final name when it is complete",
+            ))
+        else:
+            notes.append(InboxNote(feed, name, "ignored", f"never read as data: {why}",
+                                   "put data files in the inbox itself"))
+    for name in survey.lone_markers:
+        stem = name[: -len(MARKER_SUFFIX)]
+        notes.append(InboxNote(
+            feed, name, "lone_marker", f"a marker with no file {stem} beside it",
+            f"{stem} is taken when it arrives; remove the marker if it was left by mistake",
+        ))
+    return tuple(notes)
 
 
 def read_stable(path: Path, expected_mtime_ns: int | None = None) -> bytes | None:
@@ -244,8 +318,10 @@ __all__ = [
     "MARKER_SUFFIX",
     "TEMPORARY_SUFFIXES",
     "InboxFile",
+    "InboxNote",
     "InboxSurvey",
     "free_name",
+    "inbox_notes",
     "is_temporary_name",
     "move_no_clobber",
     "read_stable",

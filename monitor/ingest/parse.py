@@ -17,11 +17,14 @@ from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, time
 from decimal import Decimal
-from typing import Any, BinaryIO
+from functools import cache
+from typing import TYPE_CHECKING, Any, BinaryIO
 
-import numpy as np
-from numpy.typing import NDArray
-
+if TYPE_CHECKING:
+    import numpy as np
+    from numpy.typing import NDArray
+else:  # numpy on first use: `plumbline check` reads inboxes without it (DEVELOPERS, Startup)
+    from monitor.store.lazy import np
 from monitor.store import ObservationBatch, ObservationRow, RejectedRow, date_period_key
 from monitor.text import did_you_mean
 
@@ -353,9 +356,16 @@ def _arrow() -> tuple[Any, Any]:
 DEFAULT_BLOCK_BYTES = 8 << 20  # about 200,000 rows of a narrow feed
 _FIELD_LIMIT = 131_072  # csv.field_size_limit()'s default: a longer line goes the csv way
 _NUMBER = r"^[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?$"
-_SIGNIFICANT = np.ones(256, dtype=bool)  # a byte that makes a line non-blank for sure
-_SIGNIFICANT[[9, 10, 11, 12, 13, 28, 29, 30, 31, 32, ord(",")]] = False
-_SIGNIFICANT[128:] = False  # non-ASCII: maybe Unicode white space; checked in Python
+
+
+@cache
+def _significant() -> NDArray[np.bool_]:
+    """A byte that makes a line non-blank for sure (a table, made on first use)."""
+    table = np.ones(256, dtype=bool)
+    table[[9, 10, 11, 12, 13, 28, 29, 30, 31, 32, ord(",")]] = False
+    table[128:] = False  # non-ASCII: maybe Unicode white space; checked in Python
+    return table
+
 
 
 class Refused(Exception):
@@ -622,7 +632,7 @@ class _FastCsv:
         nonempty = np.flatnonzero(length > 0)
         marked = np.zeros(ends.size, bool)
         if nonempty.size:
-            marked[nonempty] = np.logical_or.reduceat(_SIGNIFICANT[arr], starts[nonempty])
+            marked[nonempty] = np.logical_or.reduceat(_significant()[arr], starts[nonempty])
         blank = ~marked
         for i in np.flatnonzero(~marked & (length > 0)):  # white space or commas only, maybe
             cells = buf[starts[i] : ends[i]].decode("utf-8").split(",")

@@ -23,17 +23,40 @@ pages show them), ``series`` (a model's history and chart data from the database
 ``message`` (the neutral message shape), ``templates/``.
 """
 
-from monitor.notify.digest import (
-    Digest,
-    build_digest,
-    digest_message,
-    render_digest_html,
-    render_digest_text,
-    write_digest,
-)
-from monitor.notify.html import CHART_CAP, write_index, write_model_pages
-from monitor.notify.message import InlineImage, MessageContent, OwnerMessage
-from monitor.notify.report import PassReport, notify_pass, render_pass_report
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from monitor.notify.digest import (
+        Digest,
+        build_digest,
+        digest_message,
+        render_digest_html,
+        render_digest_text,
+        write_digest,
+    )
+    from monitor.notify.html import CHART_CAP, write_index, write_model_pages
+    from monitor.notify.message import InlineImage, MessageContent, OwnerMessage
+    from monitor.notify.report import PassReport, notify_pass, render_pass_report
+
+# The names above, imported on first use (PEP 562): ``from monitor.notify.words import ...``
+# then loads words.py alone, not the charts and matplotlib, so light commands stay light.
+_WHERE = {
+    "Digest": "digest", "build_digest": "digest", "digest_message": "digest",
+    "render_digest_html": "digest", "render_digest_text": "digest", "write_digest": "digest",
+    "CHART_CAP": "html", "write_index": "html", "write_model_pages": "html",
+    "InlineImage": "message", "MessageContent": "message", "OwnerMessage": "message",
+    "PassReport": "report", "notify_pass": "report", "render_pass_report": "report",
+}
+
+
+def __getattr__(name: str) -> Any:
+    module = _WHERE.get(name)
+    if module is None:
+        raise AttributeError(f"module 'monitor.notify' has no attribute {name!r}")
+    import importlib
+
+    return getattr(importlib.import_module(f"monitor.notify.{module}"), name)
+
 
 __all__ = [
     "CHART_CAP",

@@ -262,6 +262,7 @@ class SeriesDetail:
     fit: FitView | None
     findings: list[FindingView]
     charts: list[ChartView]
+    warming: str = ""  # without a fit: how many rows it has, and how many the first fit needs
 
 
 @dataclass(frozen=True)
@@ -290,6 +291,7 @@ class ModelPage:
     forecasts: list[ForecastView]
     charts_note: str
     table_note: str
+    warming_note: str = ""
 
 
 def build_model_page(
@@ -303,15 +305,29 @@ def build_model_page(
     """Everything a model's page shows, with its charts drawn (SVG)."""
     history = history or load_model(store, config, name)
     model = history.model
-    findings = ordered_findings(history.open_findings)
+    # The feed's own open findings (gone quiet, files refused) belong on the page too: a model
+    # whose feed is silent is never shown as having "no open findings".
+    feed_findings = [f for f in store.open_findings(feed=model.feed) if f.model is None]
+    findings = ordered_findings([*history.open_findings, *feed_findings])
     windows = {
         13: audit_models(store, config, model=name, last=13),
         52: audit_models(store, config, model=name, last=52),
         None: audit_models(store, config, model=name),
     }
+    # The coverage finding audits each series' latest ``recent`` scored forecasts: that window
+    # is shown beside 13 and 52, so the page's figures and the finding's can be compared.
+    finding_window = model.recent
+    spans: tuple[tuple[int | None, str], ...] = (
+        (13, "over the latest 13 scored periods"), (52, "over the latest 52 scored periods"))
+    if finding_window in (13, 52):
+        spans = tuple((k, f"{w} (the coverage finding's window)" if k == finding_window else w)
+                      for k, w in spans)
+    else:
+        windows[finding_window] = audit_models(store, config, model=name, last=finding_window)
+        spans = (*spans, (finding_window, f"over the latest {finding_window} scored periods "
+                                          "(the coverage finding's window)"))
+    spans = (*spans, (None, "over every scored period"))
     sentences = []
-    spans = ((13, "over the latest 13 scored periods"), (52, "over the latest 52 scored periods"),
-             (None, "over every scored period"))
     for key, what in spans:
         summary = summarise_coverage(windows[key])
         sentences.append(CoverageLine(coverage_sentence(summary, what),
@@ -329,6 +345,10 @@ def build_model_page(
         coverage_chart = None if chart is None else chart_view(chart)
     single = history.series == [None] or model.per is None
     featured = [None] if single else history.flagged[:DETAIL_CAP]
+    needed = max(model.min_rows, model.parameter_count + 2) if model.fitted else 0
+    counts = store.actual_row_counts(model.feed) if model.fitted else {}
+    warming = {s: n for s, n in sorted(counts.items(), key=lambda kv: kv[0] or "")
+               if s not in history.latest_fits and n < needed}
     details = []
     for series in featured:
         fit = history.latest_fits.get(series)
@@ -344,6 +364,7 @@ def build_model_page(
                                                   significance=model.thresholds.significance),
             findings=ordered_findings(history.findings_of(series)),
             charts=[chart_view(c) for c in charts if c is not None],
+            warming="" if fit is not None else warming_text(counts.get(series, 0), needed),
         ))
     flagged_count = len(history.flagged)
     if single:
@@ -380,12 +401,25 @@ def build_model_page(
         details_note=details_note,
         forecasts=[forecast_view(f) for f in _first_forecasts(history, windows[52])],
         table_note=_table_note(history),
+        warming_note="" if single or not warming else (
+            f"Warming up ({plural(len(warming), 'series', 'series')} with fewer than {needed} rows "
+            "with an actual, the first fit's minimum): "
+            + ", ".join(f"{series_label(s)} {n}" for s, n in list(warming.items())[:20])
+            + (" …" if len(warming) > 20 else "") + "."),
         charts_note=(
             "" if not budget.skipped else
             f"No charts for {plural(budget.skipped, 'further series', 'further series')} (at most "
             f"{chart_cap} charts per model)."
         ),
     )
+
+
+def warming_text(rows: int, needed: int) -> str:
+    """What a series without a fit is waiting for."""
+    if needed and rows < needed:
+        return (f"Warming up: {plural(rows, 'row')} with an actual so far; the first fit needs "
+                f"{needed} (min_rows, and at least p + 2), so {needed - rows} more.")
+    return "No fit recorded yet: the next pass with new rows for this series fits it."
 
 
 def _with_calibrated_rows(records: list[dict[str, Any]]) -> list[CoverageRow]:
@@ -422,10 +456,13 @@ def _model_sentence(
     counts = severity_counts(findings)
     parts = join_words([severity_count(n, word) for word, n in counts.items() if n])
     top = findings[0]
-    where = "" if top.series is None else f" in series {top.series}"
+    where = (f" of feed {top.feed}" if top.model is None and top.feed
+             else "" if top.series is None else f" in series {top.series}")
+    since = f" since {top.since}" if top.since else ""
+    # The worst current figure first: the most urgent finding with the number behind it.
     return (
-        f"{opening}; {plural(len(findings), 'open finding')} ({parts}); most urgent: "
-        f"{top.kind_words}{where}. {coverage}"
+        f"Most urgent: {top.kind_words}{where}{since} ({top.statistic}). {opening}; "
+        f"{plural(len(findings), 'open finding')} ({parts}). {coverage}"
     )
 
 
@@ -531,17 +568,31 @@ def write_index(store: Store, config: PlumblineConfig, out_dir: Path | None = No
     digests = sorted((n for n in present if re.fullmatch(r"digest-\d{4}-\d{2}-\d{2}\.html", n)),
                      reverse=True)
     models = []
+    feed_open: dict[str, int] = {}
+    for finding in store.open_findings():
+        if finding.model is None and finding.feed is not None:
+            feed_open[finding.feed] = feed_open.get(finding.feed, 0) + 1
     for name in config.models:
         count = len(store.open_findings(model=name))
+        feed = config.models[name].feed
+        on_feed = feed_open.get(feed, 0)
         note = "no open findings" if not count else f"{plural(count, 'open finding')}"
+        if on_feed:
+            note = ("" if not count else note + "; ") + (
+                f"its feed {feed} has {plural(on_feed, 'open finding')}")
         if model_page_name(name) in present:
             models.append(IndexEntry(model_page_name(name), name, note))
+    # Every pass whose page is in the folder, newest first (the latest 60 of them).
+    page_ids = sorted((int(m.group(1)) for n in present
+                       if (m := re.fullmatch(r"pass-(\d+)\.html", n))), reverse=True)
     passes = []
-    for record in store.list_passes(limit=60):
-        if pass_page_name(record.id) in present:
-            passes.append(IndexEntry(pass_page_name(record.id), f"Pass {record.id}",
-                                     f"business clock {local_time(record.as_of, config.zone)}, "
-                                     f"{record.status}"))
+    for pass_id in page_ids[:60]:
+        record = store.get_pass(pass_id)
+        if record is None:
+            continue
+        passes.append(IndexEntry(pass_page_name(record.id), f"Pass {record.id}",
+                                 f"business clock {local_time(record.as_of, config.zone)}, "
+                                 f"{record.status}"))
     text = render(
         "index.html",
         page_title="Reports",

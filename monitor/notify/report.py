@@ -269,6 +269,9 @@ def render_pass_report(
         # any page not written yet: the others would come out the same.
         changed = store.models_changed_in_pass(pass_id)
         changed |= {f.model for f in (*new, *cleared, *rose) if f.model is not None}
+        # A feed's finding (gone quiet, files refused) is shown on its models' pages too.
+        feeds = {f.feed for f in (*new, *cleared, *rose) if f.model is None and f.feed}
+        changed |= {name for name, m in config.models.items() if m.feed in feeds}
         names = [name for name in config.models
                  if name in changed or not (folder / model_page_name(name)).exists()]
         if names:

@@ -7,12 +7,12 @@ this module marks text safe.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from datetime import datetime
 from typing import Protocol
 from zoneinfo import ZoneInfo
 
+from monitor.figures import level_text, number, percent
 from monitor.text import format_p_value
 from monitor.vocabulary import FindingKind, Severity
 
@@ -38,35 +38,6 @@ CAUTION = (
     "relationship, independent errors of constant variance, roughly normal. Decisions stay with "
     "the model's owner."
 )
-
-
-def number(value: float | None, digits: int = 4) -> str:
-    """``digits`` significant digits, no exponent for everyday sizes; n/a for None or NaN."""
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return "n/a"
-    if value == 0:
-        return "0"
-    size = abs(value)
-    if size >= 1e9 or size < 1e-4:
-        text = f"{value:.{digits - 1}e}"
-    else:
-        decimals = max(0, digits - 1 - math.floor(math.log10(size)))
-        text = f"{value:.{decimals}f}"
-        if "." in text:
-            text = text.rstrip("0").rstrip(".")
-    return text
-
-
-def percent(share: float | None, decimals: int = 0) -> str:
-    """0.9512 → "95 %" (a thin space before the sign, as the reports write it)."""
-    if share is None or not math.isfinite(share):
-        return "n/a"
-    return f"{share * 100:.{decimals}f} %"
-
-
-def level_text(level: float) -> str:
-    """0.95 → "95 %", 0.975 → "97.5 %"."""
-    return f"{level * 100:g} %"
 
 
 def p_text(p_value: float | None) -> str:

@@ -18,9 +18,12 @@ from collections.abc import Iterable, Iterator, Mapping, Sequence
 from datetime import datetime
 from operator import itemgetter
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
+if TYPE_CHECKING:
+    import numpy as np
+else:
+    from monitor.store.lazy import np
 
 from monitor.store.base import StoreBase
 from monitor.store.records import (

@@ -10,12 +10,15 @@ from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from enum import StrEnum
 from pathlib import Path
-from typing import Any, NamedTuple
+from typing import TYPE_CHECKING, Any, NamedTuple
 
-import numpy as np
-from numpy.typing import NDArray
-
+if TYPE_CHECKING:
+    import numpy as np
+    from numpy.typing import NDArray
+else:
+    from monitor.store.lazy import np
 from monitor.errors import PlumblineError
+from monitor.store.lazy import is_numpy_value
 from monitor.vocabulary import Finding, FindingKind, FindingState, OutcomeKind, Severity
 
 
@@ -66,7 +69,7 @@ def _series(key: str) -> str | None:
 
 def _plain(value: Any) -> Any:
     """A JSON-ready copy: numpy scalars and arrays to Python, NaN and infinities to null."""
-    if isinstance(value, np.ndarray | np.generic):
+    if is_numpy_value(value):
         return _plain(value.tolist())
     if isinstance(value, float):
         return value if math.isfinite(value) else None
@@ -380,6 +383,16 @@ class ForecastRecord:
     calibrated_lower: float | None = None
     calibrated_upper: float | None = None
     calibrated_factor: float | None = None
+
+
+@dataclass(frozen=True)
+class IssuedForecast:
+    """A forecast as the ``forecasts`` command and the export list it: the record, plus its
+    actual and outcome once a pass has scored it (None until then)."""
+
+    forecast: ForecastRecord
+    actual: float | None
+    outcome: OutcomeKind | None
 
 
 @dataclass(frozen=True)

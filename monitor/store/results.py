@@ -8,10 +8,13 @@ from collections.abc import Iterable, Mapping, Sequence
 from datetime import datetime
 from itertools import compress
 from operator import itemgetter
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import numpy as np
-from numpy.typing import NDArray
+if TYPE_CHECKING:
+    import numpy as np
+    from numpy.typing import NDArray
+else:
+    from monitor.store.lazy import np
 
 from monitor.store.base import StoreBase
 from monitor.store.records import (
@@ -22,6 +25,7 @@ from monitor.store.records import (
     FitRow,
     ForecastRecord,
     ForecastRow,
+    IssuedForecast,
     ModelVersionRecord,
     PassRecord,
     RecordedForecasts,
@@ -259,6 +263,65 @@ class ResultsMixin(StoreBase):
             (model, pass_id),
         )
         return [_forecast_record(row) for row in rows]
+
+    def issued_forecasts(
+        self,
+        *,
+        model: str | None = None,
+        series: str | None = None,
+        from_key: int | None = None,
+        to_key: int | None = None,
+        open_only: bool = False,
+        pass_ids: Sequence[int] | None = None,
+    ) -> list[IssuedForecast]:
+        """Every forecast issued, with its actual and outcome once scored, in issue order
+        (pass, then model, series and target period). Filters: one model, one series (its
+        ``per:`` value), target period keys from/to (inclusive), only those not scored yet,
+        only those issued by the passes given."""
+        clauses = ["1 = 1"]
+        params: list[Any] = []
+        if model is not None:
+            clauses.append("f.model = ?")
+            params.append(model)
+        if series is not None:
+            clauses.append("f.series_key = ?")
+            params.append(_skey(series))
+        if from_key is not None:
+            clauses.append("f.target_period_key >= ?")
+            params.append(from_key)
+        if to_key is not None:
+            clauses.append("f.target_period_key <= ?")
+            params.append(to_key)
+        if open_only:
+            clauses.append("o.id IS NULL")
+        if pass_ids is not None:
+            clauses.append(f"f.pass_id IN ({', '.join('?' for _ in pass_ids) or 'NULL'})")
+            params.extend(pass_ids)
+        rows = self._dicts(
+            "SELECT f.*, o.actual AS o_actual, o.outcome AS o_outcome FROM forecasts AS f "
+            "LEFT JOIN outcomes AS o ON o.forecast_id = f.id "
+            f"WHERE {' AND '.join(clauses)} "
+            "ORDER BY f.pass_id, f.model, f.series_key, f.target_period_key, f.id",
+            tuple(params),
+        )
+        return [
+            IssuedForecast(
+                _forecast_record(row), row["o_actual"],
+                None if row["o_outcome"] is None else OutcomeKind(row["o_outcome"]),
+            )
+            for row in rows
+        ]
+
+    def actual_row_counts(self, feed: str) -> dict[str | None, int]:
+        """Rows with an actual (not plan rows), current revisions only, per series of a feed:
+        what a series warming up has so far."""
+        cursor = self._conn.execute(
+            "SELECT s.key, count(*) FROM observations AS o JOIN series AS s "
+            "ON s.id = o.series_id WHERE s.feed = ? AND o.is_plan = 0 AND o.current = 1 "
+            "GROUP BY s.key",
+            (feed,),
+        )
+        return {_series(key): int(count) for key, count in cursor}
 
     def forecasts_issued_after(self, model: str, pass_id: int) -> list[ForecastRecord]:
         """Forecasts of ``model`` issued by passes with an id above ``pass_id``."""

@@ -232,7 +232,15 @@ def test_cli_digest_exit_codes(history: History, tmp_path: Path,
     config = _config_variant(history, None)
     assert main(["digest", "-c", str(config), "--send"]) == 2
     assert "--send needs notify.email" in capsys.readouterr().err
-    assert main(["digest", "-c", str(config), "--dry-run"]) == 2
+    # --dry-run needs no SMTP settings: the message is written, to placeholder addresses
+    out_dir = tmp_path / "preview"
+    assert main(["digest", "-c", str(config), "--dry-run", "--out", str(out_dir)]) == 0
+    lines = capsys.readouterr().out.strip().splitlines()
+    (eml,) = out_dir.glob("*.eml")
+    assert lines[1] == str(eml) and "nothing was sent" in lines[2]
+    message = message_from_bytes(eml.read_bytes(), policy=policy.default)
+    assert message["To"].endswith("@example.invalid")
+    assert message["Subject"].strip().startswith("Plumbline digest of 2025-02-24")
     fresh = tmp_path / "fresh"
     fresh.mkdir()
     (fresh / "plumbline.yaml").write_text(CONFIG_TEXT, encoding="utf-8")
