@@ -14,8 +14,8 @@ Python's shortest round-trip form, so reading them back gives the same numbers. 
 for jobs that load a data lake.
 
 The columns (``FORECAST_COLUMNS``) are the same in the export, in ``plumbline forecasts --format
-csv|json|parquet`` and in this order; the command adds ``actual`` and ``outcome``
-(``SCORED_COLUMNS``), which the export at issue time cannot know yet.
+csv|json|parquet`` and in this order; the command adds ``actual``, ``outcome`` and
+``calibrated_outcome`` (``SCORED_COLUMNS``), which the export at issue time cannot know yet.
 """
 
 from __future__ import annotations
@@ -33,6 +33,7 @@ from zoneinfo import ZoneInfo
 
 from monitor.config import PlumblineConfig
 from monitor.store import IssuedForecast, Store, fsync_dir
+from monitor.vocabulary import classify_outcome
 
 # (column, what it holds). Issue order: pass, model, series, target period.
 FORECAST_COLUMNS: tuple[tuple[str, str], ...] = (
@@ -53,10 +54,17 @@ FORECAST_COLUMNS: tuple[tuple[str, str], ...] = (
     ("fit_id", "the fit the forecast came from (the model page shows it)"),
     ("pass_id", "the pass that issued it"),
     ("forecast_id", "the forecast's id in the database"),
+    ("calibrated_lower", "lower bound of the calibrated interval (`interval_method: calibrated`); "
+                         "empty for a model that does not calibrate or before it has enough "
+                         "scored errors"),
+    ("calibrated_upper", "upper bound of the calibrated interval"),
+    ("calibrated_factor", "how far the calibrated interval's half-width stands from the model's "
+                          "own (1.2 = 20 % wider)"),
 )  # fmt: skip
 SCORED_COLUMNS: tuple[tuple[str, str], ...] = (
     ("actual", "the actual, once a pass has scored the forecast; empty until then"),
     ("outcome", "`hit`, `miss_high` or `miss_low` once scored; empty until then"),
+    ("calibrated_outcome", "the same against the calibrated interval; empty without one"),
 )
 EXPORT_SUFFIX = {"csv": ".csv", "parquet": ".parquet"}
 
@@ -95,10 +103,17 @@ def forecast_row(item: IssuedForecast, zone: ZoneInfo, *, scored: bool) -> dict[
         "fit_id": f.fit_id,
         "pass_id": f.pass_id,
         "forecast_id": f.id,
+        "calibrated_lower": f.calibrated_lower,
+        "calibrated_upper": f.calibrated_upper,
+        "calibrated_factor": f.calibrated_factor,
     }
     if scored:
         row["actual"] = item.actual
         row["outcome"] = None if item.outcome is None else item.outcome.value
+        row["calibrated_outcome"] = (
+            None if item.actual is None or f.calibrated_lower is None
+            or f.calibrated_upper is None
+            else classify_outcome(item.actual, f.calibrated_lower, f.calibrated_upper).value)
     return row
 
 
@@ -142,7 +157,9 @@ def parquet_bytes(rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> byt
         "lead": pa.int64(), "issued_at": pa.timestamp("s", tz="UTC"),
         "leverage": pa.float64(), "extrapolation": pa.bool_(), "fit_id": pa.int64(),
         "pass_id": pa.int64(), "forecast_id": pa.int64(), "actual": pa.float64(),
-        "outcome": pa.string(),
+        "outcome": pa.string(), "calibrated_lower": pa.float64(),
+        "calibrated_upper": pa.float64(), "calibrated_factor": pa.float64(),
+        "calibrated_outcome": pa.string(),
     }  # fmt: skip
     schema = pa.schema([(c, types[c]) for c in columns])
     table = pa.Table.from_pydict({c: [row[c] for row in rows] for c in columns}, schema=schema)

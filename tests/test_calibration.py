@@ -249,3 +249,44 @@ def test_calibrations_from_scored_columns() -> None:
     assert out["c"].bounds(1.0, 0.0, 2.0) is None
     assert out["a"].bounds(10.0, 8.0, 12.0) == (10.0 - 2 * a.next_quantile,
                                                 10.0 + 2 * a.next_quantile)
+
+
+def test_forecasts_and_exports_carry_the_calibrated_interval(
+    replayed: Workspace, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """`plumbline forecasts` and the export folder give the calibrated bounds and factor as
+    stored, and the calibrated outcome as counted here from the stored bounds."""
+    stored = {key: rest for key, *rest in replayed.query(
+        "SELECT f.id, f.calibrated_lower, f.calibrated_upper, f.calibrated_factor, o.actual "
+        "FROM forecasts AS f LEFT JOIN outcomes AS o ON o.forecast_id = f.id "
+        "WHERE f.model = 'calibrated'")}
+    capsys.readouterr()
+    assert main(["forecasts", "-c", str(replayed.config_path), "--model", "calibrated",
+                 "--format", "json"]) == 0
+    listed = json.loads(capsys.readouterr().out)
+    assert len(listed) == len(stored)
+    with_bounds = 0
+    for row in listed:
+        c_lower, c_upper, factor, actual = stored[row["forecast_id"]]
+        assert (row["calibrated_lower"], row["calibrated_upper"], row["calibrated_factor"]) == (
+            c_lower, c_upper, factor)
+        if c_lower is None or actual is None:
+            assert row["calibrated_outcome"] is None
+            continue
+        with_bounds += 1
+        side = "hit" if c_lower <= actual <= c_upper else (
+            "miss_high" if actual > c_upper else "miss_low")
+        assert row["calibrated_outcome"] == side
+    assert with_bounds >= WEEKS - 30 - MIN_SCORES
+
+    exports = sorted((replayed.root / "exports" / "calibrated").glob("pass-*.csv"))
+    last = list(csv.DictReader(io.StringIO(exports[-1].read_text(encoding="utf-8"))))
+    assert len(last) == 1 and "calibrated_outcome" not in last[0]
+    c_lower, c_upper, factor, _actual = stored[int(last[0]["forecast_id"])]
+    assert c_lower is not None
+    assert (float(last[0]["calibrated_lower"]), float(last[0]["calibrated_upper"]),
+            float(last[0]["calibrated_factor"])) == (c_lower, c_upper, factor)
+    own = list(csv.DictReader(io.StringIO(
+        sorted((replayed.root / "exports" / "own").glob("pass-*.csv"))[-1].read_text(
+            encoding="utf-8"))))
+    assert own[0]["calibrated_lower"] == "" and own[0]["calibrated_factor"] == ""

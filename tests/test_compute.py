@@ -52,6 +52,8 @@ from monitor.store import Store
 
 REPO_ROOT = Path(__file__).resolve().parent.parent
 PASS_NUMBER = re.compile(r"pass[: ]\d+")
+# An export file's path, less the workspace folder it lies in (which differs between runs).
+EXPORT_PATH = re.compile(r'"[^"]*[/\\](exports[/\\][^"]+)"')
 
 # --------------------------------------------------------------------------- split and join
 
@@ -167,7 +169,11 @@ RESULT_QUERIES = {
 
 
 def _results(database: Path) -> dict[str, list[tuple[Any, ...]]]:
-    return {name: _rows(database, sql) for name, sql in RESULT_QUERIES.items()}
+    """The stored results; the export paths in a pass's counts are kept from the workspace's
+    exports folder down, so two workspaces that wrote the same files compare equal."""
+    return {name: [tuple(EXPORT_PATH.sub(r'"\1"', v) if isinstance(v, str) else v for v in row)
+                   for row in _rows(database, sql)]
+            for name, sql in RESULT_QUERIES.items()}
 
 
 def _without_pass_ids(database: Path) -> dict[str, list[tuple[Any, ...]]]:

@@ -292,8 +292,8 @@ def test_planners_week_runs_as_the_readme_shows(
     assert export_text == texts[3]
     assert main(["forecasts", "-c", str(config_path), "--open", "--format", "csv"]) == 0
     listed = capsys.readouterr().out.splitlines()
-    assert listed[0] == export_text.splitlines()[0] + ",actual,outcome"
-    assert [line + ",," for line in export_text.splitlines()[1:]] == listed[1:]
+    assert listed[0] == export_text.splitlines()[0] + ",actual,outcome,calibrated_outcome"
+    assert [line + ",,," for line in export_text.splitlines()[1:]] == listed[1:]
     # the figures the prose reads off the first forecast, recomputed from the export
     first = dict(zip(listed[0].split(","), listed[1].split(","), strict=True))
     point, lower, upper = (round(float(first[c])) for c in ("point", "lower", "upper"))
