@@ -112,6 +112,7 @@ class FindingKind(StrEnum):
         "forecasts biased to one side", Severity.WARNING, EvidenceFamily.SERIES,
         "tracking signal {value:3} (cumulative error over mean absolute error); test of the "
         "mean error{p}",
+        headline="forecasts run to one side of the actuals, since {since}",
     )
     SLOPE_SHIFT = "slope_shift", KindDeclaration(
         "slope shift", Severity.WARNING, EvidenceFamily.SLOPES,

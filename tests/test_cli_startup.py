@@ -69,7 +69,8 @@ def _imported(argv: list[str], cwd: Path) -> tuple[set[str], subprocess.Complete
 
 @pytest.fixture(scope="module")
 def workspace(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """A workspace with a database and an open finding: one pass over the README's example."""
+    """A workspace with a database and an open finding: one pass over the README's example and
+    a file with one unreadable row."""
     root = tmp_path_factory.mktemp("light")
     (root / "plumbline.yaml").write_text(
         "feeds:\n  warehouse:\n    inbox: feeds/warehouse/inbox\n    period: week_ending\n"
@@ -82,6 +83,11 @@ def workspace(tmp_path_factory: pytest.TempPathFactory) -> Path:
     lines = (REPO / "config" / "example_pick_hours.csv").read_text(encoding="utf-8").splitlines()
     (inbox / "history.csv").write_text("\n".join(lines[:31]) + "\n", encoding="utf-8")
     (inbox / "history.csv.ready").touch()
+    # A row with a typo in a second file: the pass refuses it and opens finding 1 on the feed
+    # (the README's history alone raises nothing).
+    (inbox / "typo.csv").write_text(
+        lines[0] + "\n2025-07-27,n/a,120,500.0\n", encoding="utf-8")
+    (inbox / "typo.csv.ready").touch()
     assert main(["pass", "-c", str(root / "plumbline.yaml"), "--as-of", "2025-07-28T07:00"]) == 0
     return root
 

@@ -192,7 +192,7 @@ def test_export_folder_holds_one_file_per_pass_and_model_equal_to_the_command(
         assert rows, f"{key}: an empty export file"
         columns = list(rows[0])
         assert columns == list(by_file[key][0])[: len(columns)]
-        assert list(by_file[key][0])[len(columns):] == ["actual", "outcome"]
+        assert list(by_file[key][0])[len(columns):] == ["actual", "outcome", "calibrated_outcome"]
         assert rows == [{c: r[c] for c in columns} for r in by_file[key]]
     # the passes' own records name the files they wrote
     written = {Path(p) for report in replayed.passes for p in
@@ -287,3 +287,69 @@ def test_every_page_printout_and_email_speaks_its_own_words(
             raise AssertionError(f"{name}: {error}") from None
     for text, _ in outputs.values():
         assert_no_borrowed_looks(text)  # last: it skips where ../shared is absent
+
+
+def test_the_digests_counts_agree_with_its_lists(
+    replayed: ReplayResult, tmp_path: Path
+) -> None:
+    """With a previous digest recorded twenty passes before the end, the digest's counts of
+    findings raised and no longer seen equal its lists and the database's own rows (counted
+    here with SQL), and every finding raised since is listed and marked."""
+    database = tmp_path / "copy.sqlite"
+    with sqlite3.connect(f"file:{replayed.config.database}?mode=ro", uri=True) as source, \
+            sqlite3.connect(database) as target:
+        source.backup(target)
+    passes = [p for p in replayed.passes if p.pass_id is not None]
+    since = passes[-21]
+    assert since.pass_id is not None
+    with sqlite3.connect(database) as conn:
+        window = [i for (i,) in conn.execute("SELECT id FROM passes WHERE id > ?",
+                                             (since.pass_id,))]
+        marks = ",".join("?" * len(window))
+        raised_open = conn.execute(
+            f"SELECT count(*) FROM findings WHERE first_pass_id IN ({marks}) "
+            "AND state <> 'cleared'", window).fetchone()[0]
+        raised_cleared = conn.execute(
+            f"SELECT count(*) FROM findings WHERE first_pass_id IN ({marks}) "
+            "AND state = 'cleared'", window).fetchone()[0]
+        cleared = conn.execute(
+            f"SELECT count(*) FROM findings WHERE cleared_pass_id IN ({marks})",
+            window).fetchone()[0]
+    assert raised_open and cleared, "a window with nothing raised or cleared proves nothing"
+    with Store.open(database) as store:
+        store.record_digest(period_end=since.as_of, created_at=since.as_of)
+        digest = build_digest(store, replayed.config)
+    assert len(digest.new_findings) == raised_open
+    assert [v.id for v in digest.open_findings if v.is_new] == [v.id for v in
+                                                                digest.new_findings]
+    assert digest.raised_then_cleared == raised_cleared
+    assert len(digest.cleared_findings) == cleared
+    assert sum(g.count for g in digest.cleared_groups) == cleared
+    assert f"{raised_open} newly raised and still open, {cleared} no longer seen." in (
+        digest.sentence)
+    text = " ".join(render_digest_text(digest).split())
+    assert f"{raised_open} raised and still open (listed above, marked newly raised)" in text
+    if raised_cleared:
+        assert f"{raised_cleared} raised and already no longer seen" in text
+    assert f"{cleared} no longer seen." in text
+
+
+def test_every_finding_names_the_pass_its_figures_came_from(replayed: ReplayResult) -> None:
+    """Each finding on the pages and in the digest says which pass (and its date, in the
+    config's time zone) last computed the figures behind it: read here straight from SQLite."""
+    zone = replayed.config.zone
+    with sqlite3.connect(f"file:{replayed.config.database}?mode=ro", uri=True) as conn:
+        expected = {
+            finding_id: f"pass {pass_id} on "
+                        f"{datetime.fromisoformat(as_of).astimezone(zone):%Y-%m-%d}"
+            for finding_id, pass_id, as_of in conn.execute(
+                "SELECT f.id, f.last_pass_id, p.as_of FROM findings AS f "
+                "JOIN passes AS p ON p.id = f.last_pass_id")
+        }
+    with Store.open(replayed.config.database, readonly=True) as store:
+        digest = build_digest(store, replayed.config)
+    assert digest.open_findings
+    for view in digest.open_findings:
+        assert view.checked == expected[view.id]
+    text = " ".join(render_digest_text(digest).split())
+    assert all(f"(checked by {expected[v.id]})" in text for v in digest.open_findings)

@@ -3,12 +3,16 @@ that declaration: its words, severity, cross-series family and rebaseline behavi
 
 from __future__ import annotations
 
+from dataclasses import replace
+from datetime import UTC, datetime
+
 import numpy as np
 
 from monitor.commands.rebaseline import BASELINE_KINDS
 from monitor.findings import reject
-from monitor.notify.words import KIND_WORDS, statistic_text
-from monitor.vocabulary import EvidenceFamily, FindingKind, KindDeclaration, Severity
+from monitor.notify.words import KIND_WORDS, finding_headline, statistic_text
+from monitor.store import FindingRecord
+from monitor.vocabulary import EvidenceFamily, FindingKind, FindingState, KindDeclaration, Severity
 
 
 class _Thresholds:
@@ -68,3 +72,24 @@ def test_reject_follows_the_family() -> None:
         assert reject(kind, p, _Thresholds()).tolist() == [True, False, False, False]
     # NaN is not tested and never rejects
     assert not reject(controlled[0], np.array([np.nan, 0.001]), _Thresholds())[0]
+
+
+
+def test_every_headline_says_what_happened_with_or_without_a_date() -> None:
+    """A headline is words, not a bare date; a finding with no date drops the words about it
+    instead of printing a filler."""
+    for kind in FindingKind:
+        template = kind.declaration.headline
+        assert len(template.replace("{since}", "").split()) >= 2, kind
+        record = FindingRecord(
+            id=1, model="m", series=None, feed="f", kind=kind, severity=Severity.NOTICE,
+            state=FindingState.NEW, since_period=None, statistic=None, p_value=None,
+            message="", action="", first_pass_id=1, last_pass_id=1, false_streak=0,
+            created_at=datetime(2026, 1, 1, tzinfo=UTC), updated_at=datetime(2026, 1, 1,
+                                                                             tzinfo=UTC),
+            acknowledged_at=None, cleared_at=None, cleared_pass_id=None)
+        undated = finding_headline(record)
+        assert "None" not in undated and "undated" not in undated and "()" not in undated
+        assert not undated.rstrip().endswith((",", "since", "from", "around")), undated
+        dated = finding_headline(replace(record, since_period="2026-01-04"))
+        assert "2026-01-04" in dated or "{since}" not in template

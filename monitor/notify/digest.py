@@ -146,7 +146,8 @@ class Digest:
     open_findings: tuple[FindingView, ...]  # capped per model
     open_total: int
     hidden_notes: tuple[str, ...]
-    new_findings: tuple[FindingView, ...]
+    new_findings: tuple[FindingView, ...]  # raised since the last digest and still open
+    raised_then_cleared: int  # raised since the last digest and already no longer seen
     cleared_findings: tuple[FindingView, ...]
     versions: tuple[VersionChange, ...]
     coverage: tuple[ModelCoverage, ...]
@@ -231,18 +232,23 @@ def build_digest(
     new_views = ordered_findings((f for f in still_open if f.id in new_ids), new_ids=new_ids,
                                  zone=zone)
 
+    # Up to FINDINGS_CAP open findings per model, most severe first; a finding raised since
+    # the last digest is always listed, so the count of newly raised ones is the count marked.
     shown: list[FindingView] = []
     hidden: list[str] = []
-    per_model: dict[str | None, int] = {}
+    listed: dict[str | None, int] = {}
+    left_out: dict[str, int] = {}
     for view in open_views:
-        count = per_model.get(view.model, 0)
-        per_model[view.model] = count + 1
-        if view.model is None or count < FINDINGS_CAP:
+        count = listed.get(view.model, 0)
+        if view.model is None or view.is_new or count < FINDINGS_CAP:
             shown.append(view)
-    for model, count in per_model.items():
-        if model is not None and count > FINDINGS_CAP:
-            hidden.append(f"{model}: {count - FINDINGS_CAP} more open findings on its page "
-                          f"({model_page_name(model)}).")  # fmt: skip
+            listed[view.model] = count + 1
+        else:
+            left_out[view.model] = left_out.get(view.model, 0) + 1
+    for model, count in left_out.items():
+        hidden.append(f"{model}: {count} more open findings on its page "
+                      f"({model_page_name(model)}).")  # fmt: skip
+    raised_then_cleared = sum(1 for f in every if f.id in new_ids and f.state.value == "cleared")
 
     histories = histories if histories is not None else {
         name: load_model(store, config, name) for name in config.models
@@ -267,9 +273,9 @@ def build_digest(
 
     since_text = None if since is None else local_time(since, zone)
     change = (
-        f" Since the last digest ({since_text}): {len(new_views)} newly raised, "
+        f" Since the last digest ({since_text}): {len(new_views)} newly raised and still open, "
         f"{len(cleared_views)} no longer seen." if since_text
-        else f" This is the first digest: {len(new_views)} raised so far, "
+        else f" This is the first digest: {len(new_views)} raised so far and still open, "
              f"{len(cleared_views)} no longer seen."
     )
     return Digest(
@@ -286,6 +292,7 @@ def build_digest(
         open_total=len(open_views),
         hidden_notes=tuple(hidden),
         new_findings=tuple(new_views),
+        raised_then_cleared=raised_then_cleared,
         cleared_findings=tuple(cleared_views),
         versions=tuple(versions),
         coverage=tuple(coverage),

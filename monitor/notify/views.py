@@ -56,6 +56,7 @@ class FindingView:
     p_value: float | None = None  # the evidence behind it, for the order (None: no test)
     note: str | None = None  # the latest owner's note: "2026-12-01 10:00 Europe/Berlin, ana: …"
     note_count: int = 0
+    checked: str | None = None  # "pass 57 on 2025-03-03": the check its figures came from
 
 
 def finding_view(
@@ -92,6 +93,11 @@ def finding_view(
             f"{record.note.text}"
         ),
         note_count=record.note_count,
+        checked=(
+            None if record.last_held_at is None else
+            f"pass {record.last_pass_id} on "
+            f"{local_date(record.last_held_at, zone or ZoneInfo('UTC'))}"
+        ),
     )
 
 

@@ -7,6 +7,7 @@ this module marks text safe.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Sequence
 from datetime import datetime
 from typing import Protocol
@@ -141,10 +142,17 @@ class _Finding(Protocol):
     def since_period(self) -> str | None: ...
 
 
+# The part of a headline that names its date: " (fit to {since})", ", since {since}", "from …".
+_UNDATED = re.compile(r",? ?\([^()]*\{since\}\)|,? (?:since|from|around) \{since\}")
+
+
 def finding_headline(finding: _Finding) -> str:
     """What and where, in plain words: "depot-11 (delivery_hours): the relationship changed
     around 2026-01-25"."""
-    what = HEADLINES[finding.kind].format(since=finding.since_period or "an undated period")
+    template = HEADLINES[finding.kind]
+    if finding.since_period is None:  # no date to give: the words about it go, not a filler
+        template = _UNDATED.sub("", template)
+    what = template.format(since=finding.since_period)
     return f"{where_text(finding.model, finding.series, finding.feed)}: {what}"
 
 

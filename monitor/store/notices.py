@@ -30,7 +30,8 @@ _COLUMNS = (
     "findings.*, (SELECT json_object('at', n.noted_at, 'by', n.noted_by, 'text', n.text) "
     "FROM finding_notes n WHERE n.finding_id = findings.id ORDER BY n.id DESC LIMIT 1) "
     "AS latest_note, (SELECT count(*) FROM finding_notes n WHERE n.finding_id = findings.id) "
-    "AS note_count"
+    "AS note_count, (SELECT p.as_of FROM passes p WHERE p.id = findings.last_pass_id) "
+    "AS last_held_at"
 )
 
 
@@ -384,6 +385,7 @@ def _finding_record(row: Mapping[str, Any]) -> FindingRecord:
         cleared_pass_id=row["cleared_pass_id"],
         note=_note(row["id"], row.get("latest_note")),
         note_count=int(row.get("note_count") or 0),
+        last_held_at=_maybe_utc(row.get("last_held_at")),
     )
 
 

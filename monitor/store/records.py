@@ -465,6 +465,8 @@ class FindingRecord:
     cleared_pass_id: int | None
     note: FindingNote | None = None  # the latest owner's note
     note_count: int = 0
+    # The business clock of the pass ``last_pass_id``: when the figures behind it were computed.
+    last_held_at: datetime | None = None
 
     @property
     def noted(self) -> bool:
