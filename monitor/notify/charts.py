@@ -14,36 +14,41 @@ Five kinds, each a frozen data class of plain arrays that the caller fills
 - ``HitRateData``: the rolling hit rate against the nominal rate, with its Clopper–Pearson band.
 
 ``describe(data)`` gives the text alternative; ``draw(data, key=..., svg=..., png=...)`` renders.
-matplotlib runs on the Agg canvas with figures made directly (no pyplot, so no global figure
-registry); settings apply inside ``matplotlib.rc_context`` only, and each figure is cleared once
-saved. SVG output has its XML header, document type and style element removed, every id prefixed
-with the chart's key (ids stay unique when several charts share a page), and it is checked to hold
-no script, event attribute or outside reference before a page may embed it. Text is written as SVG
-text (escaped by matplotlib), with math parsing off so a ``$`` in a name stays a dollar sign.
+``plot_of(data)`` states each kind as marks on axes (``monitor.notify.plot``); the page's SVG is
+written from that by our own renderer (``plot.to_svg``: escaped text, one id prefixed with the
+chart's key so ids stay unique when several charts share a page), and the e-mail's PNG is drawn
+from the same statement by matplotlib (``plot_png``, imported only when a PNG is asked for). The
+SVG is checked by ``check_svg`` to be well-formed and to hold no script, event attribute or
+outside reference before a page may embed it.
 """
 
 from __future__ import annotations
 
 import hashlib
-import io
-import math
 import re
 import xml.etree.ElementTree as ET
 from collections import OrderedDict
 from collections.abc import Sequence
 from dataclasses import dataclass, field, fields
 from datetime import date
-from typing import Any
-
-import matplotlib
-
-matplotlib.use("Agg")
 
 import numpy as np
-from matplotlib.figure import Figure
-from matplotlib.ticker import PercentFormatter
 from numpy.typing import NDArray
 
+from monitor.notify.plot import (
+    Band,
+    Line,
+    Mark,
+    Marker,
+    NumberAxis,
+    PeriodAxis,
+    Plot,
+    Points,
+    Ranges,
+    Rule,
+    Span,
+    to_svg,
+)
 from monitor.notify.words import level_text, number, percent, plural
 from monitor.stats.coverage import clopper_pearson_interval
 
@@ -57,28 +62,6 @@ INTERVAL = "#4f6d8f"
 BAND = "#c9d6e3"
 BASELINE = "#9aa3ad"
 MISS = "#7a2e8c"
-
-_RC: dict[str, Any] = {
-    "svg.fonttype": "none",
-    "text.parse_math": False,
-    "font.size": 8.5,
-    "axes.titlesize": 9.5,
-    "axes.labelsize": 8.5,
-    "axes.edgecolor": "#9aa3ad",
-    "axes.labelcolor": INK,
-    "axes.spines.top": False,
-    "axes.spines.right": False,
-    "xtick.color": MUTED,
-    "ytick.color": MUTED,
-    "legend.frameon": False,
-    "legend.fontsize": 8,
-    "savefig.facecolor": "white",
-    "figure.facecolor": "white",
-}
-FIG_SIZE = (7.2, 2.7)
-MARGINS = {"left": 0.09, "right": 0.985, "bottom": 0.13, "top": 0.80}
-PNG_DPI = 100
-MAX_TICKS = 8
 
 
 @dataclass(frozen=True, eq=False)
@@ -403,9 +386,13 @@ def draw(data: ChartData, *, key: str, svg: bool = True, png: bool = False) -> C
     name = fingerprint(data)
     svg_text, png_bytes = _DRAWN.get(name, (None, None))
     if (svg and svg_text is None) or (png and png_bytes is None):
-        drawn = _draw(data, svg=svg and svg_text is None, png=png and png_bytes is None)
-        svg_text = svg_text if drawn.svg is None else drawn.svg
-        png_bytes = png_bytes if drawn.png is None else drawn.png
+        stated = plot_of(data)
+        if svg and svg_text is None:
+            svg_text = _svg(stated, _PLACEHOLDER)
+        if png and png_bytes is None:
+            from monitor.notify.plot_png import to_png
+
+            png_bytes = to_png(stated)
         _DRAWN[name] = (svg_text, png_bytes)
         while len(_DRAWN) > _DRAWN_CAP:
             _DRAWN.popitem(last=False)
@@ -414,166 +401,120 @@ def draw(data: ChartData, *, key: str, svg: bool = True, png: bool = False) -> C
     return Chart(key, data.title, describe(data), own_svg, png_bytes if png else None)
 
 
-def _draw(data: ChartData, *, svg: bool, png: bool) -> Chart:
-    key = _PLACEHOLDER
-    settings: dict[str, Any] = {**_RC, "svg.hashsalt": key}
-    with matplotlib.rc_context(settings):  # type: ignore[arg-type]
-        # Fixed margins instead of a layout engine: a constrained layout draws every figure
-        # twice, and these charts all have the same furniture (legend above, ticks below).
-        figure = Figure(figsize=FIG_SIZE)
-        figure.subplots_adjust(**MARGINS)
-        try:
-            axes = figure.add_subplot()
-            _plot(axes, data)
-            if axes.get_xlabel():
-                figure.subplots_adjust(bottom=0.19)
-            svg_text = _svg(figure, key) if svg else None
-            png_bytes = _png(figure) if png else None
-        finally:
-            figure.clear()
-    return Chart(key, data.title, describe(data), svg_text, png_bytes)
-
-
-def _plot(axes: Any, data: ChartData) -> None:
+def plot_of(data: ChartData) -> Plot:
+    """The chart as marks on axes (``monitor.notify.plot``), the same for the SVG and the PNG.
+    The title is not drawn: the page's caption carries it (escaped there)."""
     if isinstance(data, ActualsData):
-        _plot_actuals(axes, data)
-    elif isinstance(data, CoefficientData):
-        _plot_coefficient(axes, data)
-    elif isinstance(data, MonitoringData):
-        _plot_monitoring(axes, data)
-    elif isinstance(data, ScatterData):
-        _plot_scatter(axes, data)
-    else:
-        _plot_hit_rate(axes, data)
-    # The title goes in the page's caption (escaped there); the legend sits above the plot.
-    axes.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=4, borderaxespad=0.3,
-                handlelength=1.6, columnspacing=1.2)
+        return _plot_actuals(data)
+    if isinstance(data, CoefficientData):
+        return _plot_coefficient(data)
+    if isinstance(data, MonitoringData):
+        return _plot_monitoring(data)
+    if isinstance(data, ScatterData):
+        return _plot_scatter(data)
+    return _plot_hit_rate(data)
 
 
-def _period_ticks(axes: Any, periods: Sequence[str]) -> None:
-    count = len(periods)
-    if count == 0:
-        axes.set_xticks([])
-        return
-    step = max(1, math.ceil(count / MAX_TICKS))
-    ticks = list(range(0, count, step))
-    axes.set_xticks(ticks)
-    axes.set_xticklabels([periods[i] for i in ticks])
-    axes.set_xlim(-0.7, count - 0.3)
+def _positions(count: int, start: int = 0) -> FloatArray:
+    return np.arange(start, start + count, dtype=float)
 
 
-def _plot_actuals(axes: Any, data: ActualsData) -> None:
+def _plot_actuals(data: ActualsData) -> Plot:
     n = int(data.actual.size)
-    positions = np.arange(n)
-    axes.vlines(positions, data.lower, data.upper, color=BAND, linewidth=4,
-                label=f"{level_text(data.level)} prediction interval issued")
-    axes.plot(positions, data.point, linestyle="none", marker="_", color=INTERVAL, markersize=7,
-              label="forecast")
+    positions = _positions(n)
     miss = (data.actual > data.upper) | (data.actual < data.lower)
-    axes.plot(positions[~miss], data.actual[~miss], linestyle="none", marker="o", markersize=3.5,
-              color=INK, label="actual inside")
+    marks: list[Mark] = [
+        Ranges(positions, data.lower, data.upper, BAND, width=5.6,
+               label=f"{level_text(data.level)} prediction interval issued"),
+        Points(positions, data.point, Marker("dash", 9.7, INTERVAL), label="forecast"),
+        Points(positions[~miss], data.actual[~miss], Marker("circle", 4.9, INK),
+               label="actual inside"),
+    ]
     if miss.any():
-        axes.plot(positions[miss], data.actual[miss], linestyle="none", marker="X", markersize=7,
-                  color=MISS, label="actual outside (miss)")
+        marks.append(Points(positions[miss], data.actual[miss], Marker("cross", 9.7, MISS),
+                            label="actual outside (miss)"))
     m = len(data.upcoming_periods)
     if m:
-        ahead = np.arange(n, n + m)
-        axes.vlines(ahead, data.upcoming_lower, data.upcoming_upper, color=INTERVAL,
-                    linewidth=1.5, linestyles="dashed", label="open forecast")
-        axes.plot(ahead, data.upcoming_point, linestyle="none", marker="D", markersize=4,
-                  markerfacecolor="white", color=INTERVAL)
-    _period_ticks(axes, list(data.periods) + list(data.upcoming_periods))
+        marks.append(Ranges(_positions(m, n), data.upcoming_lower, data.upcoming_upper,
+                            INTERVAL, width=2.1, dashed=True,
+                            marker=Marker("diamond", 7.0, INTERVAL, hollow=True),
+                            y=data.upcoming_point, label="open forecast"))
+    return Plot(tuple(marks), PeriodAxis(data.periods + data.upcoming_periods), NumberAxis())
 
 
-def _plot_coefficient(axes: Any, data: CoefficientData) -> None:
-    positions = np.arange(data.estimate.size)
+def _plot_coefficient(data: CoefficientData) -> Plot:
+    positions = _positions(int(data.estimate.size))
+    marks: list[Mark] = []
     if data.baseline is not None:
         estimate, lower, upper = data.baseline
-        axes.axhspan(lower, upper, color=BASELINE, alpha=0.25, linewidth=0,
-                     label=("interval when monitoring started" if data.start_span is None
-                            else f"interval over {data.start_span[0]} to {data.start_span[1]}"))
-        axes.axhline(estimate, color=BASELINE, linestyle="dashed", linewidth=1)
-    axes.fill_between(positions, data.lower, data.upper, color=BAND, alpha=0.9, linewidth=0,
-                      label=f"{level_text(data.level)} confidence interval")
-    axes.plot(positions, data.estimate, color=INTERVAL, marker="o", markersize=2.5, linewidth=1.2,
-              label="estimate at each refit")
-    axes.set_ylabel(data.term)
-    _period_ticks(axes, data.periods)
+        marks.append(Span(lower, upper, BASELINE, opacity=0.25,
+                          label=("interval when monitoring started" if data.start_span is None
+                                 else f"interval over {data.start_span[0]} to "
+                                 f"{data.start_span[1]}")))
+        marks.append(Rule(estimate, BASELINE, width=1.4, dashed=True))
+    marks.append(Band(positions, data.lower, data.upper, BAND, opacity=0.9,
+                      label=f"{level_text(data.level)} confidence interval"))
+    marks.append(Line(positions, data.estimate, INTERVAL, width=1.7,
+                      marker=Marker("circle", 3.5, INTERVAL), label="estimate at each refit"))
+    return Plot(tuple(marks), PeriodAxis(data.periods), NumberAxis(label=data.term))
 
 
-def _plot_monitoring(axes: Any, data: MonitoringData) -> None:
-    positions = np.arange(data.statistic.size)
-    axes.plot(positions, data.boundary, color=MUTED, linestyle="dashed", linewidth=1,
-              label="boundary")
-    axes.plot(positions, -data.boundary, color=MUTED, linestyle="dashed", linewidth=1)
-    axes.axhline(0, color="#d0d5db", linewidth=0.8)
-    axes.plot(positions, data.statistic, color=INTERVAL, linewidth=1.4,
-              label=("cumulative forecast error (scaled)" if data.start_end is None
-                     else f"cumulative forecast error since {data.start_end} (scaled)"))
+def _plot_monitoring(data: MonitoringData) -> Plot:
+    positions = _positions(int(data.statistic.size))
+    marks: list[Mark] = [
+        Line(positions, data.boundary, MUTED, width=1.4, dashed=True, label="boundary"),
+        Line(positions, -data.boundary, MUTED, width=1.4, dashed=True),
+        Rule(0.0, "#d0d5db", width=1.1),
+        Line(positions, data.statistic, INTERVAL, width=1.9,
+             label=("cumulative forecast error (scaled)" if data.start_end is None
+                    else f"cumulative forecast error since {data.start_end} (scaled)")),
+    ]
     beyond = np.abs(data.statistic) > data.boundary
     if beyond.any():
         first = int(np.argmax(beyond))
-        axes.plot([first], [data.statistic[first]], linestyle="none", marker="X", markersize=8,
-                  color=MISS, label=f"crossed at {data.periods[first]}")
-    _period_ticks(axes, data.periods)
+        marks.append(Points(positions[first:first + 1], data.statistic[first:first + 1],
+                            Marker("cross", 11.1, MISS), label=f"crossed at {data.periods[first]}"))
+    return Plot(tuple(marks), PeriodAxis(data.periods), NumberAxis())
 
 
-def _plot_scatter(axes: Any, data: ScatterData) -> None:
-    axes.fill_between(data.grid, data.lower, data.upper, color=BAND, alpha=0.7, linewidth=0,
-                      label=f"{level_text(data.level)} prediction band")
-    axes.fill_between(data.grid, data.mean_lower, data.mean_upper, color=INTERVAL, alpha=0.25,
-                      linewidth=0, label="mean-response band (narrower; not for scoring)")
-    axes.plot(data.grid, data.fitted, color=INTERVAL, linewidth=1.4, label="fitted line")
-    axes.plot(data.x, data.y, linestyle="none", marker="o", markersize=3, color=INK,
-              label="window rows")
+def _plot_scatter(data: ScatterData) -> Plot:
+    marks: list[Mark] = [
+        Band(data.grid, data.lower, data.upper, BAND, opacity=0.7,
+             label=f"{level_text(data.level)} prediction band"),
+        Band(data.grid, data.mean_lower, data.mean_upper, INTERVAL, opacity=0.25,
+             label="mean-response band (narrower; not for scoring)"),
+        Line(data.grid, data.fitted, INTERVAL, width=1.9, label="fitted line"),
+        Points(data.x, data.y, Marker("circle", 4.2, INK), label="window rows"),
+    ]
     if data.plan_x.size:
-        axes.errorbar(data.plan_x, data.plan_point,
-                      yerr=[data.plan_point - data.plan_lower, data.plan_upper - data.plan_point],
-                      fmt="D", markersize=4, markerfacecolor="white", color=MISS, capsize=2,
-                      linewidth=1, label="open forecast")
-    axes.set_xlabel(data.predictor)
-    axes.set_ylabel(data.response)
+        marks.append(Ranges(data.plan_x, data.plan_lower, data.plan_upper, MISS, width=1.4,
+                            cap=2.8, marker=Marker("diamond", 7.0, MISS, hollow=True),
+                            y=data.plan_point, label="open forecast"))
+    return Plot(tuple(marks), NumberAxis(label=data.predictor), NumberAxis(label=data.response))
 
 
-def _plot_hit_rate(axes: Any, data: HitRateData) -> None:
+def _plot_hit_rate(data: HitRateData) -> Plot:
     rate, lower, upper, start = rolling_hit_rate(data)
-    positions = np.arange(start, start + rate.size)
-    axes.fill_between(positions, lower, upper, color=BAND, alpha=0.9, linewidth=0,
-                      label="Clopper–Pearson interval")
-    axes.plot(positions, rate, color=INTERVAL, linewidth=1.4, marker="o", markersize=2.5,
-              label=f"hit rate over {plural(min(data.window, int(data.hits.size)), 'period')}")
-    axes.axhline(data.nominal, color=INK, linestyle="dashed", linewidth=1,
-                 label=f"nominal {level_text(data.nominal)}")
-    axes.set_ylim(min(0.5, float(np.nanmin(lower)) if lower.size else 0.5) - 0.02, 1.02)
-    axes.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
-    _period_ticks(axes, data.periods)
-    axes.set_xlim(-0.7, len(data.periods) - 0.3)
+    positions = _positions(int(rate.size), start)
+    finite = lower[np.isfinite(lower)]
+    bottom = min(0.5, float(finite.min()) if finite.size else 0.5) - 0.02
+    marks: tuple[Mark, ...] = (
+        Band(positions, lower, upper, BAND, opacity=0.9, label="Clopper–Pearson interval"),
+        Line(positions, rate, INTERVAL, width=1.9, marker=Marker("circle", 3.5, INTERVAL),
+             label=f"hit rate over {plural(min(data.window, int(data.hits.size)), 'period')}"),
+        Rule(data.nominal, INK, width=1.4, dashed=True,
+             label=f"nominal {level_text(data.nominal)}"),
+    )
+    return Plot(marks, PeriodAxis(data.periods), NumberAxis(percent=True, limits=(bottom, 1.02)))
 
 
 # ------------------------------------------------------------------------------------ output
 
-_ID = re.compile(r'\bid="([^"]+)"')
-_REF = re.compile(r'(url\(#|href="#)([^)"]+)')
 
-
-def _svg(figure: Figure, key: str) -> str:
-    buffer = io.StringIO()
-    figure.savefig(buffer, format="svg", metadata={"Date": None})
-    text = buffer.getvalue()
-    text = re.sub(r"<\?xml[^>]*\?>\s*", "", text)
-    text = re.sub(r"<!DOCTYPE[^>]*>\s*", "", text)
-    text = re.sub(r"<style[^>]*>.*?</style>\s*", "", text, flags=re.S)
-    text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, flags=re.S)
-    text = _ID.sub(lambda m: f'id="{key}-{m.group(1)}"', text)
-    text = _REF.sub(lambda m: f"{m.group(1)}{key}-{m.group(2)}", text)
-    text = re.sub(
-        r'<svg ([^>]*?)width="[^"]*" height="[^"]*"',
-        r'<svg class="chart-svg" aria-hidden="true" focusable="false" \1',
-        text,
-        count=1,
-    )
+def _svg(stated: Plot, key: str) -> str:
+    text = to_svg(stated, key)
     check_svg(text)
-    return text.strip()
+    return text
 
 
 _SVG_NS = "{http://www.w3.org/2000/svg}"
@@ -593,12 +534,6 @@ def check_svg(text: str) -> None:
                 raise ValueError(f"chart SVG holds an event attribute {local}")
             if (name == _XLINK_HREF or local == "href") and not value.startswith("#"):
                 raise ValueError("chart SVG refers outside itself")
-
-
-def _png(figure: Figure) -> bytes:
-    buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=PNG_DPI, metadata={"Software": None})
-    return buffer.getvalue()
 
 
 __all__ = [

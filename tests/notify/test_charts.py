@@ -4,6 +4,8 @@ ids unique per chart, and text alternatives that state the chart's figures."""
 from __future__ import annotations
 
 import io
+import os
+import subprocess
 import sys
 import xml.etree.ElementTree as ET
 from pathlib import Path
@@ -13,7 +15,6 @@ import pytest
 from PIL import Image
 from report_history import History, build_history, copy_history
 
-from monitor.notify import charts
 from monitor.notify.charts import (
     ActualsData,
     CoefficientData,
@@ -195,6 +196,27 @@ def test_no_pyplot_and_no_figures_left() -> None:
     draw(_actuals(), key="p1", svg=True, png=True)
     assert "matplotlib.pyplot" not in sys.modules or not sys.modules[
         "matplotlib.pyplot"].get_fignums()
-    assert charts.matplotlib.get_backend().lower() == "agg"
+    import matplotlib
+
+    assert matplotlib.get_backend().lower() == "agg"
     with pytest.raises(ValueError, match="letters, digits"):
         draw(_actuals(), key="bad key", svg=True)
+
+
+def test_page_charts_do_not_load_matplotlib() -> None:
+    """SVG for pages is written without matplotlib: a process that draws every kind as SVG never
+    imports it (only the e-mail's PNG does)."""
+    script = (
+        "import sys, numpy as np\n"
+        "from monitor.notify.charts import ActualsData, HitRateData, draw\n"
+        "p = ('2025-01-05', '2025-01-12', '2025-01-19')\n"
+        "draw(ActualsData('a', p, np.ones(3), np.zeros(3), np.full(3, 2.0), np.ones(3), 0.95),"
+        " key='a')\n"
+        "draw(HitRateData('h', p, np.ones(3, np.int64), np.ones(3, np.int64), 0.9), key='h')\n"
+        "print('matplotlib' in sys.modules)\n"
+    )
+    result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                            check=True, cwd=Path(__file__).resolve().parents[2],
+                            env={**os.environ, "PYTHONPATH": str(Path(__file__).resolve()
+                                                                 .parents[2])})
+    assert result.stdout.strip() == "False"
