@@ -94,8 +94,8 @@ def test_digest_changes_since_the_last_digest(history: History) -> None:
         f"{len(open_now)} open findings need attention (1 critical, 1 warning and 2 notices); "
         "most urgent: South (delivery_hours): the relationship changed around ")
     assert digest.sentence.endswith(
-        "(critical). Since the last digest (2025-01-06 08:00 Europe/Berlin): 1 newly raised, 1 no "
-        "longer seen.")
+        "(critical). Since the last digest (2025-01-06 08:00 Europe/Berlin): 1 newly raised and "
+        "still open, 1 no longer seen.")
 
 
 def test_digest_forecasts_for_the_coming_period(history: History) -> None:
