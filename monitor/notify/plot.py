@@ -173,12 +173,16 @@ class Scale:
 
 
 def nice_ticks(low: float, high: float, target: int = 5) -> tuple[FloatArray, float]:
-    """Ticks at multiples of 1, 2, 2.5 or 5 × 10^k inside [``low``, ``high``], about ``target``
-    of them, and their step."""
-    span = high - low
-    raw = span / max(target, 1)
-    magnitude = 10.0 ** math.floor(math.log10(raw))
-    step = next(m * magnitude for m in (1.0, 2.0, 2.5, 5.0, 10.0) if m * magnitude >= raw * 0.999)
+    """Ticks at multiples of a step of 1, 2, 2.5 or 5 × 10^k inside [``low``, ``high``]: the
+    step whose count of ticks is nearest ``target`` (the wider step on a tie), and that step."""
+    magnitude = 10.0 ** math.floor(math.log10((high - low) / max(target, 1)))
+    best: tuple[float, float] | None = None
+    for step in (m * magnitude * scale for scale in (0.1, 1.0, 10.0)
+                 for m in (1.0, 2.0, 2.5, 5.0)):
+        count = math.floor(high / step + 1e-9) - math.ceil(low / step - 1e-9) + 1
+        if count >= 2 and (best is None or abs(count - target) <= best[0]):
+            best = (abs(count - target), step)
+    step = best[1] if best is not None else (high - low)
     first = math.ceil(low / step - 1e-9)
     last = math.floor(high / step + 1e-9)
     ticks = np.arange(first, last + 1, dtype=float) * step
