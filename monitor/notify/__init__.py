@@ -19,7 +19,8 @@ Public API::
 
 Modules: ``words`` (how things are said), ``views`` (what pages show), ``fits`` (stored fits as
 pages show them), ``series`` (a model's history and chart data from the database), ``charts``
-(matplotlib, SVG and PNG, alt text), ``html`` (jinja2 pages), ``digest``, ``report`` (per pass),
+(each kind's data, alt text, SVG and PNG), ``plot`` (the SVG renderer), ``plot_png`` (the
+e-mail's PNG, matplotlib), ``html`` (jinja2 pages), ``digest``, ``report`` (per pass),
 ``message`` (the neutral message shape), ``templates/``.
 """
 
@@ -39,7 +40,7 @@ if TYPE_CHECKING:
     from monitor.notify.report import PassReport, notify_pass, render_pass_report
 
 # The names above, imported on first use (PEP 562): ``from monitor.notify.words import ...``
-# then loads words.py alone, not the charts and matplotlib, so light commands stay light.
+# then loads words.py alone, not the charts and numpy, so light commands stay light.
 _WHERE = {
     "Digest": "digest", "build_digest": "digest", "digest_message": "digest",
     "render_digest_html": "digest", "render_digest_text": "digest", "write_digest": "digest",

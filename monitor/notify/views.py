@@ -227,8 +227,8 @@ def forecast_view(record: ForecastRecord) -> ForecastView:
 
 @dataclass(frozen=True)
 class ChartView:
-    """A chart on a page: inline SVG markup (made by matplotlib and checked by
-    ``charts.check_svg``; never user text) or, in e-mail, a ``cid:`` reference."""
+    """A chart on a page: inline SVG markup (written by ``plot.to_svg``, text
+    escaped, and checked by ``charts.check_svg``; never user text) or, in e-mail, a ``cid:`` reference."""
 
     title: str
     alt: str
@@ -241,7 +241,7 @@ def chart_view(chart: Chart, *, email: bool = False) -> ChartView:
         return ChartView(chart.title, chart.alt, None, chart.cid)
     if chart.svg is None:
         raise ValueError("a page chart needs its SVG")
-    # The SVG text was produced by matplotlib (text escaped) and passed check_svg.
+    # The SVG text was written by plot.to_svg (text escaped) and passed check_svg.
     return ChartView(chart.title, chart.alt, Markup(chart.svg), None)
 
 
