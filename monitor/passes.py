@@ -789,7 +789,9 @@ def _carry_interrupted_forecasts(
 ) -> None:
     """Forecasts a crashed pass issued since the last finished one are judged for the
     extrapolation finding as if this pass had issued them (it will not issue them again)."""
-    earlier = [f for f in state.store.forecasts_issued_after(name, state.finished_id)
+    # Only the passes between the last finished one and this one: not this pass's own.
+    earlier = [f for f in state.store.forecasts_issued_after(name, state.finished_id,
+                                                             before=state.pass_id)
                if f.pass_id != state.pass_id]
     if not earlier:
         return

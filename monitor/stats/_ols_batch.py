@@ -198,7 +198,17 @@ def fit_batch(
     fast = fast_fit(x_arr, y_arr, mask_arr, intercept)
     out = _fast_arrays(fast, y_arr, mask_arr, intercept, level)
     reasons: list[str | None] = [None] * s_count
-    for i in np.flatnonzero(fast.needs_fallback):
+    # Series with no rows at all (common: the fits after a break, for the many series without
+    # one) all get the one result fit_ols gives for no rows, computed once and set side by side.
+    empty = np.flatnonzero(fast.needs_fallback & (fast.n == 0))
+    if empty.size:
+        first = int(empty[0])
+        single = fit_ols(x_arr[first, mask_arr[first]], y_arr[first, mask_arr[first]],
+                         intercept=intercept, level=level, names=terms[int(intercept) :])
+        _copy_into(out, empty, single, mask_arr[first])
+        for i in empty:
+            reasons[i] = single.reason
+    for i in np.flatnonzero(fast.needs_fallback & (fast.n != 0)):
         single = fit_ols(x_arr[i, mask_arr[i]], y_arr[i, mask_arr[i]], intercept=intercept,
                          level=level, names=terms[int(intercept) :])
         _copy_into(out, int(i), single, mask_arr[i])
@@ -327,8 +337,11 @@ _ARRAY_FIELDS = (
 )
 
 
-def _copy_into(out: dict[str, FloatArray], i: int, fit: OlsFit, rows: NDArray[np.bool_]) -> None:
-    """Write one ``fit_ols`` result into row ``i`` of the batch arrays (None becomes NaN)."""
+def _copy_into(
+    out: dict[str, FloatArray], i: int | NDArray[np.intp], fit: OlsFit, rows: NDArray[np.bool_]
+) -> None:
+    """Write one ``fit_ols`` result into row ``i`` of the batch arrays (None becomes NaN); ``i``
+    may be an array of rows that all get this result (then ``rows`` must select none)."""
     for name in _SCALAR_FIELDS:
         value = getattr(fit, name)
         out[name][i] = math.nan if value is None else float(value)
@@ -336,4 +349,5 @@ def _copy_into(out: dict[str, FloatArray], i: int, fit: OlsFit, rows: NDArray[np
         out[name][i] = np.asarray(getattr(fit, name), dtype=np.float64)
     for name in _ROW_FIELDS:
         out[name][i] = math.nan
-        out[name][i, rows] = getattr(fit, name)
+        if rows.any():
+            out[name][i, rows] = getattr(fit, name)

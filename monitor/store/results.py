@@ -323,11 +323,14 @@ class ResultsMixin(StoreBase):
         )
         return {_series(key): int(count) for key, count in cursor}
 
-    def forecasts_issued_after(self, model: str, pass_id: int) -> list[ForecastRecord]:
-        """Forecasts of ``model`` issued by passes with an id above ``pass_id``."""
+    def forecasts_issued_after(
+        self, model: str, pass_id: int, *, before: int | None = None
+    ) -> list[ForecastRecord]:
+        """Forecasts of ``model`` issued by passes with an id above ``pass_id`` (and below
+        ``before``, when given)."""
         rows = self._dicts(
-            "SELECT * FROM forecasts WHERE model = ? AND pass_id > ? ORDER BY id",
-            (model, pass_id),
+            "SELECT * FROM forecasts WHERE model = ? AND pass_id > ? AND pass_id < ? ORDER BY id",
+            (model, pass_id, before if before is not None else 2**62),
         )
         return [_forecast_record(row) for row in rows]
 

@@ -5,7 +5,7 @@ Run by hand on a quiet machine (CI does not run it; pytest does not collect it):
     .venv/bin/python tests/benchmarks/bench_startup.py [--demo DIR] [--repeat 15]
 
 ``--demo DIR`` uses the workspace of an earlier ``plumbline demo --dir DIR`` (the replayed demo
-database: 125 passes, 17 findings); without it the demo is replayed into a temporary folder
+database: 125 passes); without it the demo is replayed into a temporary folder
 first (a few minutes). Each command runs ``--repeat`` times as a fresh process
 (``python -m monitor ...``, the way the console script starts), in turns, so that a slow moment
 of the machine hits every command alike. Printed: the median and the fastest wall-clock time of

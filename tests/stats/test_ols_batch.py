@@ -236,3 +236,20 @@ def test_batch_follows_fit_ols_on_out_of_range_and_empty_series() -> None:
     assert not fit.fast_path[:4].any() and fit.fast_path[4:].all()
     assert not fit.estimable[:4].any()
     each_series_matches(fit, x, y, mask)
+
+
+@pytest.mark.parametrize(("k", "intercept"), [(1, True), (2, True), (3, False)])
+def test_many_empty_series_among_fitted_ones_each_equal_fit_ols(k: int, intercept: bool) -> None:
+    """The series with no rows (most of a batch after a break, say) share one fit_ols result
+    set side by side; each must still equal its own fit_ols, and the others stay untouched."""
+    x, y, mask = ragged(16, 40, 30, k)
+    empty = np.zeros(40, dtype=bool)
+    empty[[0, 3, 4, 5, 17, 39]] = True
+    mask[empty] = False
+    x[1, 2] = np.nan  # a row the mask keeps but NaN: a fallback series with rows
+    fit = fit_batch(x, y, mask, intercept=intercept)
+    assert not fit.estimable[empty].any() and fit.estimable[~empty & (np.arange(40) != 1)].all()
+    assert len({fit.reason[i] for i in np.flatnonzero(empty)}) == 1
+    assert fit.reason[0] is not None and fit.reason[1] is not None
+    assert fit.reason[1] != fit.reason[0]
+    each_series_matches(fit, x, y, mask)
