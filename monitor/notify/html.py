@@ -4,8 +4,9 @@ Rendering uses jinja2 with the templates inside the package (``monitor/notify/te
 partials start with ``_``) and autoescaping on for every ``.html`` template: series names,
 period labels, file names and messages come from files people drop, and are always escaped.
 The only markup a page takes as is, is chart SVG written by ``plot.to_svg`` (which escapes
-every piece of text) and checked by ``charts.check_svg``. Pages carry their style inline and a Content-Security-Policy that forbids
-scripts and outside fetches, so they work from a file with no network.
+every piece of text) and checked by ``charts.check_svg``. Pages carry their style inline and a
+Content-Security-Policy that forbids scripts and outside fetches, so they work from a file with
+no network.
 
 Files are written atomically (a temporary file, then a rename): a reader never sees half a page.
 File names: ``model-<name>.html``, ``pass-<id>.html``, ``digest-<YYYY-MM-DD>.html``,

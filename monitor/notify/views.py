@@ -227,8 +227,8 @@ def forecast_view(record: ForecastRecord) -> ForecastView:
 
 @dataclass(frozen=True)
 class ChartView:
-    """A chart on a page: inline SVG markup (written by ``plot.to_svg``, text
-    escaped, and checked by ``charts.check_svg``; never user text) or, in e-mail, a ``cid:`` reference."""
+    """A chart on a page: inline SVG markup (written by ``plot.to_svg``, text escaped, and
+    checked by ``charts.check_svg``; never user text) or, in e-mail, a ``cid:`` reference."""
 
     title: str
     alt: str
