@@ -244,9 +244,11 @@ class DaskCompute(Compute):
         try:
             outputs = _results(self._client, futures, check_stop)
         except CancelledError as exc:  # one future or several (Future[s]CancelledError)
+            what = ("lost the Dask scheduler mid-pass" if "scheduler-connection-lost" in str(exc)
+                    else "the Dask cluster dropped a batch")
             raise ComputeLostError(
-                f"compute: the Dask cluster dropped a batch ({_reason(exc)}); the pass stopped "
-                "before recording the model's results and the next pass redoes them"
+                f"compute: {what} ({_reason(exc)}); the pass stopped before recording the "
+                "model's results and the next pass redoes them"
             ) from exc
         except _killed_worker() as exc:
             raise ComputeLostError(

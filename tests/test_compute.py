@@ -13,6 +13,8 @@ each, bound to 127.0.0.1, started once for the module. No part of Dask is replac
   and the pass records the same rows as the local path.
 - Workers that die more often than the scheduler allows: the pass stops early, records nothing
   of the model, keeps its mark, exits 2, and the next pass at the same clock redoes the work.
+- A scheduler process that dies mid-pass: the pass stops early with exit 2, records nothing of
+  the model, keeps its mark, and the next pass redoes the work.
 - An unreachable scheduler: exit 2 with a clear message, and no pass, file move or row recorded.
 - ``compute: {engine: dask, workers: 2}`` through ``plumbline pass`` in a child process, which
   starts and stops its own local cluster.
@@ -399,6 +401,88 @@ def test_workers_lost_too_often_stop_the_pass_cleanly(
     client.wait_for_workers(2, timeout=120)
     assert workspace.run(delivered(week)).stopped_early is None
     _run_panel(workspace, sorted(PANEL_FILES)[2:])
+    assert _without_pass_ids(workspace.database) == _without_pass_ids(panel_oracle.database)
+
+
+# --------------------------------------------------------------------------- a lost scheduler
+
+# Loaded into a scheduler process of its own (``--preload``): the scheduler ends its own process
+# at once, as a crash would, when the first batch of a pass is handed to a worker.
+SCHEDULER_DIES = """
+import os
+from distributed.diagnostics.plugin import SchedulerPlugin
+
+
+class DieAtFirstBatch(SchedulerPlugin):
+    name = "die-at-first-batch"
+
+    def transition(self, key, start, finish, *args, **kwargs):
+        if str(key).startswith("analyse_batch") and finish == "processing":
+            os._exit(1)
+
+
+def dask_setup(scheduler):
+    scheduler.add_plugin(DieAtFirstBatch())
+"""
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+def test_the_scheduler_lost_mid_pass_stops_the_pass_cleanly(
+    tmp_path: Path, panel_oracle: Workspace, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A scheduler process that dies while the pass waits for its batches: the pass stops early
+    with exit 2 and a message that says so, records nothing of the model and keeps its mark;
+    the next pass (here on the local engine, as an operator would fall back) redoes the work
+    and the history ends equal to the local path's."""
+    preload = tmp_path / "scheduler_dies.py"
+    preload.write_text(SCHEDULER_DIES, encoding="utf-8")
+    address = f"tcp://127.0.0.1:{_free_port()}"
+    environment = {**os.environ, "PYTHONPATH": str(REPO_ROOT)}
+    scheduler = subprocess.Popen(
+        [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
+         "--port", address.rsplit(":", 1)[1], "--no-dashboard", "--no-show",
+         "--preload", str(preload)],
+        env=environment, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+    )
+    worker = subprocess.Popen(
+        [sys.executable, "-m", "distributed.cli.dask_worker", address, "--nthreads", "1",
+         "--nworkers", "1", "--no-dashboard", "--host", "127.0.0.1"],
+        env=environment, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+    )
+    try:
+        workspace = _panel(tmp_path / "ws", _compute_yaml(address, batch_size=5))
+        _drop(workspace, FIRST_DROP)
+        capsys.readouterr()
+        assert workspace.cli_pass(delivered(FIRST_DROP)) == 2
+        assert scheduler.wait(timeout=120) == 1  # it died by its own hand, as planned
+        err = capsys.readouterr().err
+        assert "compute: lost the Dask scheduler mid-pass" in err, err
+        assert "the pass stopped before recording the model's results" in err
+        assert "the next pass redoes them" in err
+    finally:
+        for process in (worker, scheduler):
+            if process.poll() is None:
+                process.kill()
+            process.wait(timeout=60)
+
+    (status, stopped, mark) = workspace.query(
+        "SELECT status, json_extract(counts, '$.stopped_early'), "
+        "json_extract(counts, '$.observation_mark') FROM passes ORDER BY id DESC LIMIT 1")[0]
+    assert (status, stopped, mark) == ("finished", "refit", 0)
+    assert workspace.query("SELECT count(*) FROM fits") == [(0,)]
+    assert workspace.query("SELECT count(*) FROM forecasts") == [(0,)]
+    assert workspace.query("SELECT count(*) FROM observations") != [(0,)]  # ingest kept
+
+    # The operator falls back to the local engine; the next pass at the same clock redoes it.
+    workspace.config_path.write_text(
+        workspace.config_path.read_text(encoding="utf-8").split("compute:")[0], encoding="utf-8")
+    assert workspace.run(delivered(FIRST_DROP)).stopped_early is None
+    _run_panel(workspace, sorted(PANEL_FILES)[1:])
     assert _without_pass_ids(workspace.database) == _without_pass_ids(panel_oracle.database)
 
 
