@@ -15,6 +15,8 @@ File names: ``model-<name>.html``, ``pass-<id>.html``, ``digest-<YYYY-MM-DD>.htm
 
 from __future__ import annotations
 
+import contextlib
+import hashlib
 import os
 import re
 import tempfile
@@ -86,18 +88,55 @@ TABLE_CAP = 200
 _ZONE_ORDER = {"red": 0, "yellow": 1, "green": 2, None: 3}
 
 
+# The environment's settings as plain data: they go into the name of each compiled template in
+# the bytecode cache, so a cache written under other settings is never read.
+_SETTINGS: dict[str, Any] = {
+    "trim_blocks": True,
+    "lstrip_blocks": True,
+    "keep_trailing_newline": True,
+}
+_AUTOESCAPE: dict[str, Any] = {
+    "enabled_extensions": ("html",),
+    "disabled_extensions": ("txt", "css"),
+    "default_for_string": True,
+    "default": True,
+}
+
+
+class TemplateCache(jinja2.FileSystemBytecodeCache):
+    """Compiled templates kept between processes, so a one-shot ``plumbline pass`` does not parse
+    and compile the templates again (about 60 ms of a 200-series weekly pass; a daemon compiles
+    them once anyway). jinja2's own per-user folder in the temp directory (mode 0700, its owner
+    checked by jinja2); each file is named by the template's path, and its content checked
+    against the template's source, so an edited template is compiled afresh. A cache that
+    cannot be written is no failure: the template is used as compiled."""
+
+    def dump_bytecode(self, bucket: jinja2.bccache.Bucket) -> None:
+        with contextlib.suppress(OSError):
+            super().dump_bytecode(bucket)
+
+
+def template_cache(directory: str | None = None) -> TemplateCache | None:
+    """The bytecode cache (``directory``: jinja2's default when None), or None when no safe
+    folder can be had."""
+    key = hashlib.sha256(
+        repr((sorted(_SETTINGS.items()), sorted(_AUTOESCAPE.items()), __version__,
+              jinja2.__version__)).encode()
+    ).hexdigest()[:12]
+    try:
+        return TemplateCache(directory, pattern=f"plumbline-{key}-%s.cache")
+    except (OSError, RuntimeError):  # RuntimeError: jinja2 found no safe folder
+        return None
+
+
 @cache
 def environment() -> jinja2.Environment:
     env = jinja2.Environment(
         loader=jinja2.PackageLoader("monitor.notify", "templates"),
-        autoescape=jinja2.select_autoescape(
-            enabled_extensions=("html",), disabled_extensions=("txt", "css"),
-            default_for_string=True, default=True,
-        ),
+        autoescape=jinja2.select_autoescape(**_AUTOESCAPE),
         undefined=jinja2.StrictUndefined,
-        trim_blocks=True,
-        lstrip_blocks=True,
-        keep_trailing_newline=True,
+        bytecode_cache=template_cache(),
+        **_SETTINGS,
     )
     env.globals["model_page"] = model_page_name
     env.globals["version"] = __version__

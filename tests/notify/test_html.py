@@ -5,11 +5,16 @@ messages (one per recipient, findings with an owner's note left out). Pages are 
 
 from __future__ import annotations
 
+import os
 import re
+import subprocess
+import sys
+import tempfile
 from dataclasses import dataclass, field
 from html.parser import HTMLParser
 from pathlib import Path
 
+import jinja2
 import pytest
 from _looks import assert_no_borrowed_looks
 from report_history import (
@@ -21,8 +26,8 @@ from report_history import (
     copy_history,
 )
 
-from monitor.notify import render_pass_report, write_index, write_model_pages
-from monitor.notify.html import attention_sentence, environment, render
+from monitor.notify import html, render_pass_report, write_index, write_model_pages
+from monitor.notify.html import attention_sentence, environment, render, template_cache
 from monitor.notify.words import MISS_WORDS
 from monitor.store import Store
 from monitor.vocabulary import Finding, FindingKind, Severity
@@ -356,3 +361,57 @@ def test_model_page_tables_are_capped_for_large_models(
             names = {text_of(cell) for row in rows for cell in page.elements
                      if cell.tag == "td" and cell.within(row)}
             assert flagged <= names  # South and the script-named depot, not North
+
+
+_RENDER_INDEX = (
+    "import sys\n"
+    "from monitor.notify.html import environment, render\n"
+    "env = environment()\n"
+    "print(type(env.bytecode_cache).__name__, env.bytecode_cache.directory)\n"
+    "sys.stdout.write(render('index.html', page_title='<b>x</b>', masthead='', digests=[],"
+    " models=[], passes=[]))\n"
+)
+
+
+def _fresh_process(temp: Path) -> tuple[str, str]:
+    """(cache line, page) from a new interpreter whose temp directory is ``temp``."""
+    root = Path(__file__).resolve().parents[2]
+    result = subprocess.run([sys.executable, "-c", _RENDER_INDEX], capture_output=True,
+                            text=True, check=True, cwd=root,
+                            env={**os.environ, "PYTHONPATH": str(root), "TMPDIR": str(temp)})
+    first, _, page = result.stdout.partition("\n")
+    return first, page
+
+
+def test_compiled_templates_are_kept_between_processes(tmp_path: Path) -> None:
+    """A one-shot pass reads the compiled templates a previous process wrote (jinja2's
+    per-user folder in the temp directory) and renders the same page from them."""
+    line, cold = _fresh_process(tmp_path)
+    kind, folder = line.split(" ", 1)
+    assert kind == "TemplateCache" and Path(folder).parent == tmp_path
+    written = sorted(Path(folder).glob("plumbline-*.cache"))
+    assert {p.stat().st_size > 0 for p in written} == {True}
+    assert len(written) >= 2  # index.html and the layout it extends
+    stamps = [p.stat().st_mtime_ns for p in written]
+    _, warm = _fresh_process(tmp_path)
+    assert warm == cold and "&lt;b&gt;x&lt;/b&gt;" in warm
+    assert [p.stat().st_mtime_ns for p in written] == stamps  # read, not written again
+
+
+def test_a_cache_that_cannot_be_written_is_no_failure(tmp_path: Path) -> None:
+    cache = template_cache(str(tmp_path / "missing"))  # dumps fail: the folder does not exist
+    assert cache is not None
+    env = jinja2.Environment(loader=jinja2.DictLoader({"t.html": "{{ x }}!"}),
+                             bytecode_cache=cache, autoescape=True)
+    assert env.get_template("t.html").render(x="<a>") == "&lt;a&gt;!"
+
+
+def test_cache_names_change_with_the_settings() -> None:
+    one = template_cache(tempfile.gettempdir())
+    assert one is not None
+    html._SETTINGS["trim_blocks"] = False
+    try:
+        other = template_cache(tempfile.gettempdir())
+    finally:
+        html._SETTINGS["trim_blocks"] = True
+    assert other is not None and one.pattern != other.pattern
