@@ -208,8 +208,9 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
     break_rows = after_break.sum(axis=1).astype(np.int64)
     before_fit = fit_batch(batch.x, batch.y, before_mask, intercept=batch.intercept,
                            level=batch.level, names=names)
-    after_fit = fit_batch(batch.x, batch.y, after_break, intercept=batch.intercept,
-                          level=batch.level, names=names)
+    # With no alarm both masks select nothing: the same (empty) fits, so made once.
+    after_fit = before_fit if not crossed.any() else fit_batch(
+        batch.x, batch.y, after_break, intercept=batch.intercept, level=batch.level, names=names)
     break_tested = (crossed & (break_rows >= MIN_ROWS_AFTER_BREAK)
                     & before_fit.estimable & after_fit.estimable)
     break_shift = slope_shift(
