@@ -95,7 +95,8 @@ def render_pass_pages(config: PlumblineConfig) -> list[Path]:
         chosen = sorted({passes[0].id, *eventful[:DEMO_PASS_PAGES - 1]})
         paths = []
         for pass_id in chosen:
-            render_pass_report(store, config, pass_id, write_models=False)
+            # Pages only: the demo sends nothing, so no e-mail (and no PNG) is built.
+            render_pass_report(store, config, pass_id, write_models=False, messages=False)
             paths.append(Path(config.notify.html_dir) / pass_page_name(pass_id))
         return paths
 

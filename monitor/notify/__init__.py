@@ -4,7 +4,7 @@ sends (``monitor/notify/mail.py`` turns a ``MessageContent`` into MIME and deliv
 Public API::
 
     render_pass_report(store, config, pass_id, *, out_dir=None, escalated=(),
-                       write_models=True) -> PassReport
+                       write_models=True, messages=True) -> PassReport
         after a pass: writes pass-<id>.html, the model pages and the index; PassReport.messages
         holds one OwnerMessage per recipient with new, cleared or more severe findings
     notify_pass(store, config, pass_id, *, now, notify=None, deliver=True)

@@ -1,7 +1,7 @@
 """What a pass tells people: its page, and one message per recipient with new or cleared findings.
 
     render_pass_report(store, config, pass_id, *, out_dir=None, escalated=(),
-                       write_models=True) -> PassReport
+                       write_models=True, messages=True) -> PassReport
 
 writes ``pass-<id>.html`` (with ``write_models``, every model's page and the index too) and
 returns the pass's new and cleared findings and, for each recipient, one ``OwnerMessage``
@@ -206,6 +206,7 @@ def render_pass_report(
     escalated: Iterable[int] = (),
     notify: Iterable[int] | None = None,
     write_models: bool = True,
+    messages: bool = True,
     before_pages: Callable[[tuple[OwnerMessage, ...]], None] | None = None,
 ) -> PassReport:
     """Write the pass's page (and the model pages and index) and build its messages.
@@ -216,6 +217,9 @@ def render_pass_report(
     ``notify``, when given, is the pass's own list of findings to send (``findings_to_notify``:
     raised, more severe, no longer seen; those with an owner's note left out): the messages cover
     exactly those, and any among them neither raised nor cleared in this pass counts as more severe.
+
+    ``messages=False`` writes the pages only (the report's ``messages`` are then empty): no
+    e-mail is rendered and no PNG drawn, for a caller that would throw them away.
     """
     record = store.get_pass(pass_id)
     if record is None:
@@ -231,9 +235,9 @@ def render_pass_report(
             if f is not None and f.id not in raised and f.state.value != "cleared"]
     histories = _Histories(store, config)  # each model read once, when first needed
 
-    messages = []
+    built = []
     recipients: dict[str, list[FindingRecord]] = {}
-    for finding in (*new, *cleared, *rose):
+    for finding in (*new, *cleared, *rose) if messages else ():
         if finding.noted or (wanted is not None and finding.id not in wanted):
             continue
         for address in _recipients(config, finding):
@@ -255,12 +259,12 @@ def render_pass_report(
             images=tuple(InlineImage(c.cid, c.png, c.filename) for c in charts
                          if c.png is not None),
         )
-        messages.append(OwnerMessage(address, tuple(models), f"pass:{pass_id}:{address}",
-                                     content))
+        built.append(OwnerMessage(address, tuple(models), f"pass:{pass_id}:{address}",
+                                  content))
     # The messages are handed over before any page is written: a reports folder that cannot be
     # written (full, read-only, permissions) then never costs a message.
     if before_pages is not None:
-        before_pages(tuple(messages))
+        before_pages(tuple(built))
     html, _ = _render("pass.html", store, config, record, histories, new, cleared, rose,
                       email=False)
     path = write_page(folder, pass_page_name(pass_id), html)
@@ -277,7 +281,7 @@ def render_pass_report(
         if names:
             write_model_pages(store, config, folder, models=names, histories=histories)
     write_index(store, config, folder)
-    return PassReport(pass_id, path, tuple(new), tuple(cleared), tuple(rose), tuple(messages))
+    return PassReport(pass_id, path, tuple(new), tuple(cleared), tuple(rose), tuple(built))
 
 
 # Keys of a pass's counts that are bookkeeping rather than news for a reader.

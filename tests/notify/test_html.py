@@ -217,6 +217,21 @@ def test_pass_messages_one_per_recipient(history: History) -> None:
     assert depots.content.images  # the depots' new findings come with their charts
 
 
+def test_pages_only_build_no_message(history: History) -> None:
+    """``messages=False`` (the demo's pass pages) writes the same page and builds no e-mail."""
+    last = history.pass_ids[-1]
+    with history.open() as store:
+        _extra_findings(store, last)
+        full = render_pass_report(store, history.config, last, write_models=False)
+        page = full.path.read_text(encoding="utf-8")
+        full.path.unlink()
+        quiet = render_pass_report(store, history.config, last, write_models=False,
+                                   messages=False)
+    assert full.messages and quiet.messages == ()
+    assert quiet.path == full.path and quiet.path.read_text(encoding="utf-8") == page
+    assert quiet.new == full.new and quiet.cleared == full.cleared
+
+
 def test_findings_with_an_owners_note_are_not_sent(history: History) -> None:
     week = 50  # pass 51 raised only the rejected file on feed depots
     pass_id = history.pass_ids[week]
