@@ -29,6 +29,7 @@ from typing import Literal, Protocol
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from monitor.figures import statistic_number
 from monitor.stats.accuracy import AccuracyBatch
 from monitor.stats.coverage import CoverageBatch, CoverageZone
 from monitor.stats.multitest import benjamini_hochberg
@@ -323,7 +324,7 @@ def forecast_bias_conditions(
             None if math.isnan(signal) else signal, float(p[i]), since[i],
             f"Over the latest {int(scored[i])} scored forecasts{_series_label(name)} the actuals "
             f"came in {side} the forecasts on average by {abs(mean_error):.4g} (tracking signal "
-            f"{signal:.1f}; test of the mean error p {format_p_value(float(p[i]))}).",
+            f"{statistic_number(signal)}; test of the mean error p {format_p_value(float(p[i]))}).",
             "Look for a level change or a missing predictor; the intervals are centred in the "
             "wrong place until the model follows it.",
         ))
@@ -394,16 +395,17 @@ def slope_shift_conditions(
             first = break_since[i] if break_since is not None else None
             message = (
                 f"Since the estimated break at {first}, the slope on {slopes[j]}"
-                f"{_series_label(name)} differs from the one before it by {abs(t_value):.1f} "
-                f"combined standard errors (p {format_p_value(p_j)})."
+                f"{_series_label(name)} differs from the one before it by "
+                f"{statistic_number(abs(t_value))} combined standard errors "
+                f"(p {format_p_value(p_j)})."
             )
         else:
             first = since[i]
             message = (
                 f"The slope on {slopes[j]}{_series_label(name)} over "
                 f"{_span_text(recents[i]) if recents[i] else 'the latest periods'} differs from "
-                f"its slope {_start_text(starts[i])}, by {abs(t_value):.1f} combined standard "
-                f"errors (p {format_p_value(p_j)})."
+                f"its slope {_start_text(starts[i])}, by {statistic_number(abs(t_value))} "
+                f"combined standard errors (p {format_p_value(p_j)})."
             )
         out.append(Condition(
             FindingKey(FindingKind.SLOPE_SHIFT, model, name, None), holds,
@@ -452,9 +454,9 @@ def structural_break_conditions(
             FindingKind.STRUCTURAL_BREAK.declaration.severity, float(ratio_a[i]), float(p[i]),
             break_period[i],
             f"Since {_after_text(starts[i])}, the forecast errors{_series_label(name)} have "
-            f"added up past the monitoring boundary ({float(ratio_a[i]):.2f} times it; p "
-            f"{format_p_value(float(p[i]))} over the monitoring horizon, controlled across the "
-            f"model's series){start}.",
+            f"added up past the monitoring boundary ({statistic_number(float(ratio_a[i]))} "
+            f"times it; p {format_p_value(float(p[i]))} over the monitoring horizon, controlled "
+            f"across the model's series){start}.",
             "The relationship the forecasts rest on has probably changed: review recent "
             "periods, then rebaseline from the estimated break or refit with the cause.",
         ))

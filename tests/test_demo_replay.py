@@ -353,3 +353,25 @@ def test_every_finding_names_the_pass_its_figures_came_from(replayed: ReplayResu
         assert view.checked == expected[view.id]
     text = " ".join(render_digest_text(digest).split())
     assert all(f"(checked by {expected[v.id]})" in text for v in digest.open_findings)
+
+
+def test_a_findings_message_and_its_statistic_give_one_figure(
+    findings: list[FindingRecord],
+) -> None:
+    """The number the message quotes and the one under "Behind it" are the same figure with the
+    same precision (one rule per quantity, ``monitor.figures``), for the kinds that quote it."""
+    from monitor.figures import statistic_number
+    from monitor.notify.words import statistic_text
+    from monitor.vocabulary import FindingKind
+
+    quoting = {FindingKind.STRUCTURAL_BREAK, FindingKind.SLOPE_SHIFT, FindingKind.FORECAST_BIAS}
+    checked = 0
+    for finding in findings:
+        if finding.kind not in quoting or finding.statistic is None:
+            continue
+        figure = statistic_number(abs(finding.statistic))
+        assert re.search(rf"(?<![\d.]){re.escape(figure)}(?![\d])", finding.message), (
+            figure, finding.message)
+        assert figure in statistic_text(finding.kind, finding.statistic, finding.p_value)
+        checked += 1
+    assert checked >= 5
