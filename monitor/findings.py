@@ -29,7 +29,7 @@ from typing import Literal, Protocol
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from monitor.figures import statistic_number
+from monitor.figures import level_text, percent, statistic_number
 from monitor.stats.accuracy import AccuracyBatch
 from monitor.stats.coverage import CoverageBatch, CoverageZone
 from monitor.stats.multitest import benjamini_hochberg
@@ -197,8 +197,8 @@ def coverage_conditions(
         zone = audit.zone[i]
         own_text = (
             f"{int(audit.hits[i])} of {int(scored[i])} actuals{_series_label(name)} fell inside "
-            f"their {audit.nominal:.0%} prediction intervals (hit rate {hit_rate:.0%}: "
-            f"{_misses_words(zone)})"
+            f"their {level_text(audit.nominal)} prediction intervals (hit rate "
+            f"{percent(hit_rate)}: {_misses_words(zone)})"
             + (f"; Kupiec p {format_p_value(float(p[i]))}" if own_judged else "")
         )
         if calibrated is None:
@@ -215,7 +215,7 @@ def coverage_conditions(
         cal_zone = calibrated.zone[i]
         cal_text = (
             f"{int(calibrated.hits[i])} of {int(cal_scored[i])} inside the calibrated intervals "
-            f"issued beside them (from the model's own recent errors; hit rate {cal_rate:.0%}"
+            f"issued beside them (from the model's own recent errors; hit rate {percent(cal_rate)}"
             + (f", Kupiec p {format_p_value(float(cal_p[i]))})" if cal_judged else ")")
             if cal_scored[i] else "no calibrated interval scored yet"
         )
