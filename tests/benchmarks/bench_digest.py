@@ -29,7 +29,7 @@ from monitor.notify import build_digest, digest_message, render_pass_report, wri
 from monitor.notify.digest import render_digest_html
 from monitor.notify.html import write_model_pages
 from monitor.stats.coverage import audit_batch
-from monitor.stats.diagnostics import durbin_watson_batch
+from monitor.stats.diagnostics import breusch_godfrey_batch, durbin_watson_batch
 from monitor.stats.ols import fit_batch
 from monitor.store import FileOutcome, FitRow, ForecastRow, ObservationRow, Store, date_period_key
 from monitor.vocabulary import Finding, Outcome, classify_outcome
@@ -112,6 +112,7 @@ def populate(root: Path) -> Path:
             y = basket[:, first:week + 1]
             fit = fit_batch(x, y, level=0.95, names=["footfall"])
             dw = durbin_watson_batch(fit.residuals)
+            bg = breusch_godfrey_batch(fit.residuals, x)
             window_first = (FIRST_WEEK + timedelta(days=7 * first)).isoformat()
             fits = [FitRow(
                 model="basket_value", version=1, series=name, n=int(y.shape[1]), estimable=True,
@@ -155,7 +156,7 @@ def populate(root: Path) -> Path:
                 since = [None] * SERIES
                 conditions = coverage_conditions("basket_value", names, batch, thresholds, since)
                 conditions += autocorrelation_conditions("basket_value", names, dw.statistic,
-                                                         since)
+                                                         bg.p_value, thresholds, since)
                 for c in conditions:
                     if c.holds:
                         store.upsert_finding(Finding(
