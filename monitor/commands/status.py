@@ -56,6 +56,9 @@ def finding_record(f: FindingRecord) -> dict[str, Any]:
             "at": f.note.at.isoformat(), "by": f.note.by, "text": f.note.text,
         },
         "note_count": f.note_count,
+        # the check its figures came from: the latest pass in which the condition held
+        "checked_pass": f.last_pass_id,
+        "checked_at": None if f.last_held_at is None else f.last_held_at.isoformat(),
     }
 
 
