@@ -790,9 +790,7 @@ def _carry_interrupted_forecasts(
     """Forecasts a crashed pass issued since the last finished one are judged for the
     extrapolation finding as if this pass had issued them (it will not issue them again)."""
     # Only the passes between the last finished one and this one: not this pass's own.
-    earlier = [f for f in state.store.forecasts_issued_after(name, state.finished_id,
-                                                             before=state.pass_id)
-               if f.pass_id != state.pass_id]
+    earlier = state.store.forecasts_issued_after(name, state.finished_id, before=state.pass_id)
     if not earlier:
         return
     position = {s: i for i, s in enumerate(series)}

@@ -328,10 +328,10 @@ class ResultsMixin(StoreBase):
     ) -> list[ForecastRecord]:
         """Forecasts of ``model`` issued by passes with an id above ``pass_id`` (and below
         ``before``, when given)."""
+        upper, params = ("", (model, pass_id)) if before is None else (
+            " AND pass_id < ?", (model, pass_id, before))
         rows = self._dicts(
-            "SELECT * FROM forecasts WHERE model = ? AND pass_id > ? AND pass_id < ? ORDER BY id",
-            (model, pass_id, before if before is not None else 2**62),
-        )
+            f"SELECT * FROM forecasts WHERE model = ? AND pass_id > ?{upper} ORDER BY id", params)
         return [_forecast_record(row) for row in rows]
 
     def series_scored_after(self, model: str, pass_id: int) -> set[str | None]:
