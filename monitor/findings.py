@@ -32,6 +32,7 @@ from numpy.typing import ArrayLike, NDArray
 from monitor.figures import level_text, percent, statistic_number
 from monitor.stats.accuracy import AccuracyBatch
 from monitor.stats.coverage import CoverageBatch, CoverageZone
+from monitor.stats.errorcusum import ErrorCusumBatch, implied_coverage
 from monitor.stats.multitest import benjamini_hochberg
 from monitor.text import format_p_value
 from monitor.vocabulary import FindingKind, Severity
@@ -156,29 +157,45 @@ def coverage_conditions(
     model: str,
     series: Sequence[str | None],
     audit: CoverageBatch,
+    chart: ErrorCusumBatch,
     thresholds: DecisionThresholds,
     since: Sequence[str | None],
     calibrated: CoverageBatch | None = None,
+    calibrated_chart: ErrorCusumBatch | None = None,
     calibrated_since: Sequence[str | None] | None = None,
 ) -> list[Condition]:
-    """``coverage``: enough scored forecasts, hit rate below nominal, Kupiec rejects after BH.
+    """``coverage``: the errors outgrew the intervals by more than chance allows.
 
-    Kupiec's test is two-sided, so the hit rate must also be below nominal: intervals that are
-    too wide are not a coverage problem the owner needs waking for. Severity ``critical`` in the
-    red zone (Basel Committee 1996), ``warning`` otherwise. ``audit`` entries align with ``series``.
+    The decision is the chart of ``monitor.stats.errorcusum``, a cumulative sum of the errors'
+    size against their intervals. A series is judged once it has ``min_scored`` scored
+    forecasts, and the condition holds while the chart's current excursion is under way (the
+    chart above zero) with more misses in it than the interval's level leads one to expect, and
+    the chance that a series with correct intervals climbs as high within the horizon survives
+    Benjamini–Hochberg across the model's series at ``fdr`` and is below ``significance``. The
+    chart only climbs on errors larger than the intervals assume, so intervals that are too wide
+    never raise it. That p-value is valid whichever pass reads it, so the false share among the
+    coverage findings raised over a whole horizon stays within ``fdr``, not only pass by pass
+    (see the module).
 
-    ``calibrated``: for a model with ``interval_method: calibrated``, the audit of the calibrated
-    intervals issued beside the model's own, aligned with ``audit``. Each interval is judged by
-    the same rule (its own BH family); the condition holds when either fell short, and its
+    ``audit`` (the latest ``recent`` forecasts) gives the hit rate and its Basel zone (Basel
+    Committee 1996) the message shows: severity ``critical`` in the red zone, ``warning``
+    otherwise. ``since``: the period of the forecast that started the current excursion.
+    ``audit``, ``chart`` and ``since`` align with ``series``.
+
+    ``calibrated`` and ``calibrated_chart``: for a model with ``interval_method: calibrated``,
+    the same for the calibrated intervals issued beside the model's own. Each interval is judged
+    by the same rule (its own BH family); the condition holds when either fell short, and its
     message says which (statistic and p-value are those of the one that fell short, the model's
     own when both did; so is ``since_period``, from ``calibrated_since`` for the calibrated one).
     """
     scored = np.asarray(audit.scored)
-    p = np.where(scored >= thresholds.min_scored, audit.kupiec_p_value, np.nan)
+    p = _chart_p_values(chart, thresholds)
     rejected = reject(FindingKind.COVERAGE, p, thresholds)
     if calibrated is not None:
+        if calibrated_chart is None:
+            raise ValueError("the calibrated intervals' audit needs their chart beside it")
         cal_scored = np.asarray(calibrated.scored)
-        cal_p = np.where(cal_scored >= thresholds.min_scored, calibrated.kupiec_p_value, np.nan)
+        cal_p = _chart_p_values(calibrated_chart, thresholds)
         cal_rejected = reject(FindingKind.COVERAGE, cal_p, thresholds)
     declared = FindingKind.COVERAGE.declaration
 
@@ -193,13 +210,14 @@ def coverage_conditions(
         if not own_judged and not cal_judged:
             continue
         hit_rate = float(audit.hit_rate[i])
-        own_short = own_judged and bool(rejected[i]) and hit_rate < audit.nominal
+        own_short = own_judged and bool(rejected[i]) and _short(chart, i, audit.nominal)
         zone = audit.zone[i]
         own_text = (
-            f"{int(audit.hits[i])} of {int(scored[i])} actuals{_series_label(name)} fell inside "
-            f"their {level_text(audit.nominal)} prediction intervals (hit rate "
+            f"{int(audit.hits[i])} of the latest {int(scored[i])} actuals{_series_label(name)} "
+            f"fell inside their {level_text(audit.nominal)} prediction intervals (hit rate "
             f"{percent(hit_rate)}: {_misses_words(zone)})"
-            + (f"; Kupiec p {format_p_value(float(p[i]))}" if own_judged else "")
+            + (f"; {_excursion_words(chart, i, since[i], float(p[i]), audit.nominal)}"
+               if own_judged else "")
         )
         if calibrated is None:
             out.append(Condition(
@@ -210,13 +228,18 @@ def coverage_conditions(
                 "refit before relying on these intervals.",
             ))
             continue
+        assert calibrated_chart is not None
         cal_rate = float(calibrated.hit_rate[i])
-        cal_short = cal_judged and bool(cal_rejected[i]) and cal_rate < calibrated.nominal
+        cal_short = (cal_judged and bool(cal_rejected[i])
+                     and _short(calibrated_chart, i, calibrated.nominal))
         cal_zone = calibrated.zone[i]
+        cal_first = None if calibrated_since is None else calibrated_since[i]
+        level = calibrated.nominal
         cal_text = (
             f"{int(calibrated.hits[i])} of {int(cal_scored[i])} inside the calibrated intervals "
             f"issued beside them (from the model's own recent errors; hit rate {percent(cal_rate)}"
-            + (f", Kupiec p {format_p_value(float(cal_p[i]))})" if cal_judged else ")")
+            + (f"; {_excursion_words(calibrated_chart, i, cal_first, float(cal_p[i]), level)})"
+               if cal_judged else ")")
             if cal_scored[i] else "no calibrated interval scored yet"
         )
         if own_short and cal_short:
@@ -248,6 +271,34 @@ def coverage_conditions(
             action,
         ))
     return out
+
+
+def _chart_p_values(chart: ErrorCusumBatch, thresholds: DecisionThresholds) -> NDArray[np.float64]:
+    """The chart's p-values where at least ``min_scored`` forecasts were scored, else NaN."""
+    return np.where(np.asarray(chart.scored) >= thresholds.min_scored, chart.p_value, np.nan)
+
+
+def _short(chart: ErrorCusumBatch, i: int, level: float) -> bool:
+    """The chart's excursion is under way with more misses than ``level`` leads one to expect."""
+    return (float(chart.height[i]) > 0
+            and int(chart.excursion_misses[i]) > int(chart.excursion_scored[i]) * (1 - level))
+
+
+def _excursion_words(chart: ErrorCusumBatch, i: int, since: str | None, p: float,
+                     level: float) -> str:
+    """What the chart of the errors' size says, in words, since its excursion began."""
+    test = (f"cumulative-sum test of the errors' size over a horizon of {chart.horizon} "
+            f"forecasts, p {format_p_value(p)}")
+    if float(chart.height[i]) == 0:
+        return f"the errors are back within the size the intervals assume ({test})"
+    scored, misses = int(chart.excursion_scored[i]), int(chart.excursion_misses[i])
+    expected = scored * (1 - level)
+    square = float(chart.excursion_mean_square[i])
+    start = f"since {since}" if since is not None else "in the latest run"
+    return (f"{start}, {misses} of {scored} missed where about {expected:.1f} were expected, "
+            f"and the errors were about {math.sqrt(square):.2g} times the size the intervals "
+            f"assume, which would put their real coverage near "
+            f"{percent(implied_coverage(square, level))} ({test})")
 
 
 def _misses_words(zone: CoverageZone | None) -> str:

@@ -89,6 +89,7 @@ from monitor.stats.diagnostics import (
     new_point_p_value,
     variance_increase_p_value,
 )
+from monitor.stats.errorcusum import error_cusum_batch, gaussian_scores
 from monitor.store import (
     BaselineRow,
     FitRow,
@@ -1141,50 +1142,67 @@ def _calibrated(
 
 
 def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
-    """Coverage and clustered misses over each series' latest ``recent`` scored forecasts,
-    for the series that had forecasts scored in this pass."""
+    """Coverage, clustered misses and forecast bias for the series that had forecasts scored in
+    this pass: the chart of the misses over each series' latest horizon of scored forecasts
+    (``monitor.stats.misscusum``), the audit, independence and bias tests over the latest
+    ``recent``."""
     # Series scored by this pass, or by a pass a crash cut short since the last finished one.
     fresh = state.store.series_scored_after(name, state.finished_id)
     if not fresh:
         return
-    scored = state.store.scored_forecasts(name, last=model.recent)
+    horizon = model.horizon if model.horizon is not None else 2 * baseline_rows(model)
+    scored = state.store.scored_forecasts(name, last=max(horizon, model.recent), with_df=True)
     names = sorted(set(scored.series) & fresh, key=lambda v: "" if v is None else v)
     if not names:
         return
     position = {n: i for i, n in enumerate(names)}
     keep = np.array([sr in position for sr in scored.series], dtype=bool)
     group = np.array([position.get(sr, -1) for sr in scored.series])[keep]
-    audit = audit_batch(group, scored.actual[keep], scored.lower[keep], scored.upper[keep],
-                        model.nominal_level)
-    ordered = [names[int(g)] for g in audit.group]
+    actual = scored.actual[keep]
+    lower, upper, point = scored.lower[keep], scored.upper[keep], scored.point[keep]
     periods = np.array(scored.target_period, dtype=object)[keep]
-    misses = np.array([o.value != "hit" for o in scored.outcome])[keep]
-    since: list[str | None] = []
-    for g in audit.group:
-        missed = periods[(group == g) & misses]
-        since.append(str(missed[0]) if missed.size else None)
-    calibrated = None
+    # Rows of one series are in target order; ``recent`` marks each series' latest ``recent``.
+    per_group = np.bincount(group, minlength=len(names))
+    firsts = np.concatenate(([0], np.cumsum(per_group)[:-1]))
+    recent = np.arange(group.size) - firsts[group] >= per_group[group] - model.recent
+    audit = audit_batch(group, actual, lower, upper, model.nominal_level, last=model.recent)
+    ordered = [names[int(g)] for g in audit.group]
+    missed = (actual < lower) | (actual > upper)
+    level = model.nominal_level
+    assert scored.residual_df is not None
+    score = gaussian_scores(actual, point, lower, upper, level, scored.residual_df[keep])
+    chart = error_cusum_batch(group, score, missed, horizon, last=horizon)
+    since = [None if r < 0 else str(periods[r]) for r in chart.start_row]
+    calibrated = calibrated_chart = None
     calibrated_since: list[str | None] | None = None
     if model.calibrated and scored.calibrated_lower is not None and (
             scored.calibrated_upper is not None):
         cal_lower, cal_upper = scored.calibrated_lower[keep], scored.calibrated_upper[keep]
-        if np.isfinite(cal_lower).any():
-            # The calibrated intervals issued beside the model's own, audited the same way.
-            calibrated = audit_batch(group, scored.actual[keep], cal_lower, cal_upper,
-                                     model.nominal_level)
-            actual = scored.actual[keep]
-            cal_miss = np.isfinite(cal_lower) & ((actual < cal_lower) | (actual > cal_upper))
-            calibrated_since = []
-            for g in calibrated.group:
-                missed = periods[(group == g) & cal_miss]
-                calibrated_since.append(str(missed[0]) if missed.size else None)
+        issued = np.isfinite(cal_lower) & np.isfinite(cal_upper)
+        if issued.any():
+            # The calibrated intervals issued beside the model's own, judged the same way.
+            calibrated = audit_batch(group, actual, cal_lower, cal_upper, model.nominal_level,
+                                     last=model.recent)
+            with np.errstate(invalid="ignore"):
+                cal_missed = issued & ((actual < cal_lower) | (actual > cal_upper))
+            # The calibrated interval is no t interval: its errors are scored as normal ones.
+            # A series without a calibrated interval yet keeps its entry (its scores are NaN)
+            # with an empty chart, so the chart lines up with the audit.
+            cal_score = gaussian_scores(actual, point, cal_lower, cal_upper, level)
+            calibrated_chart = error_cusum_batch(group, cal_score, cal_missed, horizon,
+                                                 last=horizon)
+            calibrated_since = [None if r < 0 else str(periods[r])
+                                for r in calibrated_chart.start_row]
     t = model.thresholds
-    state.add(coverage_conditions(name, ordered, audit, t, since, calibrated, calibrated_since),
-              t.clear_after)
-    state.add(clustered_miss_conditions(name, ordered, audit, t, since), t.clear_after)
-    accuracy = accuracy_batch(group, scored.actual[keep], scored.point[keep])
-    first = [str(periods[group == g][0]) for g in accuracy.group]
-    horizon = model.horizon if model.horizon is not None else 2 * baseline_rows(model)
+    state.add(coverage_conditions(name, ordered, audit, chart, t, since, calibrated,
+                                  calibrated_chart, calibrated_since), t.clear_after)
+    first_miss: list[str | None] = []
+    for g in audit.group:
+        in_recent = periods[(group == g) & recent & missed]
+        first_miss.append(str(in_recent[0]) if in_recent.size else None)
+    state.add(clustered_miss_conditions(name, ordered, audit, t, first_miss), t.clear_after)
+    accuracy = accuracy_batch(group[recent], actual[recent], point[recent])
+    first = [str(periods[recent][group[recent] == g][0]) for g in accuracy.group]
     state.add(forecast_bias_conditions(
         name, [names[int(g)] for g in accuracy.group], accuracy, t, first, looks=horizon,
     ), t.clear_after)

@@ -20,6 +20,7 @@ from monitor.findings import (
     weak_fit_conditions,
 )
 from monitor.stats.coverage import audit_batch
+from monitor.stats.errorcusum import ErrorCusumBatch, error_cusum_batch, gaussian_scores
 from monitor.vocabulary import FindingKind, Severity
 
 
@@ -58,6 +59,15 @@ def test_rejected_input_is_one_condition_per_feed() -> None:
     assert not by_feed["b"].holds
 
 
+def _chart(groups: list[int], actual: list[float], lower: list[float],
+           upper: list[float]) -> ErrorCusumBatch:
+    """The chart of these forecasts' errors (normal intervals, the point in the middle), over a
+    horizon of 104."""
+    a, lo, hi = np.array(actual), np.array(lower), np.array(upper)
+    score = gaussian_scores(a, (lo + hi) / 2, lo, hi, 0.95)
+    return error_cusum_batch(np.array(groups), score, (a < lo) | (a > hi), 104)
+
+
 def test_coverage_rule_needs_min_scored_low_hit_rate_and_bh() -> None:
     rng = np.random.default_rng(4)
     n = 40
@@ -74,7 +84,9 @@ def test_coverage_rule_needs_min_scored_low_hit_rate_and_bh() -> None:
             actual.append(0.5 if h else 2.0)
     audit = audit_batch(np.array(groups), np.array(actual), np.array(lower), np.array(upper),
                         0.95)
-    conditions = coverage_conditions("m", ["a", "b", "c"], audit, Thresholds(), ["p"] * 3)
+    conditions = coverage_conditions("m", ["a", "b", "c"], audit,
+                                     _chart(groups, actual, lower, upper), Thresholds(),
+                                     ["p"] * 3)
     by_series = {c.key.series: c for c in conditions}
     assert set(by_series) == {"a", "b"}
     assert by_series["a"].holds and not by_series["b"].holds
@@ -110,8 +122,10 @@ def test_coverage_finding_says_which_interval_fell_short() -> None:
     g = np.array(groups)
     own = audit_batch(g, np.array(actual), np.array(lower), np.array(upper), 0.95)
     cal = audit_batch(g, np.array(actual), np.array(c_lower), np.array(c_upper), 0.95)
-    conditions = coverage_conditions("m", ["a", "b", "c", "d"], own, Thresholds(), ["p"] * 4,
-                                     cal, ["q"] * 4)
+    conditions = coverage_conditions("m", ["a", "b", "c", "d"], own,
+                                     _chart(groups, actual, lower, upper), Thresholds(),
+                                     ["p"] * 4, cal, _chart(groups, actual, c_lower, c_upper),
+                                     ["q"] * 4)
     by = {c.key.series: c for c in conditions}
     assert by["a"].holds and by["a"].message.startswith(
         "The model's intervals fell short; the calibrated ones held")
@@ -125,7 +139,8 @@ def test_coverage_finding_says_which_interval_fell_short() -> None:
     for name in "abc":
         assert "from the model's own recent errors" in by[name].message
     # Without the calibrated audit the rule and its words are what they were.
-    plain = coverage_conditions("m", ["a", "b", "c", "d"], own, Thresholds(), ["p"] * 4)
+    plain = coverage_conditions("m", ["a", "b", "c", "d"], own,
+                                _chart(groups, actual, lower, upper), Thresholds(), ["p"] * 4)
     assert [c.holds for c in plain] == [True, True, False, False]
     assert plain[0].message.endswith("narrower than the errors they meet.")
 

@@ -436,6 +436,9 @@ class ScoredForecasts:
     # The calibrated interval issued beside the model's own; NaN where none was issued.
     calibrated_lower: NDArray[np.float64] | None = None
     calibrated_upper: NDArray[np.float64] | None = None
+    # The residual degrees of freedom of each forecast's fit (NaN: no fit, an interval supplied
+    # from outside); only when asked for (``Store.scored_forecasts(with_df=True)``).
+    residual_df: NDArray[np.float64] | None = None
 
     def __len__(self) -> int:
         return int(self.forecast_id.shape[0])

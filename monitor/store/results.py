@@ -405,12 +405,14 @@ class ResultsMixin(StoreBase):
         all_series: bool = True,
         latest_only: bool = True,
         last: int | None = None,
+        with_df: bool = False,
     ) -> ScoredForecasts:
         """Scored forecasts for the coverage audit, as columns.
 
         ``latest_only``: per (model, series, target period) only the last forecast issued (the
         default audit); False keeps every issue (``--by-lead``). ``last``: only each series'
         latest ``last`` scored target periods. ``all_series=False`` restricts to ``series``.
+        ``with_df``: also each forecast's fit's residual degrees of freedom (``residual_df``).
         """
         if last is not None and last < 1:
             raise ValueError("last must be at least 1")
@@ -420,7 +422,9 @@ class ResultsMixin(StoreBase):
         select = (
             "SELECT f.id, f.model, f.series_key, f.target_period, f.target_period_key, f.lead, "
             "f.issued_at, o.actual, f.point, f.lower, f.upper, f.level, o.outcome, "
-            "f.calibrated_lower, f.calibrated_upper "
+            "f.calibrated_lower, f.calibrated_upper"
+            + (", (SELECT json_extract(fi.inference, '$.residual_df') FROM fits AS fi "
+               "WHERE fi.id = f.fit_id) " if with_df else ", NULL ")
         )
         order = " ORDER BY f.model, f.series_key, f.target_period_key, f.id"
         params: tuple[Any, ...] = (model, int(all_series), _skey(series))
@@ -451,7 +455,7 @@ class ResultsMixin(StoreBase):
         if not keep.all():
             rows = list(compress(rows, keep))
         count = len(rows)
-        columns = [list(map(itemgetter(i), rows)) for i in range(15)]
+        columns = [list(map(itemgetter(i), rows)) for i in range(16)]
         del rows
 
         def numbers(index: int, dtype: type) -> NDArray[Any]:
@@ -474,6 +478,8 @@ class ResultsMixin(StoreBase):
             outcome=tuple(kinds[kind] for kind in columns[12]),
             calibrated_lower=np.array(columns[13], dtype=np.float64).reshape(count),
             calibrated_upper=np.array(columns[14], dtype=np.float64).reshape(count),
+            residual_df=np.array(columns[15], dtype=np.float64).reshape(count) if with_df
+            else None,
         )
 
     # ----------------------------------------------------------------- baselines

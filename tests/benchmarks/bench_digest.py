@@ -30,6 +30,7 @@ from monitor.notify.digest import render_digest_html
 from monitor.notify.html import write_model_pages
 from monitor.stats.coverage import audit_batch
 from monitor.stats.diagnostics import breusch_godfrey_batch, durbin_watson_batch
+from monitor.stats.errorcusum import error_cusum_batch, gaussian_scores
 from monitor.stats.ols import fit_batch
 from monitor.store import FileOutcome, FitRow, ForecastRow, ObservationRow, Store, date_period_key
 from monitor.vocabulary import Finding, Outcome, classify_outcome
@@ -152,9 +153,14 @@ def populate(root: Path) -> Path:
                 groups = {name: i for i, name in enumerate(names)}
                 codes = np.array([groups[s] for s in scored.series])  # type: ignore[index]
                 batch = audit_batch(codes, scored.actual, scored.lower, scored.upper, 0.95)
+                missed = (scored.actual < scored.lower) | (scored.actual > scored.upper)
+                scores = gaussian_scores(scored.actual, scored.point, scored.lower,
+                                         scored.upper, 0.95)
+                chart = error_cusum_batch(codes, scores, missed, 104)
                 thresholds = config.models["basket_value"].thresholds
                 since = [None] * SERIES
-                conditions = coverage_conditions("basket_value", names, batch, thresholds, since)
+                conditions = coverage_conditions("basket_value", names, batch, chart, thresholds,
+                                                 since)
                 conditions += autocorrelation_conditions("basket_value", names, dw.statistic,
                                                          bg.p_value, thresholds, since)
                 for c in conditions:

@@ -41,6 +41,7 @@ from monitor.findings import (
     rejected_input_conditions,
     structural_break_conditions,
 )
+from monitor.passes import baseline_rows
 from monitor.stats.coverage import audit_batch
 from monitor.stats.diagnostics import (
     breusch_godfrey,
@@ -48,6 +49,7 @@ from monitor.stats.diagnostics import (
     durbin_watson,
     jarque_bera,
 )
+from monitor.stats.errorcusum import error_cusum_batch, gaussian_scores
 from monitor.stats.monitoring import monitor, start_monitoring
 from monitor.stats.ols import fit_ols
 from monitor.store import (
@@ -402,10 +404,16 @@ def _findings(store, config, series, baselines, pass_id, week, clock, fit_ids) -
     thresholds = config.models["pick_hours"].thresholds
     scored = store.scored_forecasts("pick_hours")
     if len(scored):
-        batch = audit_batch(np.zeros(len(scored), np.int64), scored.actual, scored.lower,
-                            scored.upper, 0.95, last=26)
-        conditions += coverage_conditions("pick_hours", [None], batch, thresholds,
-                                          [scored.target_period[0]])
+        one = np.zeros(len(scored), np.int64)
+        batch = audit_batch(one, scored.actual, scored.lower, scored.upper, 0.95, last=26)
+        missed = (scored.actual < scored.lower) | (scored.actual > scored.upper)
+        model = config.models["pick_hours"]
+        horizon = model.horizon if model.horizon is not None else 2 * baseline_rows(model)
+        scores = gaussian_scores(scored.actual, scored.point, scored.lower, scored.upper, 0.95)
+        chart = error_cusum_batch(one, scores, missed, horizon, last=horizon)
+        start = int(chart.start_row[0])
+        conditions += coverage_conditions("pick_hours", [None], batch, chart, thresholds,
+                                          [scored.target_period[start] if start >= 0 else None])
     dws, bgs, names = [], [], []
     for (model, ser), (_fit_id, fit, x) in fit_ids.items():
         if model == "pick_hours":
