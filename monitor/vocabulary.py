@@ -98,8 +98,7 @@ class FindingKind(StrEnum):
 
     COVERAGE = "coverage", KindDeclaration(
         "coverage below nominal", Severity.WARNING, EvidenceFamily.SERIES,
-        "hit rate {value:percent} over the latest forecasts; cumulative-sum test of the errors' "
-        "size{p}",
+        "hit rate {value:percent}; cumulative-sum test of the errors' size{p}",
         raised_to=Severity.CRITICAL,
         raised_when="when the misses are far more than expected (the red zone)",
         headline="fewer actuals inside their intervals than promised, since {since}",

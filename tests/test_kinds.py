@@ -48,7 +48,7 @@ def test_reports_and_rebaseline_read_the_declaration() -> None:
 
 def test_statistic_words_follow_the_template() -> None:
     assert statistic_text(FindingKind.COVERAGE, 0.8123, 0.0012) == (
-        "hit rate 81 %; Kupiec test, p 0.0012")
+        "hit rate 81 %; cumulative-sum test of the errors' size, p 0.0012")
     assert statistic_text(FindingKind.SLOPE_SHIFT, -3.456, None) == (
         "slope differs by 3.46 combined standard errors between the periods compared")
     assert statistic_text(FindingKind.REJECTED_INPUT, 0.0, None) == "the whole file"

@@ -285,8 +285,8 @@ def test_model_page_content(history: History) -> None:
     lede = text_of(page.find("p", "lede")[0])
     # The page opens with its worst current figure: the most urgent finding and its number.
     assert re.match(r"Most urgent: coverage below nominal since \d{4}-\d\d-\d\d \(hit rate "
-                    r"\d+ %; Kupiec test, p [\d.]+\)\. One series; 2 open findings \(1 warning "
-                    r"and 1 notice\)\.", lede), lede
+                    r"\d+ %; cumulative-sum test of the errors' size, p [<\d. ]+\)\. One "
+                    r"series; 2 open findings \(1 warning and 1 notice\)\.", lede), lede
     # The newest fit: a sentence with the result, plain columns with the level in the caption.
     assert re.search(r"R² 0\.\d\d on 52 periods \(2024-03-03 to 2025-02-23\); slope [\d.]+ per "
                      r"order_lines, 95 % interval [\d.]+ to [\d.]+\.", page.text)
