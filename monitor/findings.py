@@ -169,9 +169,11 @@ def coverage_conditions(
     The decision is the chart of ``monitor.stats.errorcusum``, a cumulative sum of the errors'
     size against their intervals. A series is judged once it has ``min_scored`` scored
     forecasts, and the condition holds while the chart's current excursion is under way (the
-    chart above zero) with more misses in it than the interval's level leads one to expect, and
-    the chance that a series with correct intervals climbs as high within the horizon survives
-    Benjamini–Hochberg across the model's series at ``fdr`` and is below ``significance``. The
+    chart above zero) with more misses in it than the interval's level leads one to expect,
+    while the hit rate of the latest ``recent`` forecasts is below the level (so a finding
+    clears once the recent forecasts cover again, not only when the chart is back at zero,
+    which after a large climb takes many forecasts), and the chance that a series with correct
+    intervals climbs as high within the horizon survives Benjamini–Hochberg across the model's series at ``fdr`` and is below ``significance``. The
     chart only climbs on errors larger than the intervals assume, so intervals that are too wide
     never raise it. That p-value is valid whichever pass reads it, so the false share among the
     coverage findings raised over a whole horizon stays within ``fdr``, not only pass by pass
@@ -210,7 +212,8 @@ def coverage_conditions(
         if not own_judged and not cal_judged:
             continue
         hit_rate = float(audit.hit_rate[i])
-        own_short = own_judged and bool(rejected[i]) and _short(chart, i, audit.nominal)
+        own_short = (own_judged and bool(rejected[i]) and _short(chart, i, audit.nominal)
+                     and hit_rate < audit.nominal)
         zone = audit.zone[i]
         own_text = (
             f"{int(audit.hits[i])} of the latest {int(scored[i])} actuals{_series_label(name)} "
@@ -231,7 +234,8 @@ def coverage_conditions(
         assert calibrated_chart is not None
         cal_rate = float(calibrated.hit_rate[i])
         cal_short = (cal_judged and bool(cal_rejected[i])
-                     and _short(calibrated_chart, i, calibrated.nominal))
+                     and _short(calibrated_chart, i, calibrated.nominal)
+                     and cal_rate < calibrated.nominal)
         cal_zone = calibrated.zone[i]
         cal_first = None if calibrated_since is None else calibrated_since[i]
         level = calibrated.nominal
