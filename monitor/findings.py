@@ -173,10 +173,11 @@ def coverage_conditions(
     while the hit rate of the latest ``recent`` forecasts is below the level (so a finding
     clears once the recent forecasts cover again, not only when the chart is back at zero,
     which after a large climb takes many forecasts), and the chance that a series with correct
-    intervals climbs as high within the horizon survives Benjamini–Hochberg across the model's series at ``fdr`` and is below ``significance``. The
-    chart only climbs on errors larger than the intervals assume, so intervals that are too wide
-    never raise it. That p-value is valid whichever pass reads it, so the false share among the
-    coverage findings raised over a whole horizon stays within ``fdr``, not only pass by pass
+    intervals climbs as high within the horizon survives Benjamini–Hochberg across the model's
+    series at ``fdr`` and is below ``significance``. The chart only climbs on errors larger
+    than the intervals assume, so intervals that are too wide never raise it. That p-value is
+    valid whichever pass reads it, so the false share among the coverage findings raised over
+    a whole horizon stays within ``fdr``, not only pass by pass
     (see the module).
 
     ``audit`` (the latest ``recent`` forecasts) gives the hit rate and its Basel zone (Basel
