@@ -166,7 +166,7 @@ def _crossing(cells: int, horizon: int) -> float:
     n = cells
     width = h / (n - 0.5)  # middles i·width, edges (k + 0.5)·width; the top edge is h
     # P(from cell i to at most edge k) depends on k − i only: one row of the step's CDF.
-    offsets = (np.arange(-(n - 1), n) + 0.5) * width
+    offsets = ((np.arange(-(n - 1), n) + 0.5) * width).astype(np.float64)
     table = _step_cdf(offsets)
     cdf = table[np.arange(n)[None, :] - np.arange(n)[:, None] + (n - 1)]
     move = np.diff(np.concatenate((np.zeros((n, 1)), cdf), axis=1), axis=1)
