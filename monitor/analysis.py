@@ -152,10 +152,11 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
     fit = fit_batch(batch.x, batch.y, window_mask, intercept=batch.intercept, level=batch.level,
                     names=names)
     fit_rows = window_mask & fit.estimable[:, None]
-    durbin_watson = durbin_watson_batch(np.nan_to_num(fit.residuals), fit_rows)
-    breusch_godfrey = breusch_godfrey_batch(np.nan_to_num(fit.residuals), batch.x, fit_rows)
-    breusch_pagan = breusch_pagan_batch(np.nan_to_num(fit.residuals), batch.x, fit_rows)
-    jarque_bera = jarque_bera_batch(np.nan_to_num(fit.residuals), fit_rows)
+    residuals = np.nan_to_num(fit.residuals)
+    durbin_watson = durbin_watson_batch(residuals, fit_rows)
+    breusch_godfrey = breusch_godfrey_batch(residuals, batch.x, fit_rows)
+    breusch_pagan = breusch_pagan_batch(residuals, batch.x, fit_rows)
+    jarque_bera = jarque_bera_batch(residuals, fit_rows)
 
     has_baseline = (batch.baseline_start >= 0) & (batch.baseline_end > batch.baseline_start)
     start = batch.baseline_start[:, None]

@@ -32,7 +32,7 @@ from typing import Any
 from zoneinfo import ZoneInfo
 
 from monitor.config import PlumblineConfig
-from monitor.store import IssuedForecast, Store, fsync_dir
+from monitor.store import IssuedForecast, Store, fsync_dir, fsync_file
 from monitor.vocabulary import classify_outcome
 
 # (column, what it holds). Issue order: pass, model, series, target period.
@@ -177,7 +177,7 @@ def write_atomically(path: Path, data: bytes) -> None:
         with open(temporary, "wb") as handle:
             handle.write(data)
             handle.flush()
-            os.fsync(handle.fileno())
+            fsync_file(handle.fileno())
         os.replace(temporary, path)
     finally:
         temporary.unlink(missing_ok=True)

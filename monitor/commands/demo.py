@@ -12,6 +12,8 @@ import argparse
 import sys
 import tempfile
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 from monitor.config import PlumblineConfig
@@ -21,9 +23,10 @@ from monitor.errors import UsageError
 from monitor.notify.digest import write_digest
 from monitor.notify.html import pass_page_name
 from monitor.notify.report import render_pass_report
+from monitor.notify.series import ModelHistories
 from monitor.notify.words import SEVERITY_MARKS, finding_headline
 from monitor.passes import PassReport
-from monitor.store import FindingRecord, Store
+from monitor.store import FindingRecord, Store, without_fsync
 from monitor.vocabulary import FindingState
 
 
@@ -63,8 +66,13 @@ def handle(args: argparse.Namespace) -> int:
     result = replay_scenario(root, progress=progress)
     if tty:
         print()
-    pass_pages = render_pass_pages(result.config)
-    digest_path = render_digest(result.config)  # and the index, which links the pass pages
+    with without_fsync(), Store.open(result.config.database) as store:
+        # The database stands still while the pages are written, so each model is read once
+        # for all of them (ModelHistories), not once per page.
+        histories = ModelHistories(store, result.config)
+        pass_pages = render_pass_pages(result.config, store=store, histories=histories)
+        # ... and the index, which links the pass pages
+        digest_path = render_digest(result.config, store=store, histories=histories)
     elapsed = time.perf_counter() - started
     with Store.open(result.config.database, readonly=True) as store:
         findings = store.list_findings(state="all")
@@ -83,10 +91,13 @@ def handle(args: argparse.Namespace) -> int:
 DEMO_PASS_PAGES = 12
 
 
-def render_pass_pages(config: PlumblineConfig) -> list[Path]:
+def render_pass_pages(
+    config: PlumblineConfig, *, store: Store | None = None,
+    histories: ModelHistories | None = None,
+) -> list[Path]:
     """The pages of the latest passes that raised or cleared findings (at most
     ``DEMO_PASS_PAGES``), and of the latest pass."""
-    with Store.open(config.database) as store:
+    with _opened(config, store) as store:
         passes = store.list_passes(limit=1000)
         if not passes:
             return []
@@ -96,7 +107,8 @@ def render_pass_pages(config: PlumblineConfig) -> list[Path]:
         paths = []
         for pass_id in chosen:
             # Pages only: the demo sends nothing, so no e-mail (and no PNG) is built.
-            render_pass_report(store, config, pass_id, write_models=False, messages=False)
+            render_pass_report(store, config, pass_id, write_models=False, messages=False,
+                               histories=histories)
             paths.append(Path(config.notify.html_dir) / pass_page_name(pass_id))
         return paths
 
@@ -113,7 +125,20 @@ def findings_summary(findings: list[FindingRecord]) -> list[str]:
     return lines
 
 
-def render_digest(config: PlumblineConfig) -> Path:
+def render_digest(
+    config: PlumblineConfig, *, store: Store | None = None,
+    histories: ModelHistories | None = None,
+) -> Path:
     """Write the digest of the replayed database (its period ends at the latest pass)."""
-    with Store.open(config.database) as store:
-        return Path(write_digest(store, config))
+    with _opened(config, store) as store:
+        return Path(write_digest(store, config, histories=histories))
+
+
+@contextmanager
+def _opened(config: PlumblineConfig, store: Store | None) -> Iterator[Store]:
+    """The store given, or the config's database opened for the duration."""
+    if store is not None:
+        yield store
+        return
+    with Store.open(config.database) as opened:
+        yield opened

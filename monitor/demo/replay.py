@@ -3,7 +3,8 @@
 For each week, every feed's file is copied into its inbox under a temporary name and renamed
 into place with a ``NAME.ready`` marker beside it (a complete file, DESIGN.md section 6), then
 one pass runs with the business clock at the moment the week's files land. The digest is
-rendered once at the end by the caller.
+rendered once at the end by the caller. The workspace is the replay's own and is made again
+rather than recovered, so it is written without fsyncs (``monitor.store.without_fsync``).
 """
 
 from __future__ import annotations
@@ -18,7 +19,7 @@ from monitor.config import PlumblineConfig, load_config
 from monitor.demo.workspace import CONFIG_NAME, ScenarioWeek, inbox_paths, weeks, write_scenario
 from monitor.lock import DatabaseLock
 from monitor.passes import PassNotifier, PassReport, run_pass
-from monitor.store import Store
+from monitor.store import Store, without_fsync
 
 
 @dataclass(frozen=True)
@@ -56,7 +57,7 @@ def replay_scenario(
     config = load_config(base / CONFIG_NAME)
     inboxes = inbox_paths(base)
     reports: list[PassReport] = []
-    with DatabaseLock(config.database), Store.open(config.database) as store:
+    with without_fsync(), DatabaseLock(config.database), Store.open(config.database) as store:
         for week in weeks(base):
             if last_week is not None and week.number > last_week:
                 break

@@ -36,7 +36,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
 
-from monitor.store import fsync_dir
+from monitor.store import fsync_dir, fsync_file
 
 TEMPORARY_SUFFIXES = (".part", ".tmp", ".ready")
 MARKER_SUFFIX = ".ready"
@@ -279,7 +279,7 @@ def _copy_across(source: Path, target: Path) -> None:
         for block in iter(lambda: reader.read(1 << 20), b""):
             writer.write(block)
         writer.flush()
-        os.fsync(writer.fileno())
+        fsync_file(writer.fileno())
     try:
         os.link(temporary, target)
     except OSError as exc:
@@ -302,7 +302,7 @@ def write_new_file(target: Path, content: bytes | Iterable[bytes]) -> None:
         for piece in [content] if isinstance(content, bytes) else content:
             writer.write(piece)
         writer.flush()
-        os.fsync(writer.fileno())
+        fsync_file(writer.fileno())
     os.replace(temporary, target)
     fsync_dir(target.parent)
 

@@ -411,16 +411,19 @@ def write_digest(
     now: datetime | None = None,
     digest: Digest | None = None,
     record: bool = True,
+    histories: dict[str, ModelHistory] | None = None,
 ) -> Path:
     """Write the digest page (building the digest unless given), then record it in the database
-    (unless ``record`` is False, as for a dry run); returns the page's path."""
+    (unless ``record`` is False, as for a dry run); returns the page's path. ``histories``:
+    models already read (``ModelHistories``), for the digest and the model pages it writes."""
     folder = Path(out_dir or config.notify.html_dir)
-    digest = digest if digest is not None else build_digest(store, config, as_of=as_of)
+    digest = digest if digest is not None else build_digest(store, config, as_of=as_of,
+                                                             histories=histories)
     html, _ = render_digest_html(digest)
     path = write_page(folder, digest_page_name(digest.day), html)
     missing = [name for name in config.models if not (folder / model_page_name(name)).exists()]
     if missing:
-        write_model_pages(store, config, folder, models=missing)
+        write_model_pages(store, config, folder, models=missing, histories=histories)
     write_index(store, config, folder)
     if record:
         store.record_digest(period_end=digest.period_end, created_at=now or datetime.now(UTC),

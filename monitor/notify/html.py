@@ -76,7 +76,7 @@ from monitor.notify.words import (
     plural,
     severity_count,
 )
-from monitor.store import Store
+from monitor.store import Store, fsync_file
 
 # Charts drawn per model on a page or in a digest (DESIGN.md section 11: about 30 ms each).
 CHART_CAP = 25
@@ -174,7 +174,7 @@ def write_page(folder: Path, name: str, text: str) -> Path:
         with os.fdopen(handle, "w", encoding="utf-8", newline="\n") as out:
             out.write(text)
             out.flush()
-            os.fsync(out.fileno())
+            fsync_file(out.fileno())
         os.chmod(temp, 0o644)
         os.replace(temp, target)
     except BaseException:

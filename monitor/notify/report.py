@@ -38,7 +38,7 @@ from monitor.notify.html import (
 )
 from monitor.notify.mail import DeliveryReport, compose_owner_messages, deliver_outbox, enqueue
 from monitor.notify.message import InlineImage, MessageContent, OwnerMessage
-from monitor.notify.series import ModelHistory, load_model
+from monitor.notify.series import ModelHistories, ModelHistory
 from monitor.notify.views import (
     ChartView,
     FindingView,
@@ -78,18 +78,6 @@ class ModelSection:
     sentence: str
     zone: str | None
     charts: list[ChartView]
-
-
-class _Histories(dict[str, ModelHistory]):
-    """Models' histories, each read from the store the first time it is asked for."""
-
-    def __init__(self, store: Store, config: PlumblineConfig) -> None:
-        super().__init__()
-        self.store, self.config = store, config
-
-    def __missing__(self, name: str) -> ModelHistory:
-        history = self[name] = load_model(self.store, self.config, name)
-        return history
 
 
 def _recipients(config: PlumblineConfig, record: FindingRecord) -> set[str]:
@@ -208,6 +196,7 @@ def render_pass_report(
     write_models: bool = True,
     messages: bool = True,
     before_pages: Callable[[tuple[OwnerMessage, ...]], None] | None = None,
+    histories: ModelHistories | None = None,
 ) -> PassReport:
     """Write the pass's page (and the model pages and index) and build its messages.
 
@@ -220,6 +209,9 @@ def render_pass_report(
 
     ``messages=False`` writes the pages only (the report's ``messages`` are then empty): no
     e-mail is rendered and no PNG drawn, for a caller that would throw them away.
+
+    ``histories``: models already read, shared with other pages written while the database
+    stands still (by default each model is read once for this pass's pages).
     """
     record = store.get_pass(pass_id)
     if record is None:
@@ -233,7 +225,8 @@ def render_pass_report(
     rising = set(escalated) | ((wanted or set()) - raised - closed)
     rose = [f for f in (store.get_finding(i) for i in sorted(rising))
             if f is not None and f.id not in raised and f.state.value != "cleared"]
-    histories = _Histories(store, config)  # each model read once, when first needed
+    if histories is None:
+        histories = ModelHistories(store, config)  # each model read once, when first needed
 
     built = []
     recipients: dict[str, list[FindingRecord]] = {}

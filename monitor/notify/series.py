@@ -158,6 +158,21 @@ def load_model(
     return history
 
 
+class ModelHistories(dict[str, ModelHistory]):
+    """Models' histories, each read from the store (``load_model``) the first time it is asked
+    for. What is read is the database as it stands, not as of a pass, so one of these serves
+    every page written while the database does not change (``plumbline demo`` shares one
+    between its pass pages and digest)."""
+
+    def __init__(self, store: Store, config: PlumblineConfig) -> None:
+        super().__init__()
+        self.store, self.config = store, config
+
+    def __missing__(self, name: str) -> ModelHistory:
+        history = self[name] = load_model(self.store, self.config, name)
+        return history
+
+
 def series_label(series: str | None) -> str:
     return "the whole model" if series is None else f"series {series}"
 
@@ -407,6 +422,7 @@ KIND_CHART: dict[FindingKind, str] = {
 __all__ = [
     "FORECAST_LOOKBACK",
     "KIND_CHART",
+    "ModelHistories",
     "ModelHistory",
     "actuals_data",
     "baseline_coefficient",

@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -203,8 +204,7 @@ def fit_batch(
     empty = np.flatnonzero(fast.needs_fallback & (fast.n == 0))
     if empty.size:
         first = int(empty[0])
-        single = fit_ols(x_arr[first, mask_arr[first]], y_arr[first, mask_arr[first]],
-                         intercept=intercept, level=level, names=terms[int(intercept) :])
+        single = _fit_of_no_rows(k, intercept, level, tuple(terms[int(intercept) :]))
         _copy_into(out, empty, single, mask_arr[first])
         for i in empty:
             reasons[i] = single.reason
@@ -235,6 +235,14 @@ def fit_batch(
         x_scale=frozen["x_scale"], r_inverse=frozen["r_inverse"],
         fast_path=_freeze_owned(~fast.needs_fallback),
     )
+
+
+@lru_cache(maxsize=64)
+def _fit_of_no_rows(k: int, intercept: bool, level: float, names: tuple[str, ...]) -> OlsFit:
+    """``fit_ols`` on no rows (it depends on nothing else), kept: a pass asks for it in nearly
+    every batch (the fits after a break, for the series without one). Its arrays are read-only."""
+    return fit_ols(np.zeros((0, k)), np.zeros(0), intercept=intercept, level=level,
+                   names=list(names))
 
 
 def _fast_arrays(

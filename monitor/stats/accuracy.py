@@ -28,7 +28,8 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import stats
+
+from monitor.stats._dist import t_sf
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -96,7 +97,7 @@ def accuracy_batch(group: ArrayLike, actual: ArrayLike, point: ArrayLike) -> Acc
             if lrv > 0:
                 t = float(errors.mean()) / math.sqrt(lrv / n)
                 out["bias_t"][index] = t
-                out["bias_p_value"][index] = float(2.0 * stats.t.sf(abs(t), n - 1))
+                out["bias_p_value"][index] = float(2.0 * t_sf(abs(t), n - 1))
     return AccuracyBatch(groups, scored, **out)
 
 

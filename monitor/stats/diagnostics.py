@@ -51,7 +51,9 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import integrate, linalg, stats
+from scipy import integrate, linalg
+
+from monitor.stats._dist import chi2_sf, f_sf
 
 FloatArray = NDArray[np.float64]
 BoolArray = NDArray[np.bool_]
@@ -432,7 +434,7 @@ def new_point_p_value(cloud: PredictorCloud, x_new: ArrayLike) -> FloatArray:
     df2 = n - k
     with np.errstate(divide="ignore", invalid="ignore"):
         f = df2 / (k * (n - 1.0)) * n / (n + 1.0) * distance
-        p = stats.f.sf(f, k, np.where(df2 > 0, df2, 1.0))
+        p = f_sf(f, k, np.where(df2 > 0, df2, 1.0))
     flat = np.einsum("skk->sk", cloud.precision) == 0.0  # a predictor that never varied
     bad = (df2 <= 0) | flat.any(axis=1)[:, np.newaxis] | ~np.isfinite(new).all(axis=2)
     return np.where(bad, np.nan, p)
@@ -458,7 +460,7 @@ def variance_increase_p_value(
     ok = (now >= 0) & (before > 0) & (d1 > 0) & (d2 > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(ok, now / np.where(ok, before, 1.0), np.nan)
-        p = stats.f.sf(ratio, np.where(ok, d1, 1.0), np.where(ok, d2, 1.0))
+        p = f_sf(ratio, np.where(ok, d1, 1.0), np.where(ok, d2, 1.0))
     return np.asarray(np.where(ok, p, np.nan), dtype=np.float64)
 
 
@@ -521,7 +523,7 @@ def breusch_godfrey_batch(
     safe_total = np.where(undefined, 1.0, total)
     r_squared = np.clip(explained / safe_total, 0.0, 1.0)
     statistic = np.where(undefined, np.nan, counts * r_squared)
-    p_value = np.where(undefined, np.nan, stats.chi2.sf(statistic, 1))
+    p_value = np.where(undefined, np.nan, chi2_sf(statistic, 1))
     return BatchTestResult(statistic, p_value, np.ones(s, dtype=np.int64), reason)
 
 
@@ -593,7 +595,7 @@ def breusch_pagan_batch(
     safe_total = np.where(undefined, 1.0, total)
     r_squared = np.clip(explained / safe_total, 0.0, 1.0)
     statistic = np.where(undefined, np.nan, counts * r_squared)
-    p_value = np.where(undefined, np.nan, stats.chi2.sf(statistic, np.maximum(rank, 1)))
+    p_value = np.where(undefined, np.nan, chi2_sf(statistic, np.maximum(rank, 1)))
     return BatchTestResult(statistic, p_value, rank.astype(np.int64), reason)
 
 
@@ -649,7 +651,7 @@ def jarque_bera_batch(residuals: ArrayLike, mask: ArrayLike | None = None) -> Ba
     kurtosis = fourth / safe_second**2
     statistic = counts / 6.0 * (skewness**2 + (kurtosis - 3.0) ** 2 / 4.0)
     statistic = np.where(undefined, np.nan, statistic)
-    p_value = np.where(undefined, np.nan, stats.chi2.sf(statistic, 2))
+    p_value = np.where(undefined, np.nan, chi2_sf(statistic, 2))
     return BatchTestResult(statistic, p_value, np.full(s, 2, dtype=np.int64), reason)
 
 

@@ -14,8 +14,8 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy import stats
 
+from monitor.stats._dist import f_sf, t_sf
 from monitor.stats.updating import (
     BoolArray,
     FloatArray,
@@ -124,7 +124,7 @@ def chow_from_rss(
     safe_den = np.where(applicable, df_den, 1).astype(np.float64)
     safe_num = np.where(applicable, df_num, 1).astype(np.float64)
     f = (np.maximum(pooled - unrestricted, 0.0) / safe_num) / (safe_unrestricted / safe_den)
-    p_value = stats.f.sf(f, safe_num, safe_den)
+    p_value = f_sf(f, safe_num, safe_den)
     return BatchChow(
         statistic=np.where(applicable, f, np.nan),
         p_value=np.where(applicable, p_value, np.nan),
@@ -357,7 +357,7 @@ def slope_shift(
     t = difference / safe_combined
     quartic = se0**4 / np.where(ok, df0, 1.0) + se1**4 / np.where(ok, df1, 1.0)
     nu = np.where(ok, variance**2 / np.where(quartic > 0, quartic, 1.0), 1.0)
-    p_value = 2.0 * stats.t.sf(np.abs(t), nu)
+    p_value = 2.0 * t_sf(np.abs(t), nu)
     nan = np.nan
     return BatchSlopeShift(
         terms=names,

@@ -8,7 +8,8 @@ Connection settings, and why:
   file's rows and *then* moves the file out of the inbox, and the outbox marks a message sent
   after the SMTP server accepted it; a commit lost behind a completed move would leave a file in
   the archive that the database has never seen. One fsync per transaction is cheap here: a pass
-  makes one transaction per file and per stage.
+  makes one transaction per file and per stage. (``without_fsync`` lifts it, and the files'
+  fsyncs, for the demo's replay into a throwaway workspace only.)
 - ``foreign_keys=ON``; a busy timeout of 30 s, so that a short write from the command line
   (``ack``) waits for the daemon's current transaction instead of failing.
 
@@ -33,7 +34,13 @@ versions, fits, forecasts, outcomes, baselines), ``notices`` (findings, digests,
 
 from __future__ import annotations
 
-from monitor.store.base import BUSY_TIMEOUT_SECONDS, BackupResult, fsync_dir
+from monitor.store.base import (
+    BUSY_TIMEOUT_SECONDS,
+    BackupResult,
+    fsync_dir,
+    fsync_file,
+    without_fsync,
+)
 from monitor.store.notices import NoticesMixin
 from monitor.store.observations import FilesMixin
 from monitor.store.records import (
@@ -119,8 +126,10 @@ __all__ = [
     "apply_migrations",
     "date_period_key",
     "fsync_dir",
+    "fsync_file",
     "parse_utc",
     "period_key_date",
     "to_json",
     "utc_text",
+    "without_fsync",
 ]

@@ -185,11 +185,14 @@ class ResultsMixin(StoreBase):
     ) -> dict[str | None, tuple[int | None, bool]]:
         """Of the latest fit of each series (as :meth:`latest_fits` picks it), only the last
         period key of its window and whether it was estimable: what a pass compares with,
-        without reading the fits' JSON."""
+        without reading the fits' JSON. Each series' index is walked back from its latest
+        fit, which usually qualifies at once, instead of reading every fit of the model (a pass
+        asks this of every model)."""
         rows = self._conn.execute(
-            "SELECT series_key, window_last_key, estimable FROM fits WHERE id IN (SELECT max(id) "
-            "FROM fits WHERE model = ?1 AND (?2 IS NULL OR version = ?2) AND (?3 IS NULL OR "
-            "pass_id <= ?3) GROUP BY series_key)",
+            "SELECT f.series_key, f.window_last_key, f.estimable FROM (SELECT DISTINCT "
+            "series_key FROM fits WHERE model = ?1) AS k JOIN fits AS f ON f.id = (SELECT id "
+            "FROM fits WHERE model = ?1 AND series_key = k.series_key AND (?2 IS NULL OR "
+            "version = ?2) AND (?3 IS NULL OR pass_id <= ?3) ORDER BY id DESC LIMIT 1)",
             (model, version, up_to_pass),
         )
         return {_series(key): (last, bool(estimable)) for key, last, estimable in rows}
@@ -327,11 +330,15 @@ class ResultsMixin(StoreBase):
         self, model: str, pass_id: int, *, before: int | None = None
     ) -> list[ForecastRecord]:
         """Forecasts of ``model`` issued by passes with an id above ``pass_id`` (and below
-        ``before``, when given)."""
-        upper, params = ("", (model, pass_id)) if before is None else (
-            " AND pass_id < ?", (model, pass_id, before))
+        ``before``, when given). With both bounds, the unique index's pass range is read
+        (``+model`` keeps SQLite from choosing the model's index instead, which reads every
+        forecast of the model: each pass asks this of every model, for a range of one pass or
+        none)."""
+        which, upper, params = ("model", "", (model, pass_id)) if before is None else (
+            "+model", " AND pass_id < ?", (model, pass_id, before))
         rows = self._dicts(
-            f"SELECT * FROM forecasts WHERE model = ? AND pass_id > ?{upper} ORDER BY id", params)
+            f"SELECT * FROM forecasts WHERE {which} = ? AND pass_id > ?{upper} ORDER BY id",
+            params)
         return [_forecast_record(row) for row in rows]
 
     def series_scored_after(self, model: str, pass_id: int) -> set[str | None]:
@@ -434,9 +441,11 @@ class ResultsMixin(StoreBase):
                 "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3)" + order
             )
         else:
+            # With a model, its own part of the index is searched, not the whole index scanned.
+            which = "(?1 IS NULL OR model = ?1)" if model is None else "model = ?1"
             sql = (
-                "WITH scope AS (SELECT DISTINCT model, series_key FROM forecasts "
-                "WHERE (?1 IS NULL OR model = ?1) AND (?2 OR series_key = ?3)), "
+                f"WITH scope AS (SELECT DISTINCT model, series_key FROM forecasts WHERE {which} "
+                "AND (?2 OR series_key = ?3)), "
                 "since AS (SELECT model, series_key, ifnull((SELECT DISTINCT "
                 "b.target_period_key FROM forecasts AS b JOIN outcomes AS c "
                 "ON c.forecast_id = b.id WHERE b.model = scope.model "
