@@ -383,13 +383,17 @@ class FilesMixin(StoreBase):
                 if old_rows.any():
                     sids = sorted({int(sid) for sid in ids if sid is not None})
                     lo, hi = int(keys[old_rows].min()), int(keys[old_rows].max())
-                    hit = self._conn.execute(
-                        "SELECT 1 FROM observations WHERE series_id IN (SELECT value FROM "
-                        "json_each(?)) AND period_key BETWEEN ? AND ? AND current = 1 LIMIT 1",
-                        (json.dumps(sids), lo, hi),
-                    ).fetchone()
-                    if hit is not None:
-                        return None
+                    # Current actuals, then open plans, each through its partial index (one
+                    # query over both could use neither and read the whole table).
+                    for is_plan in (0, 1):
+                        hit = self._conn.execute(
+                            "SELECT 1 FROM observations WHERE series_id IN (SELECT value FROM "
+                            "json_each(?)) AND period_key BETWEEN ? AND ? AND current = 1 "
+                            f"AND is_plan = {is_plan} LIMIT 1",
+                            (json.dumps(sids), lo, hi),
+                        ).fetchone()
+                        if hit is not None:
+                            return None
             if count:
                 canon: dict[str, int] = {}
                 code = np.array([canon.setdefault(k, len(canon)) for k in skeys], np.int64)
