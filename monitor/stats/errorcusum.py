@@ -72,7 +72,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import stats
+from scipy import special, stats
 
 IntArray = NDArray[np.int64]
 FloatArray = NDArray[np.float64]
@@ -97,8 +97,8 @@ def implied_coverage(mean_square: float, level: float) -> float:
     (normal errors ``sqrt(mean_square)`` times the size the intervals assume)."""
     if not mean_square > 0:
         return 1.0
-    z = float(stats.norm.ppf(0.5 + level / 2.0))
-    return float(2.0 * stats.norm.cdf(z / math.sqrt(mean_square)) - 1.0)
+    z = float(special.ndtri(0.5 + level / 2.0))
+    return float(2.0 * special.ndtr(z / math.sqrt(mean_square)) - 1.0)
 
 
 def gaussian_scores(
@@ -123,16 +123,16 @@ def gaussian_scores(
     d = (np.full(a.shape, np.nan) if df is None else np.asarray(df, dtype=np.float64))
     quantile = 0.5 + level / 2.0
     has_df = np.isfinite(d) & (d > 0)
-    crit = np.where(has_df, stats.t.ppf(quantile, np.where(has_df, d, 1.0)),
-                    stats.norm.ppf(quantile))
+    dof = np.where(has_df, d, 1.0)
+    # scipy.special's t and normal functions (what scipy.stats calls, without its per-call
+    # checking): stdtrit the t quantile, stdtr the t CDF, ndtri and ndtr the normal ones.
+    crit = np.where(has_df, special.stdtrit(dof, quantile), special.ndtri(quantile))
     with np.errstate(divide="ignore", invalid="ignore"):
         standard = (a - p) / (half / crit)
-        tail = np.where(has_df, stats.t.cdf(standard, np.where(has_df, d, 1.0)),
-                        stats.norm.cdf(standard))
-        upper_tail = np.where(has_df, stats.t.sf(standard, np.where(has_df, d, 1.0)),
-                              stats.norm.sf(standard))
-    # From whichever tail is the smaller, so far-out errors keep their precision.
-    score = np.where(standard > 0, -stats.norm.ppf(upper_tail), stats.norm.ppf(tail))
+        tail = np.where(has_df, special.stdtr(dof, standard), special.ndtr(standard))
+        upper_tail = np.where(has_df, special.stdtr(dof, -standard), special.ndtr(-standard))
+        # From whichever tail is the smaller, so far-out errors keep their precision.
+        score = np.where(standard > 0, -special.ndtri(upper_tail), special.ndtri(tail))
     usable = np.isfinite(a) & np.isfinite(p) & np.isfinite(half) & (half > 0)
     # Past about 37 the tail's chance underflows; such an error is far beyond the cap anyway.
     return np.where(usable & np.isfinite(standard), np.clip(score, -_FAR, _FAR), np.nan)
@@ -260,29 +260,34 @@ def error_cusum_batch(
     missed_at = np.zeros((g, width), dtype=bool)
     missed_at[which, position] = miss[rows]
 
-    height = np.zeros(g)
-    peak = np.zeros(g)
-    start = np.full(g, -1, dtype=np.int64)
-    ex_scored = np.zeros(g, dtype=np.int64)
-    ex_misses = np.zeros(g, dtype=np.int64)
-    ex_square = np.zeros(g)
-    for t in range(width):
-        valid = row_at[:, t] >= 0
-        new = np.where(valid, np.maximum(0.0, height + step_at[:, t]), height)
-        began = valid & (height == 0) & (new > 0)
-        going = valid & (height > 0) & (new > 0)
-        ended = valid & (new == 0)
-        start = np.where(began, row_at[:, t], np.where(ended, -1, start))
-        m = missed_at[:, t].astype(np.int64)
-        sq = square_at[:, t]
-        ex_scored = np.where(began, 1, np.where(going, ex_scored + 1,
-                                                np.where(ended, 0, ex_scored)))
-        ex_misses = np.where(began, m, np.where(going, ex_misses + m,
-                                                np.where(ended, 0, ex_misses)))
-        ex_square = np.where(began, sq, np.where(going, ex_square + sq,
-                                                 np.where(ended, 0.0, ex_square)))
-        peak = np.where(began, new, np.where(ended, 0.0, np.maximum(peak, new)))
-        height = new
+    # The recursion S_t = max(0, S_(t-1) + w_t) from S_0 = 0 in closed form (Lindley's):
+    # S_t = C_t − min(0, C_1, …, C_t) with C the running sum of the steps. The chart is at zero
+    # exactly where C_t is the running minimum; the current excursion starts after the last such
+    # step (or at the first step when the chart never returned to zero and started above it).
+    if width:
+        running = np.cumsum(step_at, axis=1)
+        low = np.minimum(np.minimum.accumulate(running, axis=1), 0.0)
+        heights = np.where(row_at >= 0, running - low, 0.0)
+        valid = row_at >= 0
+        at_zero = valid & (running <= low)
+        steps = np.arange(width)
+        last_zero = np.where(at_zero, steps, -1).max(axis=1)  # −1: never back at zero
+        used = counts
+        first = last_zero + 1  # the excursion's first step (== used: no excursion now)
+        ongoing = first < used
+        height = np.where(ongoing, heights[np.arange(g), np.maximum(used - 1, 0)], 0.0)
+        after = valid & (steps[None, :] >= first[:, None])
+        peak = np.where(ongoing, np.where(after, heights, 0.0).max(axis=1), 0.0)
+        start = np.where(ongoing, row_at[np.arange(g), np.minimum(first, width - 1)], -1)
+        ex_scored = np.where(ongoing, used - first, 0).astype(np.int64)
+        ex_misses = np.where(ongoing, (missed_at & after).sum(axis=1), 0).astype(np.int64)
+        ex_square = np.where(ongoing, np.where(after, square_at, 0.0).sum(axis=1), 0.0)
+    else:
+        height, peak = np.zeros(g), np.zeros(g)
+        start = np.full(g, -1, dtype=np.int64)
+        ex_scored = np.zeros(g, dtype=np.int64)
+        ex_misses = np.zeros(g, dtype=np.int64)
+        ex_square = np.zeros(g)
     p = np.array([crossing_probability(float(c), horizon) for c in peak], dtype=float)
     p[counts == 0] = np.nan
     with np.errstate(invalid="ignore", divide="ignore"):

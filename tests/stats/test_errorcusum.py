@@ -112,15 +112,18 @@ def test_implied_coverage_of_wider_errors() -> None:
     assert implied_coverage(1.0, 0.95) == pytest.approx(0.95)
 
 
-def _loop(scores: list[float], missed: list[bool]) -> tuple[float, float, int, int, int]:
+def _loop(scores: list[float], missed: list[bool]) -> tuple[float, float, int, int, int, float]:
     """(height, peak, start index, forecasts, misses) of the current excursion, from the
-    definition, one forecast at a time."""
+    definition, one forecast at a time, and the smallest distance of a height from zero (the
+    batch's closed form rounds differently, so a height within rounding of zero is ambiguous)."""
     rise, fall = 0.5 * (1 - 1 / RATIO), 0.5 * math.log(RATIO)
     height = peak = 0.0
     count = misses = 0
     start = -1
+    closest = math.inf
     for i, (z, miss) in enumerate(zip(scores, missed, strict=True)):
         new = max(0.0, height + rise * min(z * z, CAP) - fall)
+        closest = min(closest, abs(height + rise * min(z * z, CAP) - fall))
         if height == 0 and new > 0:
             start, peak, count, misses = i, new, 1, int(miss)
         elif new > 0:
@@ -128,7 +131,7 @@ def _loop(scores: list[float], missed: list[bool]) -> tuple[float, float, int, i
         else:
             start, peak, count, misses = -1, 0.0, 0, 0
         height = new
-    return height, peak, start, count, misses
+    return height, peak, start, count, misses, closest
 
 
 @settings(max_examples=60, deadline=None)
@@ -151,7 +154,9 @@ def test_batch_equals_the_loop_for_every_series(
     assert list(chart.group) == present
     for j, g in enumerate(present):
         seq = sequences[g] if last is None else sequences[g][-last:]
-        height, peak, start, count, misses = _loop(seq, [abs(z) > 1.96 for z in seq])
+        height, peak, start, count, misses, closest = _loop(seq, [abs(z) > 1.96 for z in seq])
+        if closest < 1e-9:
+            continue  # a step that lands within rounding of zero: either reading is right
         assert chart.height[j] == pytest.approx(height, abs=1e-12)
         assert chart.peak[j] == pytest.approx(peak, abs=1e-12)
         assert (int(chart.excursion_scored[j]), int(chart.excursion_misses[j])) == (count, misses)
