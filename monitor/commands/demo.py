@@ -51,9 +51,13 @@ def handle(args: argparse.Namespace) -> int:
     started = time.perf_counter()
     tty = sys.stdout.isatty()
 
+    raised = 0
+
     def progress(week: ScenarioWeek, report: PassReport) -> None:
+        nonlocal raised
+        raised += len(report.findings_raised)
         line = (f"replaying week {week.number:3d} of {WEEK_COUNT} ({week.week_ending}): "
-                f"{len(report.findings_raised)} finding(s) raised")
+                f"{raised} finding(s) raised so far")
         if tty:
             # Our own carriage return, past the escaping of control characters (cli.py).
             raw = getattr(sys.stdout, "unescaped", sys.stdout)
