@@ -48,6 +48,7 @@ from datetime import UTC, date, datetime, timedelta
 from typing import Any, Protocol
 
 import numpy as np
+from numpy.typing import NDArray
 
 from monitor.analysis import BatchInput, BatchOutput, analyse_batch, looks_per_horizon
 from monitor.calibration import calibrations
@@ -1196,16 +1197,23 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
     t = model.thresholds
     state.add(coverage_conditions(name, ordered, audit, chart, t, since, calibrated,
                                   calibrated_chart, calibrated_since), t.clear_after)
-    first_miss: list[str | None] = []
-    for g in audit.group:
-        in_recent = periods[(group == g) & recent & missed]
-        first_miss.append(str(in_recent[0]) if in_recent.size else None)
+    first_miss = _first_periods(group, periods, recent & missed, audit.group)
     state.add(clustered_miss_conditions(name, ordered, audit, t, first_miss), t.clear_after)
     accuracy = accuracy_batch(group[recent], actual[recent], point[recent])
-    first = [str(periods[recent][group[recent] == g][0]) for g in accuracy.group]
+    first = [str(p) for p in _first_periods(group, periods, recent, accuracy.group)]
     state.add(forecast_bias_conditions(
         name, [names[int(g)] for g in accuracy.group], accuracy, t, first, looks=horizon,
     ), t.clear_after)
+
+
+def _first_periods(
+    group: NDArray[np.int64], periods: NDArray[Any], rows: NDArray[np.bool_], wanted: NDArray[Any]
+) -> list[str | None]:
+    """Each wanted group's first period among ``rows`` (None where it has none), in one pass
+    over the rows: a group's rows come together and in target order."""
+    codes, at = np.unique(group[rows], return_index=True)
+    first = dict(zip(codes.tolist(), periods[rows][at].tolist(), strict=True))
+    return [None if (p := first.get(int(g))) is None else str(p) for g in wanted]
 
 
 # --------------------------------------------------------------------------- feeds
