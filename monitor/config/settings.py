@@ -117,14 +117,17 @@ SETTINGS: tuple[Setting, ...] = (
             "at least `min_rows`; or `all`."),
     Setting("models.NAME.recent", 26,
             "Rows in each block of latest periods whose slopes are compared with the slopes over "
-            "the periods monitoring started from (`baseline`); more than p + 1."),
+            "the periods monitoring started from (`baseline`); more than p + 1. Also the latest "
+            "scored forecasts whose hit rate, misses and bias the `coverage`, `clustered_misses` "
+            "and `forecast_bias` findings judge."),
     Setting("models.NAME.min_rows", 10,
             "Below this many rows a series is warming up: no fit, no finding. Must be more than "
             "p + 1, where p counts the coefficients including the intercept."),
     Setting("models.NAME.horizon", None,
             "Periods of sequential monitoring after the periods it started from (`baseline`); "
             "when they pass without an alarm, monitoring starts again from the latest full "
-            "window.", computed="2 × the baseline's length"),
+            "window. Also the scored forecasts over which the `coverage` finding's running sum of "
+            "the errors' size is judged.", computed="2 × the baseline's length"),
     Setting("models.NAME.baseline", None,
             "The periods monitoring starts from, fixed as `{start, end}` (pages and messages name "
             "them by their dates); without it, each series' first full window."),
