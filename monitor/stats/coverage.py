@@ -63,6 +63,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import special, stats
 
+from monitor.stats._dist import chi2_sf
+
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
@@ -556,14 +558,14 @@ def audit_batch(
             np.nan)
     hit_lower, hit_upper = clopper_pearson_interval(hits, scored, confidence)
     kupiec = kupiec_statistic(misses, scored, miss_rate)
-    kupiec_p = np.where(has_scored, stats.chi2.sf(kupiec, 1), np.nan)
+    kupiec_p = np.where(has_scored, chi2_sf(kupiec, 1), np.nan)
     _lr_uc, lr_ind, lr_cc = christoffersen_statistics(n00, n01, n10, n11, miss_rate)
     ordered = scored >= 2
     assessable = ordered & (n00 + n01 > 0) & (n10 + n11 > 0)
     independence = np.where(assessable, lr_ind, np.nan)
-    independence_p = np.where(assessable, stats.chi2.sf(lr_ind, 1), np.nan)
+    independence_p = np.where(assessable, chi2_sf(lr_ind, 1), np.nan)
     christoffersen = np.where(ordered, lr_cc, np.nan)
-    christoffersen_p = np.where(ordered, stats.chi2.sf(lr_cc, 2), np.nan)
+    christoffersen_p = np.where(ordered, chi2_sf(lr_cc, 2), np.nan)
     cumulative = miss_probability(misses, scored, level)
     zone = tuple(
         _zone_of(int(m), float(c)) if s > 0 else None
