@@ -689,8 +689,8 @@ class _FastCsv:
                     out.append(cells[at].decode("utf-8"))
         except UnicodeDecodeError:
             return None
-        return pa.table({self.names[at]: pa.array(values, pa.string())
-                         for at, values in zip(self.needed, columns, strict=True)})
+        return pa.Table.from_arrays([pa.array(values, pa.string()) for values in columns],
+                                    names=[self.names[at] for at in self.needed])
 
     def _read(self, text: bytes) -> Any:
         pa, pacsv = _arrow_csv()
