@@ -110,7 +110,7 @@ class CoverageAudit:
     hit_rate: float | None
     hit_rate_lower: float | None
     hit_rate_upper: float | None
-    confidence: float
+    confidence: float | None  # None: no Clopper–Pearson interval was computed
     nominal: float
     kupiec_statistic: float | None
     kupiec_p_value: float | None
@@ -175,7 +175,7 @@ class CoverageBatch:
     group: NDArray[Any]
     lead: NDArray[Any] | None
     nominal: float
-    confidence: float
+    confidence: float | None  # None: no Clopper–Pearson interval was computed
     window: int | None
     scored: IntArray
     hits: IntArray
@@ -473,7 +473,7 @@ def audit_batch(
     *,
     lead: ArrayLike | None = None,
     last: int | None = None,
-    confidence: float = 0.95,
+    confidence: float | None = 0.95,
 ) -> CoverageBatch:
     """Coverage audits of many series in one loop-free pass over stacked rows.
 
@@ -482,9 +482,12 @@ def audit_batch(
     different series may interleave). With ``lead`` (n,) each (series, lead) pair is its own entry;
     with ``last`` only each entry's last ``last`` scored forecasts count. Equal, entry by entry, to
     ``audit_coverage`` on that entry's rows. Statistics as in the module docstring.
+    ``confidence`` None: no Clopper–Pearson interval (NaN bounds; a pass's findings do not show
+    it, and its beta quantiles are a third of the audit's time on a few series).
     """
     _check_probability("level", level)
-    _check_probability("confidence", confidence)
+    if confidence is not None:
+        _check_probability("confidence", confidence)
     if last is not None and (isinstance(last, bool) or not isinstance(last, int | np.integer)
                              or last < 1):
         raise ValueError(f"last must be a positive whole number of forecasts, not {last!r}")
@@ -556,7 +559,10 @@ def audit_batch(
         mean_score = np.where(
             has_scored, np.bincount(which, weights=score, minlength=entries) / safe_scored,
             np.nan)
-    hit_lower, hit_upper = clopper_pearson_interval(hits, scored, confidence)
+    if confidence is None:
+        hit_lower = hit_upper = np.full(entries, np.nan)
+    else:
+        hit_lower, hit_upper = clopper_pearson_interval(hits, scored, confidence)
     kupiec = kupiec_statistic(misses, scored, miss_rate)
     kupiec_p = np.where(has_scored, chi2_sf(kupiec, 1), np.nan)
     _lr_uc, lr_ind, lr_cc = christoffersen_statistics(n00, n01, n10, n11, miss_rate)
@@ -572,7 +578,8 @@ def audit_batch(
         for m, c, s in zip(misses, cumulative, scored, strict=True)
     )
     return CoverageBatch(
-        group=entry_key, lead=entry_lead, nominal=float(level), confidence=float(confidence),
+        group=entry_key, lead=entry_lead, nominal=float(level),
+        confidence=None if confidence is None else float(confidence),
         window=None if last is None else int(last),
         scored=scored, hits=hits, misses_high=misses_high, misses_low=misses_low,
         n00=n00, n01=n01, n10=n10, n11=n11,
