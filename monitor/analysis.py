@@ -71,6 +71,10 @@ MIN_ROWS_AFTER_BREAK = 10
 #: uses the long-run standard deviation under the AR(1) autocorrelation measured on the
 #: baseline, so mildly autocorrelated errors do not raise false alarms (DEVELOPERS.md).
 MONITORING_ERRORS = "ar1"
+#: Up to this many series (the batch's series times the fits made together) the fits of one
+#: batch are made in one ``fit_batch`` call: below it the call's fixed cost dominates, above it
+#: the copies of the rows would cost more than the calls (our measurement: the demo's models).
+STACKED_SERIES = 512
 
 
 @dataclass(frozen=True, eq=False)
@@ -134,6 +138,24 @@ def _positions(mask: BoolArray) -> IntArray:
     return np.where(mask, np.cumsum(mask, axis=1) - 1, -1).astype(np.int64)
 
 
+def _fits(batch: BatchInput, names: list[str], *masks: BoolArray) -> list[BatchFit]:
+    """``fit_batch`` of the batch's rows under each mask, in one call while the batch is small.
+
+    A small model's pass pays each ``fit_batch`` call's fixed cost (a few hundred numpy calls)
+    several times over; stacked along the series axis the fits cost one call. Each series is
+    fitted on its own either way, so the figures are the same bits (``tests/test_analysis.py``).
+    """
+    series = batch.y.shape[0]
+    if len(masks) == 1 or series * len(masks) > STACKED_SERIES:
+        return [fit_batch(batch.x, batch.y, mask, intercept=batch.intercept, level=batch.level,
+                          names=names) for mask in masks]
+    copies = len(masks)
+    stacked = fit_batch(np.concatenate([batch.x] * copies), np.concatenate([batch.y] * copies),
+                        np.concatenate(masks), intercept=batch.intercept, level=batch.level,
+                        names=names)
+    return [stacked.take(slice(i * series, (i + 1) * series)) for i in range(copies)]
+
+
 def analyse_batch(batch: BatchInput) -> BatchOutput:
     """Refit, diagnose, compare with the baseline, monitor and forecast one batch of series.
 
@@ -149,21 +171,10 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
         window_mask = used
     else:
         window_mask = used & (position >= (count - batch.window)[:, None])
-    fit = fit_batch(batch.x, batch.y, window_mask, intercept=batch.intercept, level=batch.level,
-                    names=names)
-    fit_rows = window_mask & fit.estimable[:, None]
-    residuals = np.nan_to_num(fit.residuals)
-    durbin_watson = durbin_watson_batch(residuals, fit_rows)
-    breusch_godfrey = breusch_godfrey_batch(residuals, batch.x, fit_rows)
-    breusch_pagan = breusch_pagan_batch(residuals, batch.x, fit_rows)
-    jarque_bera = jarque_bera_batch(residuals, fit_rows)
-
     has_baseline = (batch.baseline_start >= 0) & (batch.baseline_end > batch.baseline_start)
     start = batch.baseline_start[:, None]
     end = batch.baseline_end[:, None]
     base_mask = used & has_baseline[:, None] & (position >= start) & (position < end)
-    baseline_fit = fit_batch(batch.x, batch.y, base_mask, intercept=batch.intercept,
-                             level=batch.level, names=names)
 
     after = used & has_baseline[:, None] & (position >= end)
     after_count = after.sum(axis=1)
@@ -176,8 +187,14 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
         & (position >= block_start[:, None])
         & (position < (block_start + batch.recent)[:, None])
     )
-    recent_fit = fit_batch(batch.x, batch.y, recent_mask, intercept=batch.intercept,
-                           level=batch.level, names=names)
+    fit, baseline_fit, recent_fit = _fits(batch, names, window_mask, base_mask, recent_mask)
+    fit_rows = window_mask & fit.estimable[:, None]
+    residuals = np.nan_to_num(fit.residuals)
+    durbin_watson = durbin_watson_batch(residuals, fit_rows)
+    breusch_godfrey = breusch_godfrey_batch(residuals, batch.x, fit_rows)
+    breusch_pagan = breusch_pagan_batch(residuals, batch.x, fit_rows)
+    jarque_bera = jarque_bera_batch(residuals, fit_rows)
+
     slope_columns = slice(1, None) if batch.intercept else slice(None)
 
     monitor_mask = after & (position < end + batch.horizon[:, None])
@@ -207,11 +224,11 @@ def analyse_batch(batch: BatchInput) -> BatchOutput:
     before_mask &= crossed[:, None] & (position >= start)
     after_break = used & crossed[:, None] & (columns >= break_column)
     break_rows = after_break.sum(axis=1).astype(np.int64)
-    before_fit = fit_batch(batch.x, batch.y, before_mask, intercept=batch.intercept,
-                           level=batch.level, names=names)
-    # With no alarm both masks select nothing: the same (empty) fits, so made once.
-    after_fit = before_fit if not crossed.any() else fit_batch(
-        batch.x, batch.y, after_break, intercept=batch.intercept, level=batch.level, names=names)
+    if crossed.any():
+        before_fit, after_fit = _fits(batch, names, before_mask, after_break)
+    else:
+        # With no alarm both masks select nothing: the same (empty) fits, so made once.
+        before_fit = after_fit = _fits(batch, names, before_mask)[0]
     break_tested = (crossed & (break_rows >= MIN_ROWS_AFTER_BREAK)
                     & before_fit.estimable & after_fit.estimable)
     break_shift = slope_shift(

@@ -1202,7 +1202,8 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
     per_group = np.bincount(group, minlength=len(names))
     firsts = np.concatenate(([0], np.cumsum(per_group)[:-1]))
     recent = np.arange(group.size) - firsts[group] >= per_group[group] - model.recent
-    audit = audit_batch(group, actual, lower, upper, model.nominal_level, last=model.recent)
+    audit = audit_batch(group, actual, lower, upper, model.nominal_level, last=model.recent,
+                        confidence=None)
     ordered = [names[int(g)] for g in audit.group]
     missed = (actual < lower) | (actual > upper)
     level = model.nominal_level
@@ -1219,7 +1220,7 @@ def _coverage_conditions(state: _PassState, name: str, model: Model) -> None:
         if issued.any():
             # The calibrated intervals issued beside the model's own, judged the same way.
             calibrated = audit_batch(group, actual, cal_lower, cal_upper, model.nominal_level,
-                                     last=model.recent)
+                                     last=model.recent, confidence=None)
             with np.errstate(invalid="ignore"):
                 cal_missed = issued & ((actual < cal_lower) | (actual > cal_upper))
             # The calibrated interval is no t interval: its errors are scored as normal ones.

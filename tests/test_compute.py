@@ -42,6 +42,7 @@ import pytest
 from _workspace import Workspace, config_yaml, csv_bytes, delivered, feed_yaml, week_ending
 from distributed.diagnostics.plugin import SchedulerPlugin
 
+from monitor import analysis
 from monitor.analysis import BatchInput, analyse_batch
 from monitor.cli import main
 from monitor.compute import join_outputs, split_batch
@@ -107,6 +108,22 @@ def test_batches_joined_equal_the_whole_model_bit_for_bit(seed: int) -> None:
         assert sum(p.y.shape[0] for p in parts) == 40
         joined = join_outputs([analyse_batch(part) for part in parts])
         assert _bit_differences(whole, joined) == [], f"batch size {size}"
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_fits_made_together_equal_fits_made_one_by_one_bit_for_bit(
+    seed: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # A small batch's window, baseline and recent-block fits (and after an alarm the fits on
+    # either side of the break) are made in one stacked fit_batch call; above
+    # STACKED_SERIES they are made one call each. Both must give the same bits.
+    batch = _simulated_batch(seed)
+    together = analyse_batch(batch)
+    monkeypatch.setattr(analysis, "STACKED_SERIES", 0)
+    apart = analyse_batch(batch)
+    assert _bit_differences(together, apart) == []
+    if seed == 0:
+        assert together.monitoring.crossed.any()  # the fits after a break were stacked too
 
 
 def test_join_refuses_a_field_it_does_not_know() -> None:

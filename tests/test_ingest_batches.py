@@ -16,10 +16,11 @@ from pathlib import Path
 
 import pyarrow as pa
 import pyarrow.parquet as pq
+import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from monitor.ingest import FileReport, IngestSpec, ingest_feed
+from monitor.ingest import FileReport, IngestSpec, ingest_feed, parse
 from monitor.ingest.parse import ColumnPlan, ParsedFile, parse_csv, parse_parquet
 from monitor.store import Store
 
@@ -99,6 +100,20 @@ def test_a_quote_part_way_switches_to_the_csv_module_at_a_line_boundary() -> Non
     for block in (100, 2048, 1 << 20):
         same(parse_csv(data, PLAN, block_bytes=block), whole)
     assert any(row.series == "two\nlines" for row in whole.rows)
+
+
+def test_a_few_rows_split_here_read_as_pyarrow_reads_them(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Blocks of up to _SPLIT_ROWS rows are split at the commas in Python (pyarrow's reader costs
+    # about 2 ms a call whatever the size); larger ones go to pyarrow. Every block size, either
+    # way, gives what the csv module's way gives (bytes that are not UTF-8 refuse the whole file
+    # before any block is read: ``test_ingest.py``).
+    body = "".join(messy_rows(300)).encode() + "2024-01-07,dépôt-ü,1,2,\n".encode()
+    by_rows = parse_csv(QUOTED.encode() + body, PLAN)
+    assert any(row.series == "dépôt-ü" for row in by_rows.rows)
+    for split_rows in (0, 256, 10_000):
+        monkeypatch.setattr(parse, "_SPLIT_ROWS", split_rows)
+        for block in (64, 700, 1 << 20):
+            same(parse_csv(PLAIN.encode() + body, PLAN, block_bytes=block), by_rows)
 
 
 CELLS = st.sampled_from(["", " ", "1", "2.5", "-3", "x", "NaN", "1e5", "2024-01-07", "2024-01-14",

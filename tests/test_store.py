@@ -592,6 +592,59 @@ def test_the_audit_views_agree_with_a_plain_selection(
     assert set(only_a.series) <= {"a"} and set(only_a.model) <= {"pick"}
 
 
+@pytest.mark.parametrize("last", [1, 3, 5])
+@pytest.mark.parametrize("with_df", [False, True])
+def test_a_connection_reading_the_latest_scored_week_after_week_reads_what_a_fresh_one_does(
+    store: Store, last: int, with_df: bool
+) -> None:
+    # The pass reads each model's latest scored forecasts every week, and on a connection kept
+    # open (the demo's replay) only what was scored since: equal to a fresh read at every step,
+    # with forecasts scored late (after newer targets) and several issues per target.
+    rng = np.random.default_rng(11)
+    store.record_model_version("pick", signature="s", config={}, created_at=T0)
+    store.record_model_version("pack", signature="s", config={}, created_at=T0)
+    unscored: list[int] = []
+    for issue in range(9):
+        pass_id = store.record_pass(as_of=T0 + timedelta(days=7 * issue), started_at=T0).id
+        rows = [
+            ForecastRow(model=m, feed="depot", series=s, target_period=week(n)[0],
+                        target_period_key=week(n)[1], issued_at=T0, lead=n - issue + 1,
+                        point=float(issue), lower=-1.0, upper=2.0 * n, level=0.95)
+            for m in ("pick", "pack") for s in ("b", None, "a") for n in range(issue, issue + 3)
+            if rng.random() < 0.8
+        ]
+        ids = store.record_forecasts(pass_id, rows).ids
+        unscored += ids
+        scored = [i for i in unscored if rng.random() < 0.5]
+        unscored = [i for i in unscored if i not in scored]
+        store.record_outcomes(pass_id, [Outcome(i, 1.0, OutcomeKind.HIT) for i in scored])
+        fresh = Store.open(store.path)
+        try:
+            for model in ("pick", "pack"):
+                for latest_only in (True, False):
+                    kept = store.scored_forecasts(model, last=last, latest_only=latest_only,
+                                                  with_df=with_df)
+                    again = fresh.scored_forecasts(model, last=last, latest_only=latest_only,
+                                                   with_df=with_df)
+                    assert kept.forecast_id.tolist() == again.forecast_id.tolist()
+                    assert kept.target_period == again.target_period
+                    assert kept.point.tolist() == again.point.tolist()
+            # Inside a transaction nothing is kept: the rows may yet be rolled back.
+            with pytest.raises(RuntimeError, match="rolled back"), store.transaction():
+                late = store.record_pass(as_of=T0, started_at=T0).id
+                store.record_forecasts(late, [ForecastRow(
+                    model="pick", feed="depot", series="a", target_period=week(40)[0],
+                    target_period_key=week(40)[1], issued_at=T0, lead=1, point=0.0,
+                    lower=-1.0, upper=1.0, level=0.95)])
+                store.record_outcomes(late, [Outcome(
+                    store.list_forecasts(pass_id=late)[0].id, 1.0, OutcomeKind.HIT)])
+                assert week(40)[0] in store.scored_forecasts("pick", last=last).target_period
+                raise RuntimeError("rolled back")
+            assert week(40)[0] not in store.scored_forecasts("pick", last=last).target_period
+        finally:
+            fresh.close()
+
+
 # ----------------------------------------------------------------------------- findings
 
 

@@ -8,8 +8,9 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from functools import lru_cache
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -38,6 +39,9 @@ class BatchPrediction:
     upper: FloatArray
     leverage: FloatArray
     level: float
+
+
+_SHARED = frozenset({"terms", "intercept", "level", "p"})
 
 
 @dataclass(frozen=True, eq=False)
@@ -100,6 +104,15 @@ class BatchFit:
     def s(self) -> int:
         """The number of series."""
         return int(self.estimable.shape[0])
+
+    def take(self, rows: slice) -> BatchFit:
+        """The fits of the series in ``rows`` (views of this batch's arrays)."""
+        picked: dict[str, Any] = {}
+        for item in fields(self):
+            value = getattr(self, item.name)
+            picked[item.name] = value if item.name in _SHARED else (
+                None if value is None else value[rows])
+        return BatchFit(**picked)
 
     @property
     def k(self) -> int:

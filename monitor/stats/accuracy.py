@@ -77,9 +77,16 @@ def accuracy_batch(group: ArrayLike, actual: ArrayLike, point: ArrayLike) -> Acc
     out = {name: np.full(size, np.nan) for name in (
         "mean_error", "mean_absolute_error", "mase", "tracking_signal", "bias_t", "bias_p_value")}
     scored = np.zeros(size, dtype=np.int64)
-    for index, value in enumerate(groups):
-        rows = (g == value) & np.isfinite(a) & np.isfinite(f)
-        errors = a[rows] - f[rows]
+    # Each group's rows in their order, as slices of one stable sort (a search of every row for
+    # each group would cost groups × rows).
+    order = np.argsort(g, kind="stable")
+    a, f = a[order], f[order]
+    usable = np.isfinite(a) & np.isfinite(f)
+    bounds = [*np.searchsorted(g[order], groups, side="left").tolist(), g.size]
+    for index in range(size):
+        within = slice(bounds[index], bounds[index + 1])
+        rows = usable[within]
+        errors = a[within][rows] - f[within][rows]
         n = errors.size
         scored[index] = n
         if n == 0:
@@ -89,7 +96,7 @@ def accuracy_batch(group: ArrayLike, actual: ArrayLike, point: ArrayLike) -> Acc
         out["mean_absolute_error"][index] = mae
         if mae > 0:
             out["tracking_signal"][index] = float(errors.sum()) / mae
-        steps = np.abs(np.diff(a[rows]))
+        steps = np.abs(np.diff(a[within][rows]))
         if steps.size and steps.mean() > 0:
             out["mase"][index] = mae / float(steps.mean())
         if n >= 3:

@@ -63,6 +63,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import special, stats
 
+from monitor.stats._dist import chi2_sf
+
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
@@ -108,7 +110,7 @@ class CoverageAudit:
     hit_rate: float | None
     hit_rate_lower: float | None
     hit_rate_upper: float | None
-    confidence: float
+    confidence: float | None  # None: no Clopper–Pearson interval was computed
     nominal: float
     kupiec_statistic: float | None
     kupiec_p_value: float | None
@@ -173,7 +175,7 @@ class CoverageBatch:
     group: NDArray[Any]
     lead: NDArray[Any] | None
     nominal: float
-    confidence: float
+    confidence: float | None  # None: no Clopper–Pearson interval was computed
     window: int | None
     scored: IntArray
     hits: IntArray
@@ -471,7 +473,7 @@ def audit_batch(
     *,
     lead: ArrayLike | None = None,
     last: int | None = None,
-    confidence: float = 0.95,
+    confidence: float | None = 0.95,
 ) -> CoverageBatch:
     """Coverage audits of many series in one loop-free pass over stacked rows.
 
@@ -480,9 +482,12 @@ def audit_batch(
     different series may interleave). With ``lead`` (n,) each (series, lead) pair is its own entry;
     with ``last`` only each entry's last ``last`` scored forecasts count. Equal, entry by entry, to
     ``audit_coverage`` on that entry's rows. Statistics as in the module docstring.
+    ``confidence`` None: no Clopper–Pearson interval (NaN bounds; a pass's findings do not show
+    it, and its beta quantiles are a third of the audit's time on a few series).
     """
     _check_probability("level", level)
-    _check_probability("confidence", confidence)
+    if confidence is not None:
+        _check_probability("confidence", confidence)
     if last is not None and (isinstance(last, bool) or not isinstance(last, int | np.integer)
                              or last < 1):
         raise ValueError(f"last must be a positive whole number of forecasts, not {last!r}")
@@ -554,23 +559,27 @@ def audit_batch(
         mean_score = np.where(
             has_scored, np.bincount(which, weights=score, minlength=entries) / safe_scored,
             np.nan)
-    hit_lower, hit_upper = clopper_pearson_interval(hits, scored, confidence)
+    if confidence is None:
+        hit_lower = hit_upper = np.full(entries, np.nan)
+    else:
+        hit_lower, hit_upper = clopper_pearson_interval(hits, scored, confidence)
     kupiec = kupiec_statistic(misses, scored, miss_rate)
-    kupiec_p = np.where(has_scored, stats.chi2.sf(kupiec, 1), np.nan)
+    kupiec_p = np.where(has_scored, chi2_sf(kupiec, 1), np.nan)
     _lr_uc, lr_ind, lr_cc = christoffersen_statistics(n00, n01, n10, n11, miss_rate)
     ordered = scored >= 2
     assessable = ordered & (n00 + n01 > 0) & (n10 + n11 > 0)
     independence = np.where(assessable, lr_ind, np.nan)
-    independence_p = np.where(assessable, stats.chi2.sf(lr_ind, 1), np.nan)
+    independence_p = np.where(assessable, chi2_sf(lr_ind, 1), np.nan)
     christoffersen = np.where(ordered, lr_cc, np.nan)
-    christoffersen_p = np.where(ordered, stats.chi2.sf(lr_cc, 2), np.nan)
+    christoffersen_p = np.where(ordered, chi2_sf(lr_cc, 2), np.nan)
     cumulative = miss_probability(misses, scored, level)
     zone = tuple(
         _zone_of(int(m), float(c)) if s > 0 else None
         for m, c, s in zip(misses, cumulative, scored, strict=True)
     )
     return CoverageBatch(
-        group=entry_key, lead=entry_lead, nominal=float(level), confidence=float(confidence),
+        group=entry_key, lead=entry_lead, nominal=float(level),
+        confidence=None if confidence is None else float(confidence),
         window=None if last is None else int(last),
         scored=scored, hits=hits, misses_high=misses_high, misses_low=misses_low,
         n00=n00, n01=n01, n10=n10, n11=n11,

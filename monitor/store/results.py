@@ -440,23 +440,12 @@ class ResultsMixin(StoreBase):
                 select + "FROM forecasts AS f JOIN outcomes AS o ON o.forecast_id = f.id "
                 "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3)" + order
             )
+            rows = self._conn.execute(sql, params).fetchall()
+        elif model is not None and all_series:
+            rows = self._latest_scored_rows(model, last, select, with_df)
         else:
-            # With a model, its own part of the index is searched, not the whole index scanned.
-            which = "(?1 IS NULL OR model = ?1)" if model is None else "model = ?1"
-            sql = (
-                f"WITH scope AS (SELECT DISTINCT model, series_key FROM forecasts WHERE {which} "
-                "AND (?2 OR series_key = ?3)), "
-                "since AS (SELECT model, series_key, ifnull((SELECT DISTINCT "
-                "b.target_period_key FROM forecasts AS b JOIN outcomes AS c "
-                "ON c.forecast_id = b.id WHERE b.model = scope.model "
-                "AND b.series_key = scope.series_key ORDER BY b.target_period_key DESC "
-                "LIMIT 1 OFFSET ?4), -9223372036854775808) AS first_key FROM scope) "
-                + select + "FROM since JOIN forecasts AS f ON f.model = since.model "
-                "AND f.series_key = since.series_key AND f.target_period_key >= since.first_key "
-                "JOIN outcomes AS o ON o.forecast_id = f.id" + order
-            )
-            params = (*params, last - 1)
-        rows = self._conn.execute(sql, params).fetchall()
+            rows = self._conn.execute(_latest_scored_sql(select, model), (
+                *params, last - 1, _NO_BOUND)).fetchall()
         keep = _scored_rows_to_keep(
             [row[1] for row in rows], [row[2] for row in rows], [row[4] for row in rows],
             latest_only, last,
@@ -490,6 +479,46 @@ class ResultsMixin(StoreBase):
             residual_df=np.array(columns[15], dtype=np.float64).reshape(count) if with_df
             else None,
         )
+
+    def _latest_scored_rows(
+        self, model: str, last: int, select: str, with_df: bool
+    ) -> list[tuple[Any, ...]]:
+        """The rows of ``scored_forecasts(model, last=…)`` before the choice of issues, read once
+        per connection and then only what was scored since (the pass reads a model's latest
+        horizon of scored forecasts every week; the demo's replay does so 875 times on one
+        connection).
+
+        Forecasts and outcomes are append-only, so the rows scored since the last read are the
+        outcomes with a higher id. Each series' ``last``-th latest scored target can only move
+        forward as outcomes arrive, so a row cut off before stays cut off: the kept rows plus the
+        new ones, sorted as the query sorts them and cut again, equal a fresh read (every read
+        stops at the outcomes id it started from, so both sides see the same rows).
+        """
+        bound = int(self._conn.execute("SELECT ifnull(max(id), 0) FROM outcomes").fetchone()[0])
+        key = (model, last, with_df)
+        # Inside a transaction the rows read may yet be rolled back: read them, keep nothing.
+        settled = not self._conn.in_transaction
+        held = self._scored_cache.get(key) if settled else None
+        if held is None:
+            rows = self._conn.execute(_latest_scored_sql(select, model), (
+                model, 1, "", last - 1, bound)).fetchall()
+        elif held[0] == bound:
+            rows = held[1]
+        else:
+            fresh = self._conn.execute(
+                select + "FROM outcomes AS o JOIN forecasts AS f ON f.id = o.forecast_id "
+                "WHERE o.id > ?2 AND o.id <= ?3 AND f.model = ?1", (model, held[0], bound),
+            ).fetchall()
+            rows = sorted([*held[1], *fresh], key=itemgetter(2, 4, 0))
+            within = _scored_rows_to_keep(
+                [row[1] for row in rows], [row[2] for row in rows], [row[4] for row in rows],
+                False, last,
+            )
+            if not within.all():
+                rows = list(compress(rows, within))
+        if settled:
+            self._scored_cache[key] = (bound, rows)
+        return rows
 
     # ----------------------------------------------------------------- baselines
 
@@ -540,6 +569,29 @@ class ResultsMixin(StoreBase):
             (model, _skey(series)),
         )
         return [_baseline_record(row) for row in rows]
+
+
+_NO_BOUND = 9223372036854775807  # no outcomes id is above it
+
+
+def _latest_scored_sql(select: str, model: str | None) -> str:
+    """Each series' rows from its ``?4 + 1``-th latest scored target period on (every issue),
+    among the outcomes with ids up to ``?5``."""
+    # With a model, its own part of the index is searched, not the whole index scanned.
+    which = "(?1 IS NULL OR model = ?1)" if model is None else "model = ?1"
+    return (
+        f"WITH scope AS (SELECT DISTINCT model, series_key FROM forecasts WHERE {which} "
+        "AND (?2 OR series_key = ?3)), "
+        "since AS (SELECT model, series_key, ifnull((SELECT DISTINCT "
+        "b.target_period_key FROM forecasts AS b JOIN outcomes AS c "
+        "ON c.forecast_id = b.id AND c.id <= ?5 WHERE b.model = scope.model "
+        "AND b.series_key = scope.series_key ORDER BY b.target_period_key DESC "
+        "LIMIT 1 OFFSET ?4), -9223372036854775808) AS first_key FROM scope) "
+        + select + "FROM since JOIN forecasts AS f ON f.model = since.model "
+        "AND f.series_key = since.series_key AND f.target_period_key >= since.first_key "
+        "JOIN outcomes AS o ON o.forecast_id = f.id AND o.id <= ?5"
+        " ORDER BY f.model, f.series_key, f.target_period_key, f.id"
+    )
 
 
 def _scored_rows_to_keep(

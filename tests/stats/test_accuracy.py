@@ -54,3 +54,30 @@ def test_bias_test_keeps_its_level_and_finds_a_shift() -> None:
     one = errors[:n]
     t = one.mean() / math.sqrt(long_run_variance(one) / n)
     assert math.isclose(batch.bias_p_value[0], 2 * stats.t.sf(abs(t), n - 1), rel_tol=1e-12)
+
+
+def test_groups_interleaved_give_each_group_alone_bit_for_bit() -> None:
+    # A pass stacks series in any order; each group's figures must equal those of its rows alone
+    # (same rows in the same order), NaN rows left out. Our own seeded data.
+    rng = np.random.default_rng(21)
+    sizes = rng.integers(0, 40, 25)
+    group = np.repeat(np.arange(25) * 3 + 1, sizes)
+    actual = rng.normal(100.0, 10.0, group.size)
+    point = actual + rng.normal(0.5, 3.0, group.size)
+    actual[rng.random(group.size) < 0.05] = np.nan
+    point[rng.random(group.size) < 0.05] = np.inf
+    # interleave the groups, keeping each group's rows in order: shuffle the labels, then give
+    # each place its group's next row
+    labels = rng.permutation(group)
+    order = np.empty(group.size, dtype=np.int64)
+    for value in np.unique(group):
+        order[labels == value] = np.flatnonzero(group == value)
+    shuffled = accuracy_batch(group[order], actual[order], point[order])
+    assert not (order == np.arange(group.size)).all()
+    for index, value in enumerate(shuffled.group):
+        rows = np.flatnonzero(group == value)
+        alone = accuracy_batch(np.zeros(rows.size, dtype=np.int64), actual[rows], point[rows])
+        for name in ("scored", "mean_error", "mean_absolute_error", "mase", "tracking_signal",
+                     "bias_t", "bias_p_value"):
+            got, want = getattr(shuffled, name)[index], getattr(alone, name)[0]
+            assert np.asarray(got).tobytes() == np.asarray(want).tobytes(), (value, name)

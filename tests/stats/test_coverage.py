@@ -10,6 +10,7 @@ Sources checked against, named beside each check:
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -482,6 +483,29 @@ def test_batch_equals_one_series_at_a_time() -> None:
             single = audit_coverage(actual[rows], lower[rows], upper[rows], 0.9, last=last)
             assert single.scored > 0
             assert _close(batch.audit(i), single)
+
+
+def test_batch_without_the_hit_rate_interval_changes_nothing_else() -> None:
+    # A pass's findings never show the Clopper–Pearson interval, so the pass skips it
+    # (confidence=None): its bounds are NaN and every other figure is the same bits.
+    rng = np.random.default_rng(2025)
+    n = 500
+    group = rng.integers(0, 12, size=n)
+    actual = rng.normal(size=n)
+    lower, upper = actual - rng.uniform(-0.5, 2.5, n), actual + rng.uniform(-0.5, 2.5, n)
+    lower, upper = np.minimum(lower, upper), np.maximum(lower, upper)
+    full = audit_batch(group, actual, lower, upper, 0.95, last=26)
+    bare = audit_batch(group, actual, lower, upper, 0.95, last=26, confidence=None)
+    assert bare.confidence is None and np.isnan(bare.hit_rate_lower).all()
+    assert np.isnan(bare.hit_rate_upper).all() and np.isfinite(full.hit_rate_lower).all()
+    for item in dataclasses.fields(full):
+        if item.name in ("confidence", "hit_rate_lower", "hit_rate_upper"):
+            continue
+        a, b = getattr(full, item.name), getattr(bare, item.name)
+        if isinstance(a, np.ndarray):
+            assert a.tobytes() == b.tobytes(), item.name
+        else:
+            assert a == b, item.name
 
 
 def _close(a: CoverageAudit, b: CoverageAudit) -> bool:
