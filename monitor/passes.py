@@ -39,9 +39,11 @@ Decisions beyond DESIGN.md, documented in the README:
 
 from __future__ import annotations
 
+import gc
 import threading
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import UTC, date, datetime, timedelta
 from typing import Any, Protocol
@@ -246,6 +248,25 @@ class _PassState:
         self.conditions.extend((c, clear_after) for c in conditions)
 
 
+@contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Python's cyclic garbage collector off for the length of a pass, as it was after.
+
+    A pass allocates millions of objects that form no cycles (the rows of the windows' read,
+    the records of fits and forecasts), and the collector, which runs every 700 allocations and
+    then walks what survived, spent about a tenth of the weekly pass of 10,000 series on them
+    (DEVELOPERS.md, "The pass"). Reference counting still frees everything as usual; the few
+    cycles a pass leaves are collected once the collector is back on.
+    """
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
+
+
 def run_pass(
     config: PlumblineConfig,
     *,
@@ -274,8 +295,9 @@ def run_pass(
     engine = compute_for(config.compute) if compute is None else compute
     db = Store.open(config.database) if store is None else store
     try:
-        return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier,
-                    engine, None if force_clock else max_ahead, force_clock)
+        with _collector_paused():
+            return _run(db, config, as_of or real_clock(), stop_requested, real_clock,
+                        notifier, engine, None if force_clock else max_ahead, force_clock)
     finally:
         if own_compute:
             engine.close()
@@ -1029,48 +1051,63 @@ def _model_conditions(
     ok = fit.estimable
     s = len(series)
 
-    def period(i: int, position: int) -> str | None:
-        if position < 0 or position >= counts[i]:
-            return None
-        return _label(labels, int(keys[i, position]))
+    rows = np.arange(s)
+    width = keys.shape[1] if keys.ndim == 2 else 0
+
+    def periods_at(position: np.ndarray) -> list[str | None]:
+        """Each series' period at a row position (None outside its rows), all series at once."""
+        position = np.asarray(position, dtype=np.int64)
+        inside = ((position >= 0) & (position < counts)).tolist()
+        if not width:
+            return [None] * s
+        at = keys[rows, np.clip(position, 0, width - 1)].astype(np.int64).tolist()
+        return [_label(labels, key) if inside[i] else None for i, key in enumerate(at)]
+
+    def last_row(mask: np.ndarray) -> np.ndarray:
+        return width - 1 - np.asarray(mask)[:, ::-1].argmax(axis=1) if width else rows
 
     # The fit's own diagnostics become findings once per block of ``recent`` rows (and at the
     # first fit), not at every weekly step of an overlapping window: a rule of thumb or a 5 %
     # test re-read every week on nearly the same rows raises and clears notices at random.
     block = max(model.recent, 1)
     fresh = np.ones(s, dtype=bool)
-    for i, sr in enumerate(series):
-        prev = previous.get(sr)
-        if prev is not None and prev[0] is not None:
-            before = int(np.searchsorted(keys[i, : counts[i]], prev[0], "right"))
-            fresh[i] = counts[i] // block > before // block
+    last_seen = [previous.get(sr) for sr in series]
+    seen = np.array([p is not None and p[0] is not None for p in last_seen], dtype=bool)
+    if seen.any() and width:
+        mark = np.array([p[0] if p is not None and p[0] is not None else 0 for p in last_seen],
+                        dtype=np.int64)
+        # Rows up to the previous fit's last period (searchsorted "right" on each series'
+        # sorted keys): the keys at or below the mark among the series' rows.
+        own = np.arange(width)[None, :] < counts[:, None]
+        before = ((keys <= mark[:, None]) & own).sum(axis=1)
+        fresh = np.where(seen, counts // block > before // block, True)
     # ... and only from a window of at least DIAGNOSTIC_MIN_ROWS rows.
     ok_fresh = ok & fresh & (fit.n >= DIAGNOSTIC_MIN_ROWS)
-    window_first = [period(i, int(np.argmax(out.window_mask[i]))) for i in range(s)]
-    window_last = [period(i, int(counts[i]) - 1) for i in range(s)]
+    window_first = periods_at(np.asarray(out.window_mask).argmax(axis=1) if width else rows)
+    window_last = periods_at(counts - 1)
+    tested = np.asarray(out.recent_tested, dtype=bool)
     recent_first = [
-        period(i, int(np.argmax(out.recent_mask[i]))) if out.recent_tested[i] else None
-        for i in range(s)
+        first if tested[i] else None
+        for i, first in enumerate(periods_at(
+            np.asarray(out.recent_mask).argmax(axis=1) if width else rows))
     ]
     # The periods compared, by their dates: the baseline's, and the latest complete recent block.
+    spanned = ((start >= 0) & (end > start)).tolist()
+    start_first, start_last = periods_at(start), periods_at(end - 1)
     start_spans = [
-        (period(i, int(start[i])), period(i, int(end[i]) - 1))
-        if start[i] >= 0 and end[i] > start[i] else None
-        for i in range(s)
+        (start_first[i], start_last[i]) if spanned[i] else None for i in range(s)
     ]
+    has_recent = (tested & np.asarray(out.recent_mask).any(axis=1)).tolist() if width else (
+        [False] * s)
+    recent_last = periods_at(last_row(out.recent_mask))
     recent_spans = [
-        (recent_first[i], period(i, int(np.flatnonzero(out.recent_mask[i])[-1])))
-        if out.recent_tested[i] and out.recent_mask[i].any() else None
-        for i in range(s)
+        (recent_first[i], recent_last[i]) if has_recent[i] else None for i in range(s)
     ]
     nan_if = np.where
 
     # structural break (sequential monitoring)
     monitoring = out.monitoring
-    break_period = [
-        period(i, int(monitoring.break_index[i])) if monitoring.break_index[i] >= 0 else None
-        for i in range(s)
-    ]
+    break_period = periods_at(monitoring.break_index)
     breaks = structural_break_conditions(
         name, series, monitoring.p_value, monitoring.max_ratio, break_period,
         monitoring.monitorable & (monitoring.periods_monitored > 0) & ok, t,
@@ -1286,13 +1323,14 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
     for name, feed in state.config.feeds.items():
         if feed.period_type == "integer" or not isinstance(feed.cadence, timedelta):
             continue  # integer periods have no calendar to be late against
-        summary = state.store.feed_summary(name)
-        if summary.latest_period_key is None:
+        found = state.store.latest_actual_period(name)
+        if found is None:
             continue
-        latest = period_key_date(summary.latest_period_key)
+        latest_key, latest_period = found
+        latest = period_key_date(latest_key)
         latest_moment = datetime(latest.year, latest.month, latest.day, tzinfo=state.config.zone)
         condition = stale_feed_condition(
-            name, latest_moment, summary.latest_period, state.as_of, feed.cadence
+            name, latest_moment, latest_period, state.as_of, feed.cadence
         )
         if condition is not None:
             state.add([condition], clear_default)

@@ -331,6 +331,10 @@ def test_columns_in_another_order_or_added_later_line_up(store: Store) -> None:
     assert counts.unchanged == 1 and counts.revisions == 0
     summary = store.feed_summary("depot")
     assert (summary.actual_rows, summary.series, summary.latest_period) == (2, 1, week(1)[0])
+    # what the pass's stale_feed check reads, from the index alone; plan rows do not count
+    store.insert_observations("depot", a_file(store, "d.csv"), COLUMNS, [plan("n", 5, 400.0)])
+    assert store.latest_actual_period("depot") == (week(1)[1], week(1)[0])
+    assert store.latest_actual_period("another") is None
 
 
 def test_stored_rows_cannot_be_changed_or_deleted(store: Store) -> None:

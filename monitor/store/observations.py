@@ -751,6 +751,19 @@ class FilesMixin(StoreBase):
         """The highest observation id so far (0 when none): a mark for "changed since"."""
         return int(self._conn.execute("SELECT ifnull(max(id), 0) FROM observations").fetchone()[0])
 
+    def latest_actual_period(self, feed: str) -> tuple[int, str | None] | None:
+        """The latest period key among a feed's current actuals and its label (None: no
+        actual yet): :meth:`feed_summary`'s ``latest_period_key`` and ``latest_period``, found
+        by one descent of the partial index per series instead of reading every row."""
+        latest = self._conn.execute(
+            "SELECT max((SELECT max(period_key) FROM observations WHERE series_id = s.id "
+            "AND is_plan = 0 AND current = 1)) FROM series AS s WHERE s.feed = ?",
+            (feed,),
+        ).fetchone()[0]
+        if latest is None:
+            return None
+        return int(latest), self.period_labels(feed, [latest]).get(latest)
+
     def feed_summary(self, feed: str) -> FeedSummary:
         """Counts and the latest period of a feed's current rows, and when it last sent a file."""
         actual_rows, series, latest_key = self._conn.execute(
