@@ -83,9 +83,19 @@ def column_names(*, scored: bool) -> list[str]:
     return [name for name, _ in FORECAST_COLUMNS + (SCORED_COLUMNS if scored else ())]
 
 
-def forecast_row(item: IssuedForecast, zone: ZoneInfo, *, scored: bool) -> dict[str, Any]:
-    """One forecast as plain values (None for an empty cell), columns in order."""
+def forecast_row(
+    item: IssuedForecast, zone: ZoneInfo, *, scored: bool,
+    stamps: dict[datetime, datetime] | None = None,
+) -> dict[str, Any]:
+    """One forecast as plain values (None for an empty cell), columns in order. ``stamps``, a
+    dict kept across the calls for many forecasts, holds each issue time in ``zone`` once made
+    (a pass issues its forecasts at one moment)."""
     f = item.forecast
+    issued_at = None if stamps is None else stamps.get(f.issued_at)
+    if issued_at is None:
+        issued_at = f.issued_at.astimezone(zone).replace(microsecond=0)
+        if stamps is not None:
+            stamps[f.issued_at] = issued_at
     row: dict[str, Any] = {
         "model": f.model,
         "series": f.series,
@@ -97,7 +107,7 @@ def forecast_row(item: IssuedForecast, zone: ZoneInfo, *, scored: bool) -> dict[
         "mean_lower": f.mean_lower,
         "mean_upper": f.mean_upper,
         "lead": f.lead,
-        "issued_at": f.issued_at.astimezone(zone).replace(microsecond=0),
+        "issued_at": issued_at,
         "leverage": f.leverage,
         "extrapolation": f.extrapolation,
         "fit_id": f.fit_id,
@@ -129,12 +139,35 @@ def _cell(value: Any) -> str:
     return str(value)
 
 
+def _none_cell(value: None) -> str:
+    return ""
+
+
+def _bool_cell(value: bool) -> str:
+    return "true" if value else "false"
+
+
+def _datetime_cell(value: datetime) -> str:
+    return value.isoformat()
+
+
+# _cell by the exact type of the value (the cells of a forecast are of these types); anything
+# else, a subclass included, goes through _cell itself.
+_CELL_BY_TYPE: dict[type, Callable[[Any], str]] = {
+    float: float.__repr__, type(None): _none_cell, str: str, int: int.__repr__,
+    bool: _bool_cell, datetime: _datetime_cell,
+}
+
+
 def csv_bytes(rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> bytes:
     buffer = io.StringIO(newline="")
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(columns)
-    for row in rows:
-        writer.writerow([_cell(row[c]) for c in columns])
+    by_type = _CELL_BY_TYPE.get
+    writer.writerows(
+        [by_type(type(value), _cell)(value) for value in map(row.__getitem__, columns)]
+        for row in rows
+    )
     return buffer.getvalue().encode("utf-8")
 
 
@@ -205,9 +238,11 @@ def export_forecasts(
     columns = column_names(scored=False)
     zone = config.zone
     groups: dict[tuple[str, int], list[dict[str, Any]]] = {}
+    stamps: dict[datetime, datetime] = {}
     for item in store.issued_forecasts(pass_ids=wanted):
         key = (item.forecast.model, item.forecast.pass_id)
-        groups.setdefault(key, []).append(forecast_row(item, zone, scored=False))
+        groups.setdefault(key, []).append(
+            forecast_row(item, zone, scored=False, stamps=stamps))
     file_format = config.export.format
     written: list[ExportedFile] = []
     for (model, pass_id), rows in sorted(groups.items(), key=lambda kv: (kv[0][1], kv[0][0])):

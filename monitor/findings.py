@@ -437,16 +437,26 @@ def slope_shift_conditions(
     rejected = (reject(FindingKind.SLOPE_SHIFT, p_block.ravel(), thresholds).reshape(shape)
                 | reject(FindingKind.SLOPE_SHIFT, p_after.ravel(), thresholds).reshape(shape))
     starts, recents = _spans(start_spans, len(series)), _spans(recent_spans, len(series))
+    # Each series' tested p-values and statistics, its smallest p-value's slope (np.nanargmin's
+    # choice: NaN counts as +inf, the first of equal values wins), all series at once.
+    p_used = np.where(after_break[:, None], p_after, p_block)
+    stat_used = np.where(after_break[:, None], stat_break, stat)
+    untested: list[bool] = np.asarray(np.isnan(p_used).all(axis=1)).tolist()
+    if not len(slopes):
+        return []  # nothing tested
+    smallest = np.argmin(np.where(np.isnan(p_used), np.inf, p_used), axis=1)
+    rows = np.arange(len(series))
+    t_values: list[float] = stat_used[rows, smallest].astype(float).tolist()
+    p_values: list[float] = p_used[rows, smallest].astype(float).tolist()
+    holding: list[bool] = np.asarray(rejected.any(axis=1)).tolist()
+    breaks: list[bool] = after_break.tolist()
+    which: list[int] = smallest.tolist()
     out: list[Condition] = []
     for i, name in enumerate(series):
-        use_break = bool(after_break[i])
-        p_i = p_after[i] if use_break else p_block[i]
-        stat_i = stat_break[i] if use_break else stat[i]
-        if np.isnan(p_i).all():
+        if untested[i]:
             continue
-        j = int(np.nanargmin(p_i))
-        holds = bool(rejected[i].any())
-        t_value, p_j = float(stat_i[j]), float(p_i[j])
+        use_break, j, holds = breaks[i], which[i], holding[i]
+        t_value, p_j = t_values[i], p_values[i]
         if use_break:
             first = break_since[i] if break_since is not None else None
             message = (

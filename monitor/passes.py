@@ -39,10 +39,11 @@ Decisions beyond DESIGN.md, documented in the README:
 
 from __future__ import annotations
 
-import math
+import gc
 import threading
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import UTC, date, datetime, timedelta
 from typing import Any, Protocol
@@ -95,6 +96,7 @@ from monitor.store import (
     BaselineRow,
     FitRow,
     ForecastRow,
+    PlanRows,
     Store,
     date_period_key,
     period_key_date,
@@ -246,6 +248,25 @@ class _PassState:
         self.conditions.extend((c, clear_after) for c in conditions)
 
 
+@contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Python's cyclic garbage collector off for the length of a pass, as it was after.
+
+    A pass allocates millions of objects that form no cycles (the rows of the windows' read,
+    the records of fits and forecasts), and the collector, which runs every 700 allocations and
+    then walks what survived, spent about a tenth of the weekly pass of 10,000 series on them
+    (DEVELOPERS.md, "The pass"). Reference counting still frees everything as usual; the few
+    cycles a pass leaves are collected once the collector is back on.
+    """
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
+
+
 def run_pass(
     config: PlumblineConfig,
     *,
@@ -274,8 +295,9 @@ def run_pass(
     engine = compute_for(config.compute) if compute is None else compute
     db = Store.open(config.database) if store is None else store
     try:
-        return _run(db, config, as_of or real_clock(), stop_requested, real_clock, notifier,
-                    engine, None if force_clock else max_ahead, force_clock)
+        with _collector_paused():
+            return _run(db, config, as_of or real_clock(), stop_requested, real_clock,
+                        notifier, engine, None if force_clock else max_ahead, force_clock)
     finally:
         if own_compute:
             engine.close()
@@ -722,11 +744,7 @@ def _analyse_model(
     # What the last *finished* pass knew: a pass a crash cut short may have fitted and forecast
     # already, and its work must count as this pass's, not as the past.
     previous = state.store.latest_fit_marks(name, version=version, up_to_pass=state.finished_id)
-    plain = _PlainFits(out)
-    fit_rows = [
-        _fit_row(name, version, model, out, i, s, keys[i], labels, len(series), plain)
-        for i, s in enumerate(series)
-    ]
+    fit_rows = _fit_rows(name, version, model, out, series, keys, labels)
     fit_ids = state.store.record_fits(state.pass_id, fit_rows)
     state.fits_recorded += len(fit_ids)
 
@@ -742,38 +760,8 @@ def _analyse_model(
         state.store.set_baselines(rolled, created_at=state.as_of, pass_id=state.pass_id)
 
     state.check_stop("forecast")
-    forecasts: list[ForecastRow] = []
-    extrapolated_first: list[str | None] = [None] * len(series)
-    worst_leverage = np.full(len(series), np.nan)
-    for i, s in enumerate(series):
-        if not out.fit.estimable[i]:
-            continue
-        latest_key = int(keys[i, counts[i] - 1])
-        for j, row in enumerate(plan_rows[i]):
-            flag = bool(out.extrapolation[i, j])
-            far = flag and bool(out.plan_p_value[i, j] < EXTRAPOLATION_P_VALUE)
-            if far and extrapolated_first[i] is None:
-                extrapolated_first[i] = plans.period[row]
-            worst_leverage[i] = np.fmax(worst_leverage[i], out.prediction.leverage[i, j])
-            forecasts.append(ForecastRow(
-                model=name, feed=model.feed, series=s,
-                target_period=plans.period[row],
-                target_period_key=int(plans.period_key[row]),
-                issued_at=state.as_of,
-                lead=cadence_steps(feed, latest_key, int(plans.period_key[row])),
-                point=float(out.prediction.point[i, j]),
-                lower=float(out.prediction.lower[i, j]),
-                upper=float(out.prediction.upper[i, j]),
-                level=model.level,
-                mean_lower=float(out.prediction.mean_lower[i, j]),
-                mean_upper=float(out.prediction.mean_upper[i, j]),
-                leverage=float(out.prediction.leverage[i, j]),
-                extrapolation=flag,
-                fit_id=fit_ids[i],
-                version=version,
-                observation_id=int(plans.observation_id[row]),
-                inputs={p: float(plans.values[row, c]) for c, p in enumerate(predictors)},
-            ))
+    forecasts, extrapolated_first, worst_leverage = _forecast_rows(
+        state, name, model, version, out, series, keys, counts, plans, plan_rows, fit_ids)
     if forecasts:
         if model.calibrated:
             forecasts = _calibrated(state, name, model, forecasts)
@@ -783,6 +771,69 @@ def _analyse_model(
     _carry_interrupted_forecasts(state, name, series, out, answered, extrapolated_first)
     _model_conditions(state, name, model, out, series, keys, counts, start, end, labels,
                       previous, answered, extrapolated_first, worst_leverage, horizon)
+
+
+def _forecast_rows(
+    state: _PassState, name: str, model: Model, version: int, out: BatchOutput,
+    series: list[str | None], keys: np.ndarray, counts: np.ndarray, plans: PlanRows,
+    plan_rows: list[list[int]], fit_ids: Sequence[int],
+) -> tuple[list[ForecastRow], list[str | None], np.ndarray]:
+    """The forecasts of the plan rows (series by series, plan rows in order), each series'
+    first plan period far outside what its model knows, and its largest plan-row leverage
+    (NaN where none). The arrays are read as Python lists once, not indexed row by row."""
+    feed = state.config.feeds[model.feed]
+    predictors = tuple(model.predictors or ())
+    forecasts: list[ForecastRow] = []
+    extrapolated_first: list[str | None] = [None] * len(series)
+    prediction = out.prediction
+    m = out.extrapolation.shape[1] if out.extrapolation.ndim == 2 else 0
+    with np.errstate(invalid="ignore"):
+        far_rows = (np.asarray(out.extrapolation, dtype=bool)
+                    & (out.plan_p_value < EXTRAPOLATION_P_VALUE)).tolist()
+    answered = np.zeros((len(series), m), dtype=bool)
+    for i, rows in enumerate(plan_rows):
+        answered[i, : len(rows)] = True
+    answered &= np.asarray(out.fit.estimable, dtype=bool)[:, None]
+    leverage_array = np.asarray(prediction.leverage, dtype=np.float64).reshape(len(series), m)
+    worst_leverage = np.fmax.reduce(np.where(answered, leverage_array, np.nan), axis=1,
+                                    initial=np.nan) if m else np.full(len(series), np.nan)
+    flags = np.asarray(out.extrapolation, dtype=bool).tolist()
+    point, lower, upper = (_listed(prediction.point), _listed(prediction.lower),
+                           _listed(prediction.upper))
+    mean_lower, mean_upper = _listed(prediction.mean_lower), _listed(prediction.mean_upper)
+    leverage = leverage_array.tolist()
+    estimable = _listed(out.fit.estimable, bool)
+    latest = keys[np.arange(len(series)), np.maximum(counts - 1, 0)].astype(np.int64).tolist()
+    period_key = plans.period_key.astype(np.int64).tolist()
+    observation_id = plans.observation_id.astype(np.int64).tolist()
+    inputs = plans.values.astype(float).tolist()
+    for i, s in enumerate(series):
+        if not estimable[i] or not plan_rows[i]:
+            continue
+        latest_key = latest[i]
+        for j, row in enumerate(plan_rows[i]):
+            if far_rows[i][j] and extrapolated_first[i] is None:
+                extrapolated_first[i] = plans.period[row]
+            forecasts.append(ForecastRow(
+                model=name, feed=model.feed, series=s,
+                target_period=plans.period[row],
+                target_period_key=period_key[row],
+                issued_at=state.as_of,
+                lead=cadence_steps(feed, latest_key, period_key[row]),
+                point=point[i][j],
+                lower=lower[i][j],
+                upper=upper[i][j],
+                level=model.level,
+                mean_lower=mean_lower[i][j],
+                mean_upper=mean_upper[i][j],
+                leverage=leverage[i][j],
+                extrapolation=flags[i][j],
+                fit_id=fit_ids[i],
+                version=version,
+                observation_id=observation_id[row],
+                inputs=dict(zip(predictors, inputs[row], strict=True)),
+            ))
+    return forecasts, extrapolated_first, worst_leverage
 
 
 def _carry_interrupted_forecasts(
@@ -834,46 +885,8 @@ def _label(labels: dict[int, str], key: int) -> str:
     return labels.get(key, str(key))
 
 
-def _finite(value: float) -> float | None:
-    return float(value) if math.isfinite(value) else None
-
-
-class _PlainFits:
-    """The arrays :func:`_fit_row` reads, converted once to Python lists (non-finite numbers as
-    None), so that building 10,000 fit records indexes lists instead of numpy arrays."""
-
-    def __init__(self, out: BatchOutput) -> None:
-        fit, base = out.fit, out.baseline_fit
-        self.coef = _plain(fit.coef)
-        self.standard_error = _plain(fit.standard_error)
-        self.t = _plain(fit.t)
-        self.p_value = _plain(fit.p_value)
-        self.lower = _plain(fit.lower)
-        self.upper = _plain(fit.upper)
-        self.n = np.asarray(fit.n).astype(np.int64).tolist()
-        self.residual_df = np.asarray(fit.residual_df).astype(np.int64).tolist()
-        self.r_squared = _plain(fit.r_squared)
-        self.adj_r_squared = _plain(fit.adj_r_squared)
-        self.residual_std_error = _plain(fit.residual_std_error)
-        self.f_statistic = _plain(fit.f_statistic)
-        self.f_p_value = _plain(fit.f_p_value)
-        self.exact_fit = np.asarray(fit.exact_fit).astype(bool).tolist()
-        self.estimable = np.asarray(fit.estimable).astype(bool).tolist()
-        self.durbin_watson = _plain(out.durbin_watson.statistic)
-        self.bp_statistic = _plain(out.breusch_pagan.statistic)
-        self.bp_p_value = _plain(out.breusch_pagan.p_value)
-        self.jb_statistic = _plain(out.jarque_bera.statistic)
-        self.jb_p_value = _plain(out.jarque_bera.p_value)
-        self.has_baseline = np.asarray(out.has_baseline).astype(bool).tolist()
-        self.base_r_squared = _plain(base.r_squared)
-        self.base_coef = _plain(base.coef)
-        self.base_lower = _plain(base.lower)
-        self.base_upper = _plain(base.upper)
-        self.base_p_value = _plain(base.p_value)
-        self.base_estimable = np.asarray(base.estimable).astype(bool).tolist()
-
-
 def _plain(values: Any) -> list[Any]:
+    """An array as nested Python lists, non-finite numbers as None (JSON's null)."""
     array = np.asarray(values, dtype=np.float64)
     objects = array.astype(object)
     objects[~np.isfinite(array)] = None
@@ -881,101 +894,146 @@ def _plain(values: Any) -> list[Any]:
     return listed
 
 
-def _fit_row(
-    name: str, version: int, model: Model, out: BatchOutput, i: int, series: str | None,
-    key_row: np.ndarray, labels: dict[int, str], series_count: int, plain: _PlainFits,
-) -> FitRow:
-    fit = out.fit
-    rows = np.flatnonzero(out.window_mask[i])
-    estimable = plain.estimable[i]
-    coef, se, t, p = plain.coef[i], plain.standard_error[i], plain.t[i], plain.p_value[i]
-    lower, upper = plain.lower[i], plain.upper[i]
-    coefficients = {
-        term: {
-            "estimate": coef[j],
-            "standard_error": se[j],
-            "t": t[j],
-            "p_value": p[j],
-            "lower": lower[j],
-            "upper": upper[j],
-        }
-        for j, term in enumerate(fit.terms)
-    } if estimable else {}
-    inference = {
-        "n": plain.n[i],
-        "residual_df": plain.residual_df[i],
-        "r_squared": plain.r_squared[i],
-        "adj_r_squared": plain.adj_r_squared[i],
-        "residual_std_error": plain.residual_std_error[i],
-        "f_statistic": plain.f_statistic[i],
-        "f_p_value": plain.f_p_value[i],
-        "exact_fit": plain.exact_fit[i],
-        "level": model.level,
-    } if estimable else {}
-    monitoring = out.monitoring
-    diagnostics: dict[str, Any] = {
-        "durbin_watson": plain.durbin_watson[i],
-        "breusch_godfrey": {"statistic": _finite(out.breusch_godfrey.statistic[i]),
-                            "p_value": _finite(out.breusch_godfrey.p_value[i])},
-        "breusch_pagan": {"statistic": plain.bp_statistic[i],
-                          "p_value": plain.bp_p_value[i]},
-        "jarque_bera": {"statistic": plain.jb_statistic[i],
-                        "p_value": plain.jb_p_value[i]},
-    }
-    if plain.has_baseline[i]:
-        base = out.baseline_fit
-        b_coef, b_lower = plain.base_coef[i], plain.base_lower[i]
-        b_upper, b_p = plain.base_upper[i], plain.base_p_value[i]
-        diagnostics["baseline"] = {
-            "r_squared": plain.base_r_squared[i],
-            "coefficients": {
-                term: {"estimate": b_coef[j],
-                       "lower": b_lower[j],
-                       "upper": b_upper[j],
-                       "p_value": b_p[j]}
-                for j, term in enumerate(base.terms)
-            } if plain.base_estimable[i] else {},
-        }
-    if monitoring.monitorable[i]:
-        monitored = np.flatnonzero(out.monitor_mask[i])
-        entry: dict[str, Any] = {
-            "statistic": float(monitoring.statistic[i]),
-            "max_ratio": float(monitoring.max_ratio[i]),
-            "crossed": bool(monitoring.crossed[i]),
-            "periods_monitored": int(monitoring.periods_monitored[i]),
-            "horizon": int(monitoring.horizon[i]),
-            "critical_value": float(monitoring.critical_value[i]),
-            "p_value": float(monitoring.p_value[i]),
-            "boundary_family": monitoring.boundary_name,
-            "break_period": (
-                _label(labels, int(key_row[monitoring.break_index[i]]))
-                if monitoring.break_index[i] >= 0 else None
-            ),
-        }
-        if series_count <= PATH_SERIES_LIMIT or monitoring.crossed[i]:
-            entry["path"] = {
-                "periods": [_label(labels, int(key_row[r])) for r in monitored],
-                "cusum": [float(v) for v in monitoring.cusum_path[i, monitored]],
-                "boundary": [float(v) for v in monitoring.boundary_path[i, monitored]],
-            }
-        diagnostics["monitoring"] = entry
-    if out.recent_tested[i]:
-        recent_rows = np.flatnonzero(out.recent_mask[i])
-        diagnostics["slope_shift"] = {
-            "recent_first": _label(labels, int(key_row[recent_rows[0]])),
-            "recent_last": _label(labels, int(key_row[recent_rows[-1]])),
-            "t": [_finite(v) for v in out.slope_shift.t[i]],
-            "p_value": [_finite(v) for v in out.slope_shift.p_value[i]],
-        }
-    return FitRow(
-        model=name, version=version, series=series, n=int(fit.n[i]), estimable=estimable,
-        reason=fit.reason[i],
-        window_first=_label(labels, int(key_row[rows[0]])) if rows.size else None,
-        window_first_key=int(key_row[rows[0]]) if rows.size else None,
-        window_last=_label(labels, int(key_row[rows[-1]])) if rows.size else None,
-        window_last_key=int(key_row[rows[-1]]) if rows.size else None,
-        coefficients=coefficients, inference=inference, diagnostics=diagnostics,
+def _listed(values: Any, kind: type = float) -> list[Any]:
+    """An array as a Python list of ``kind`` (floats keep NaN: the JSON writer nulls them)."""
+    listed: list[Any] = np.asarray(values).astype(kind).tolist()
+    return listed
+
+
+def _ends(
+    mask: np.ndarray, keys: np.ndarray, labels: dict[int, str]
+) -> tuple[list[bool], list[int], list[int], list[str], list[str]]:
+    """Per series, whether ``mask`` has a row, and the period key and label of its first and
+    of its last row (0 and '' where it has none)."""
+    some = mask.any(axis=1)
+    width = mask.shape[1]
+    rows = np.arange(mask.shape[0])
+    first = mask.argmax(axis=1) if width else np.zeros(mask.shape[0], np.int64)
+    last = width - 1 - mask[:, ::-1].argmax(axis=1) if width else first
+    first_key = np.where(some, keys[rows, first] if width else 0, 0).astype(np.int64).tolist()
+    last_key = np.where(some, keys[rows, last] if width else 0, 0).astype(np.int64).tolist()
+    has_rows: list[bool] = np.asarray(some).tolist()
+    return (
+        has_rows, first_key, last_key,
+        [_label(labels, key) for key in first_key], [_label(labels, key) for key in last_key],
     )
+
+
+def _fit_rows(
+    name: str, version: int, model: Model, out: BatchOutput, series: list[str | None],
+    keys: np.ndarray, labels: dict[int, str],
+) -> list[FitRow]:
+    """The fit record of every series of the batch. Each array of the output is turned into
+    Python lists once (not indexed series by series), so that building 10,000 records is the
+    dictionaries alone; what every record holds is as before."""
+    fit, base, monitoring = out.fit, out.baseline_fit, out.monitoring
+    estimable = _listed(fit.estimable, bool)
+    coef, se, t, p = _plain(fit.coef), _plain(fit.standard_error), _plain(fit.t), _plain(
+        fit.p_value)
+    lower, upper = _plain(fit.lower), _plain(fit.upper)
+    n, residual_df = _listed(fit.n, np.int64), _listed(fit.residual_df, np.int64)
+    r_squared, adj_r_squared = _plain(fit.r_squared), _plain(fit.adj_r_squared)
+    residual_std_error = _plain(fit.residual_std_error)
+    f_statistic, f_p_value = _plain(fit.f_statistic), _plain(fit.f_p_value)
+    exact_fit = _listed(fit.exact_fit, bool)
+    durbin_watson = _plain(out.durbin_watson.statistic)
+    bg_statistic, bg_p_value = _plain(out.breusch_godfrey.statistic), _plain(
+        out.breusch_godfrey.p_value)
+    bp_statistic, bp_p_value = _plain(out.breusch_pagan.statistic), _plain(
+        out.breusch_pagan.p_value)
+    jb_statistic, jb_p_value = _plain(out.jarque_bera.statistic), _plain(out.jarque_bera.p_value)
+    has_baseline = _listed(out.has_baseline, bool)
+    base_r_squared, base_coef = _plain(base.r_squared), _plain(base.coef)
+    base_lower, base_upper, base_p = _plain(base.lower), _plain(base.upper), _plain(base.p_value)
+    base_estimable = _listed(base.estimable, bool)
+    monitorable = _listed(monitoring.monitorable, bool)
+    crossed = _listed(monitoring.crossed, bool)
+    statistic, max_ratio = _listed(monitoring.statistic), _listed(monitoring.max_ratio)
+    periods_monitored = _listed(monitoring.periods_monitored, np.int64)
+    horizon = _listed(monitoring.horizon, np.int64)
+    critical_value, p_value = _listed(monitoring.critical_value), _listed(monitoring.p_value)
+    break_index = np.asarray(monitoring.break_index).astype(np.int64)
+    rows = np.arange(len(series))
+    break_key = np.where(
+        break_index >= 0, keys[rows, np.maximum(break_index, 0)] if keys.shape[1] else 0, 0
+    ).astype(np.int64).tolist()
+    break_at = (break_index >= 0).tolist()
+    recent_tested = _listed(out.recent_tested, bool)
+    shift_t, shift_p = _plain(out.slope_shift.t), _plain(out.slope_shift.p_value)
+    windowed, first_key, last_key, first_label, last_label = _ends(out.window_mask, keys, labels)
+    _, _, _, recent_first, recent_last = _ends(out.recent_mask, keys, labels)
+    paths = len(series) <= PATH_SERIES_LIMIT
+    terms, base_terms = list(fit.terms), list(base.terms)
+    level, boundary = model.level, monitoring.boundary_name
+    rows_out = []
+    for i, s in enumerate(series):
+        if estimable[i]:
+            c, e, tv, pv, lo, hi = coef[i], se[i], t[i], p[i], lower[i], upper[i]
+            coefficients: dict[str, Any] = {
+                term: {"estimate": c[j], "standard_error": e[j], "t": tv[j], "p_value": pv[j],
+                       "lower": lo[j], "upper": hi[j]}
+                for j, term in enumerate(terms)
+            }
+            inference: dict[str, Any] = {
+                "n": n[i], "residual_df": residual_df[i], "r_squared": r_squared[i],
+                "adj_r_squared": adj_r_squared[i], "residual_std_error": residual_std_error[i],
+                "f_statistic": f_statistic[i], "f_p_value": f_p_value[i],
+                "exact_fit": exact_fit[i], "level": level,
+            }
+        else:
+            coefficients, inference = {}, {}
+        diagnostics: dict[str, Any] = {
+            "durbin_watson": durbin_watson[i],
+            "breusch_godfrey": {"statistic": bg_statistic[i], "p_value": bg_p_value[i]},
+            "breusch_pagan": {"statistic": bp_statistic[i], "p_value": bp_p_value[i]},
+            "jarque_bera": {"statistic": jb_statistic[i], "p_value": jb_p_value[i]},
+        }
+        if has_baseline[i]:
+            bc, bl, bu, bp = base_coef[i], base_lower[i], base_upper[i], base_p[i]
+            diagnostics["baseline"] = {
+                "r_squared": base_r_squared[i],
+                "coefficients": {
+                    term: {"estimate": bc[j], "lower": bl[j], "upper": bu[j], "p_value": bp[j]}
+                    for j, term in enumerate(base_terms)
+                } if base_estimable[i] else {},
+            }
+        if monitorable[i]:
+            entry: dict[str, Any] = {
+                "statistic": statistic[i],
+                "max_ratio": max_ratio[i],
+                "crossed": crossed[i],
+                "periods_monitored": periods_monitored[i],
+                "horizon": horizon[i],
+                "critical_value": critical_value[i],
+                "p_value": p_value[i],
+                "boundary_family": boundary,
+                "break_period": _label(labels, break_key[i]) if break_at[i] else None,
+            }
+            if paths or crossed[i]:
+                monitored = np.flatnonzero(out.monitor_mask[i])
+                entry["path"] = {
+                    "periods": [_label(labels, key) for key in keys[i, monitored].tolist()],
+                    "cusum": monitoring.cusum_path[i, monitored].astype(float).tolist(),
+                    "boundary": monitoring.boundary_path[i, monitored].astype(float).tolist(),
+                }
+            diagnostics["monitoring"] = entry
+        if recent_tested[i]:
+            diagnostics["slope_shift"] = {
+                "recent_first": recent_first[i],
+                "recent_last": recent_last[i],
+                "t": shift_t[i],
+                "p_value": shift_p[i],
+            }
+        rows_out.append(FitRow(
+            model=name, version=version, series=s, n=n[i], estimable=estimable[i],
+            reason=fit.reason[i],
+            window_first=first_label[i] if windowed[i] else None,
+            window_first_key=first_key[i] if windowed[i] else None,
+            window_last=last_label[i] if windowed[i] else None,
+            window_last_key=last_key[i] if windowed[i] else None,
+            coefficients=coefficients, inference=inference, diagnostics=diagnostics,
+        ))
+    return rows_out
 
 
 def _model_conditions(
@@ -993,48 +1051,63 @@ def _model_conditions(
     ok = fit.estimable
     s = len(series)
 
-    def period(i: int, position: int) -> str | None:
-        if position < 0 or position >= counts[i]:
-            return None
-        return _label(labels, int(keys[i, position]))
+    rows = np.arange(s)
+    width = keys.shape[1] if keys.ndim == 2 else 0
+
+    def periods_at(position: np.ndarray) -> list[str | None]:
+        """Each series' period at a row position (None outside its rows), all series at once."""
+        position = np.asarray(position, dtype=np.int64)
+        inside = ((position >= 0) & (position < counts)).tolist()
+        if not width:
+            return [None] * s
+        at = keys[rows, np.clip(position, 0, width - 1)].astype(np.int64).tolist()
+        return [_label(labels, key) if inside[i] else None for i, key in enumerate(at)]
+
+    def last_row(mask: np.ndarray) -> np.ndarray:
+        return width - 1 - np.asarray(mask)[:, ::-1].argmax(axis=1) if width else rows
 
     # The fit's own diagnostics become findings once per block of ``recent`` rows (and at the
     # first fit), not at every weekly step of an overlapping window: a rule of thumb or a 5 %
     # test re-read every week on nearly the same rows raises and clears notices at random.
     block = max(model.recent, 1)
     fresh = np.ones(s, dtype=bool)
-    for i, sr in enumerate(series):
-        prev = previous.get(sr)
-        if prev is not None and prev[0] is not None:
-            before = int(np.searchsorted(keys[i, : counts[i]], prev[0], "right"))
-            fresh[i] = counts[i] // block > before // block
+    last_seen = [previous.get(sr) for sr in series]
+    seen = np.array([p is not None and p[0] is not None for p in last_seen], dtype=bool)
+    if seen.any() and width:
+        mark = np.array([p[0] if p is not None and p[0] is not None else 0 for p in last_seen],
+                        dtype=np.int64)
+        # Rows up to the previous fit's last period (searchsorted "right" on each series'
+        # sorted keys): the keys at or below the mark among the series' rows.
+        own = np.arange(width)[None, :] < counts[:, None]
+        before = ((keys <= mark[:, None]) & own).sum(axis=1)
+        fresh = np.where(seen, counts // block > before // block, True)
     # ... and only from a window of at least DIAGNOSTIC_MIN_ROWS rows.
     ok_fresh = ok & fresh & (fit.n >= DIAGNOSTIC_MIN_ROWS)
-    window_first = [period(i, int(np.argmax(out.window_mask[i]))) for i in range(s)]
-    window_last = [period(i, int(counts[i]) - 1) for i in range(s)]
+    window_first = periods_at(np.asarray(out.window_mask).argmax(axis=1) if width else rows)
+    window_last = periods_at(counts - 1)
+    tested = np.asarray(out.recent_tested, dtype=bool)
     recent_first = [
-        period(i, int(np.argmax(out.recent_mask[i]))) if out.recent_tested[i] else None
-        for i in range(s)
+        first if tested[i] else None
+        for i, first in enumerate(periods_at(
+            np.asarray(out.recent_mask).argmax(axis=1) if width else rows))
     ]
     # The periods compared, by their dates: the baseline's, and the latest complete recent block.
+    spanned = ((start >= 0) & (end > start)).tolist()
+    start_first, start_last = periods_at(start), periods_at(end - 1)
     start_spans = [
-        (period(i, int(start[i])), period(i, int(end[i]) - 1))
-        if start[i] >= 0 and end[i] > start[i] else None
-        for i in range(s)
+        (start_first[i], start_last[i]) if spanned[i] else None for i in range(s)
     ]
+    has_recent = (tested & np.asarray(out.recent_mask).any(axis=1)).tolist() if width else (
+        [False] * s)
+    recent_last = periods_at(last_row(out.recent_mask))
     recent_spans = [
-        (recent_first[i], period(i, int(np.flatnonzero(out.recent_mask[i])[-1])))
-        if out.recent_tested[i] and out.recent_mask[i].any() else None
-        for i in range(s)
+        (recent_first[i], recent_last[i]) if has_recent[i] else None for i in range(s)
     ]
     nan_if = np.where
 
     # structural break (sequential monitoring)
     monitoring = out.monitoring
-    break_period = [
-        period(i, int(monitoring.break_index[i])) if monitoring.break_index[i] >= 0 else None
-        for i in range(s)
-    ]
+    break_period = periods_at(monitoring.break_index)
     breaks = structural_break_conditions(
         name, series, monitoring.p_value, monitoring.max_ratio, break_period,
         monitoring.monitorable & (monitoring.periods_monitored > 0) & ok, t,
@@ -1250,13 +1323,14 @@ def _feed_conditions(state: _PassState, files: Sequence[FileReport]) -> None:
     for name, feed in state.config.feeds.items():
         if feed.period_type == "integer" or not isinstance(feed.cadence, timedelta):
             continue  # integer periods have no calendar to be late against
-        summary = state.store.feed_summary(name)
-        if summary.latest_period_key is None:
+        found = state.store.latest_actual_period(name)
+        if found is None:
             continue
-        latest = period_key_date(summary.latest_period_key)
+        latest_key, latest_period = found
+        latest = period_key_date(latest_key)
         latest_moment = datetime(latest.year, latest.month, latest.day, tzinfo=state.config.zone)
         condition = stale_feed_condition(
-            name, latest_moment, summary.latest_period, state.as_of, feed.cadence
+            name, latest_moment, latest_period, state.as_of, feed.cadence
         )
         if condition is not None:
             state.add([condition], clear_default)

@@ -505,14 +505,14 @@ def test_a_pass_stopped_before_its_findings_leaves_them_to_the_next_pass(
     config = load_config(root / CONFIG_NAME)
     as_of = weeks(root)[WEEK - 1].delivered_at
     stop = threading.Event()
-    original = Store.feed_summary
+    original = Store.latest_actual_period  # what the stale_feed check reads
 
-    def feed_summary_then_stop(self: Store, feed: str) -> Any:
+    def latest_period_then_stop(self: Store, feed: str) -> Any:
         stop.set()
         return original(self, feed)
 
     with DatabaseLock(config.database):
-        monkeypatch.setattr(Store, "feed_summary", feed_summary_then_stop)
+        monkeypatch.setattr(Store, "latest_actual_period", latest_period_then_stop)
         stopped = run_pass(config, as_of=as_of, stop_requested=stop, notifier=pass_notifier())
         monkeypatch.undo()
         assert stopped.stopped_early == "findings"

@@ -13,6 +13,8 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, example, given, settings
+from hypothesis import strategies as st
 
 from monitor.store import (
     MIGRATIONS,
@@ -21,6 +23,7 @@ from monitor.store import (
     FileOutcome,
     FitRow,
     ForecastRow,
+    ObservationBatch,
     ObservationRow,
     Store,
     StoreError,
@@ -328,6 +331,10 @@ def test_columns_in_another_order_or_added_later_line_up(store: Store) -> None:
     assert counts.unchanged == 1 and counts.revisions == 0
     summary = store.feed_summary("depot")
     assert (summary.actual_rows, summary.series, summary.latest_period) == (2, 1, week(1)[0])
+    # what the pass's stale_feed check reads, from the index alone; plan rows do not count
+    store.insert_observations("depot", a_file(store, "d.csv"), COLUMNS, [plan("n", 5, 400.0)])
+    assert store.latest_actual_period("depot") == (week(1)[1], week(1)[0])
+    assert store.latest_actual_period("another") is None
 
 
 def test_stored_rows_cannot_be_changed_or_deleted(store: Store) -> None:
@@ -342,6 +349,86 @@ def test_stored_rows_cannot_be_changed_or_deleted(store: Store) -> None:
         with pytest.raises(sqlite3.IntegrityError):
             conn.execute(statement)
     assert len(store.observation_history("depot", "n")) == 1
+
+
+def as_batch(rows: list[ObservationRow], width: int) -> ObservationBatch:
+    """The same rows as the arrays ingest hands over (series and periods by first appearance)."""
+    series: dict[str | None, int] = {}
+    periods: dict[tuple[str, int], int] = {}
+    for row in rows:
+        series.setdefault(row.series, len(series))
+        periods.setdefault((row.period, row.period_key), len(periods))
+    return ObservationBatch(
+        series=tuple(series),
+        series_index=np.array([series[r.series] for r in rows], dtype=np.int64),
+        periods=tuple(p for p, _ in periods),
+        period_keys=tuple(k for _, k in periods),
+        period_index=np.array([periods[(r.period, r.period_key)] for r in rows], dtype=np.int64),
+        is_plan=np.array([r.is_plan for r in rows], dtype=bool),
+        values=np.array([[np.nan if v is None else v for v in r.values] for r in rows],
+                        dtype=np.float64).reshape(len(rows), width),
+        line=np.array([r.line for r in rows], dtype=np.int64),
+    )
+
+
+def stored_state(store: Store) -> list[list[tuple[object, ...]]]:
+    conn = store._conn
+    return [
+        conn.execute(f"SELECT * FROM {table} ORDER BY 1, 2").fetchall()
+        for table in ("observations", "series", "periods", "feed_columns", "files")
+    ]
+
+
+# Files of rows: a few series (the unnamed one too), weeks, plans and actuals, values from a
+# small set so that re-sends, revisions and answered plans all happen; the columns of a file
+# are one of three layouts, so the registry grows and rows are padded.
+LAYOUTS = [("pick_hours", "order_lines"), ("order_lines", "pick_hours", "pallets"),
+           ("pallets", "pick_hours", "order_lines", "staff")]
+ROW = st.tuples(st.sampled_from([None, "a", "b"]), st.integers(0, 3), st.booleans(),
+                st.sampled_from([1.0, 2.0, -0.0, 0.0]), st.sampled_from([3.0, 4.0]),
+                st.sampled_from([None, 5.0]))
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(st.tuples(st.integers(0, 2), st.lists(ROW, max_size=8)), max_size=5))
+# A plan and the actual of one key in one file (both stay current), then the same actual again:
+# an unchanged re-send retires nothing, not even the plan it would have answered.
+@example([(0, [("a", 0, True, 1.0, 3.0, None), ("a", 0, False, 1.0, 3.0, None)]),
+          (0, [("a", 0, False, 1.0, 3.0, None), ("a", 1, True, 1.0, 3.0, None)]),
+          (1, [("a", 0, True, 1.0, 4.0, 5.0), ("a", 1, False, 2.0, 3.0, 5.0)])])
+def test_rows_given_as_arrays_follow_the_row_by_row_rules(
+    files: list[tuple[int, list[tuple[str | None, int, bool, float, float, float | None]]]],
+) -> None:
+    # The array path of insert_observations (what ingest uses) against the loop over
+    # ObservationRow objects: the same stored rows, counts and refusals, file after file.
+    import tempfile
+
+    with tempfile.TemporaryDirectory() as folder:
+        by_rows = Store.open(Path(folder) / "rows.sqlite")
+        by_arrays = Store.open(Path(folder) / "arrays.sqlite")
+        try:
+            for number, (layout, cells) in enumerate(files):
+                names = LAYOUTS[layout]
+                rows = []
+                for line, (series, n, is_plan, y, x, extra) in enumerate(cells, start=2):
+                    named = {"pick_hours": None if is_plan else y, "order_lines": x,
+                             "pallets": extra, "staff": extra}
+                    period, key = week(n)
+                    rows.append(ObservationRow(series, period, key, is_plan,
+                                               tuple(named[c] for c in names), line))
+                outcomes = []
+                for store, given_rows in ((by_rows, rows), (by_arrays, as_batch(rows, len(names)))):
+                    file_id = a_file(store, f"f{number}.csv")
+                    try:
+                        outcomes.append(store.insert_observations("depot", file_id, names,
+                                                                  given_rows))
+                    except (ValueError, sqlite3.IntegrityError) as error:
+                        outcomes.append(type(error))
+                assert outcomes[0] == outcomes[1]
+                assert stored_state(by_rows) == stored_state(by_arrays)
+        finally:
+            by_rows.close()
+            by_arrays.close()
 
 
 # ----------------------------------------------------------------------------- files and passes

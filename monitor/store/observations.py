@@ -245,7 +245,7 @@ class FilesMixin(StoreBase):
         if len(set(names)) != len(names):
             raise ValueError(f"columns named twice: {names}")
         if isinstance(rows, ObservationBatch):
-            fresh_counts = self._insert_new_batch(feed, file_id, names, rows)
+            fresh_counts = self._insert_batch(feed, file_id, names, rows)
             if fresh_counts is not None:
                 return fresh_counts
         batch = rows if isinstance(rows, list) else list(rows)
@@ -355,14 +355,19 @@ class FilesMixin(StoreBase):
             )
         return ObservationCounts(new_actuals, revisions, plans, unchanged, tuple(revised))
 
-    def _insert_new_batch(
+    def _insert_batch(
         self, feed: str, file_id: int, names: tuple[str, ...], batch: ObservationBatch
     ) -> ObservationCounts | None:
-        """The bulk path of :meth:`insert_observations` for rows given as arrays: when none of
-        the batch's keys has a current row yet (a backlog, new series, new periods), every row
-        is new and is written by one ``executemany`` over columns built with numpy. Returns None,
-        having written nothing, when some key has a current row (then the row-by-row rules for
-        revisions and plans apply) or a key is given twice."""
+        """The array path of :meth:`insert_observations`: the same rules as the row-by-row
+        loop, decided over numpy columns and written with bulk statements.
+
+        The current actual and open plan of the batch's keys are read once (as the loop reads
+        them: the database before the batch, not rows of the batch itself), each row is matched
+        to them, and revision, ``current``, what to retire and what to count follow from boolean
+        arrays; the rows to store go in with one ``executemany`` in the batch's order, so ids,
+        revisions and counts are the loop's. Returns None, having written nothing, when the loop
+        would refuse the batch (a key given twice; two rows retiring the same row), so that the
+        loop raises its own error."""
         count = len(batch)
         if batch.values.shape != (count, len(names)):
             raise ValueError(f"values of shape {batch.values.shape}, {len(names)} names")
@@ -374,39 +379,60 @@ class FilesMixin(StoreBase):
         with self.transaction():
             known = self._series_ids(feed)
             skeys = [_skey(name) for name in batch.series]
-            used = np.unique(batch.series_index) if count else np.zeros(0, np.int64)
-            ids = [known.get(skeys[int(i)]) for i in used]
             keys = batch.row_keys()
-            if count and any(sid is not None for sid in ids):
-                present = np.array([sid is not None for sid in ids])
-                old_rows = np.isin(batch.series_index, used[present])
-                if old_rows.any():
-                    sids = sorted({int(sid) for sid in ids if sid is not None})
-                    lo, hi = int(keys[old_rows].min()), int(keys[old_rows].max())
-                    # Current actuals, then open plans, each through its partial index (one
-                    # query over both could use neither and read the whole table).
-                    for is_plan in (0, 1):
-                        hit = self._conn.execute(
-                            "SELECT 1 FROM observations WHERE series_id IN (SELECT value FROM "
-                            "json_each(?)) AND period_key BETWEEN ? AND ? AND current = 1 "
-                            f"AND is_plan = {is_plan} LIMIT 1",
-                            (json.dumps(sids), lo, hi),
-                        ).fetchone()
-                        if hit is not None:
-                            return None
+            is_plan = batch.is_plan.astype(bool)
             if count:
                 canon: dict[str, int] = {}
                 code = np.array([canon.setdefault(k, len(canon)) for k in skeys], np.int64)
                 who = code[batch.series_index]
-                order = np.lexsort((keys, batch.is_plan, who))
-                pairs = np.stack(
-                    [who[order], keys[order], batch.is_plan[order].astype(np.int64)]
-                )
+                order = np.lexsort((keys, is_plan, who))
+                pairs = np.stack([who[order], keys[order], is_plan[order].astype(np.int64)])
                 if (np.diff(pairs, axis=1) == 0).all(axis=0).any():
                     return None  # a key given twice: the row-by-row path names it
+            # Series ids known before this batch (-1: a new series, which has no rows yet).
+            old_ids = np.array([known.get(key, -1) for key in skeys], dtype=np.int64)
+            row_old_id = old_ids[batch.series_index] if count else np.zeros(0, np.int64)
+            actual_at, plan_at, found = self._current_of(row_old_id, keys)
+            has_actual, has_plan = actual_at >= 0, plan_at >= 0
+            oid, blob, rev = found
+            # An actual equal to the current one (its bytes, padded to today's width) is an
+            # unchanged re-send; any other actual for a key with an actual is a revision.
+            registry = self.feed_columns(feed)
+            width = len(registry) + sum(1 for name in names if name not in registry)
+            packed = self._packed(values, names, registry, width)
+            blobs = packed.view(np.dtype((np.void, 8 * width))).ravel().tolist()
+            compared = np.flatnonzero(~is_plan & has_actual)
+            absent = struct.pack(f"<{width}d", *([_NAN] * width))
+            same = np.array(
+                [old + absent[len(old) :] == blobs[i]
+                 for old, i in zip([blob[j] for j in actual_at[compared].tolist()],
+                                   compared.tolist(), strict=True)],
+                dtype=bool,
+            )
+            unchanged = np.zeros(count, dtype=bool)
+            unchanged[compared[same]] = True
+            revised_rows = np.zeros(count, dtype=bool)
+            revised_rows[compared[~same]] = True
+            stored = ~unchanged
+            rev_array = np.array(rev, dtype=np.int64)
+            revision = np.zeros(count, dtype=np.int64)
+            plan_revised = is_plan & has_plan
+            revision[plan_revised] = rev_array[plan_at[plan_revised]] + 1
+            revision[revised_rows] = rev_array[actual_at[revised_rows]] + 1
+            current = np.where(is_plan & has_actual, 0, 1)
+            # What the loop retires, row by row: a plan's previous plan; a stored actual's
+            # revised actual, then the plan it answers.
+            oid_array = np.array(oid, dtype=np.int64)
+            first = np.where(is_plan, np.where(has_plan, plan_at, -1),
+                             np.where(revised_rows, actual_at, -1))
+            second = np.where(~is_plan & stored & has_plan, plan_at, -1)
+            retire_at = np.stack([first, second], axis=1).ravel()
+            retire = oid_array[retire_at[retire_at >= 0]]
+            if np.unique(retire).size != retire.size:
+                return None  # the loop would retire a row twice and be refused
             registry = self._register_columns(feed, names)
-            width = len(registry)
-            fresh = sorted({skeys[int(i)] for i in used} - known.keys())
+            fresh = sorted({skeys[int(i)] for i in np.unique(batch.series_index).tolist()}
+                           - known.keys()) if count else []
             self._conn.executemany(
                 "INSERT INTO series (feed, key) VALUES (?, ?)", [(feed, key) for key in fresh]
             )
@@ -414,34 +440,104 @@ class FilesMixin(StoreBase):
                 known = self._series_ids(feed)
             series_ids = np.array([known.get(key, -1) for key in skeys], dtype=np.int64)
             labels: dict[int, str] = {}
-            for index in np.unique(batch.period_index).tolist() if count else []:
-                labels.setdefault(batch.period_keys[index], batch.periods[index])
+            if count:
+                # Each period key's label from its first row, in the order of first rows.
+                _, first_rows = np.unique(batch.period_index, return_index=True)
+                for index in batch.period_index[np.sort(first_rows)].tolist():
+                    labels.setdefault(batch.period_keys[index], batch.periods[index])
             self._conn.executemany(
                 "INSERT INTO periods (feed, period_key, period) VALUES (?, ?, ?) "
                 "ON CONFLICT DO NOTHING",
                 [(feed, key, text) for key, text in labels.items()],
             )
-            packed = np.full((count, width), _NAN)
-            for column, name in enumerate(names):
-                packed[:, registry.index(name)] = values[:, column] + 0.0  # -0.0 → 0.0
-            blobs = packed.astype("<f8").view(np.dtype((np.void, 8 * width))).ravel().tolist()
-            period_text = [batch.periods[i] for i in batch.period_index.tolist()]
-            plans = int(batch.is_plan.sum())
+            if retire.size:
+                self._conn.execute(
+                    "UPDATE observations SET current = 0 WHERE id IN "
+                    "(SELECT value FROM json_each(?))",
+                    (json.dumps(retire.tolist()),),
+                )
+            kept = np.flatnonzero(stored)
+            period_text = batch.periods
             self._conn.executemany(
                 "INSERT INTO observations (series_id, period, period_key, is_plan, revision, "
-                f"current, vals, file_id, line) VALUES (?, ?, ?, ?, 0, 1, ?, {int(file_id)}, ?)",
+                f"current, vals, file_id, line) VALUES (?, ?, ?, ?, ?, ?, ?, {int(file_id)}, ?)",
                 zip(
-                    series_ids[batch.series_index].tolist(), period_text, keys.tolist(),
-                    batch.is_plan.astype(np.int64).tolist(), blobs, batch.line.tolist(),
+                    series_ids[batch.series_index[kept]].tolist(),
+                    [period_text[i] for i in batch.period_index[kept].tolist()],
+                    keys[kept].tolist(),
+                    is_plan[kept].astype(np.int64).tolist(),
+                    revision[kept].tolist(),
+                    current[kept].tolist(),
+                    [blobs[i] for i in kept.tolist()],
+                    batch.line[kept].tolist(),
                     strict=True,
                 ),
             )
+            plans = int(is_plan.sum())
+            revisions = int(revised_rows.sum())
+            same_count = int(unchanged.sum())
             self._conn.execute(
-                "UPDATE files SET rows_ingested = rows_ingested + ?, rows_plan = rows_plan + ? "
-                "WHERE id = ?",
-                (count, plans, file_id),
+                "UPDATE files SET rows_ingested = rows_ingested + ?, rows_plan = rows_plan + ?, "
+                "revisions = revisions + ?, unchanged = unchanged + ? WHERE id = ?",
+                (int(kept.size), plans, revisions, same_count, file_id),
             )
-        return ObservationCounts(count - plans, 0, plans, 0, ())
+        revised = tuple(
+            Revision(batch.series[s], batch.periods[p], r)
+            for s, p, r in zip(
+                batch.series_index[revised_rows].tolist(),
+                batch.period_index[revised_rows].tolist(),
+                revision[revised_rows].tolist(),
+                strict=True,
+            )
+        )
+        new_actuals = int((~is_plan & ~has_actual).sum())
+        return ObservationCounts(new_actuals, revisions, plans, same_count, revised)
+
+    @staticmethod
+    def _packed(
+        values: np.ndarray, names: tuple[str, ...], registry: list[str], width: int
+    ) -> np.ndarray:
+        """Rows' numbers laid out as stored: registry order (new names after the known ones,
+        in the order given), little-endian float64, NaN where absent (one NaN, as the loop's
+        ``math.nan``), -0.0 as 0.0."""
+        order = list(registry)
+        order.extend(name for name in names if name not in order)
+        packed = np.full((values.shape[0], width), _NAN, dtype="<f8")
+        for column, name in enumerate(names):
+            cells = values[:, column]
+            packed[:, order.index(name)] = np.where(np.isnan(cells), _NAN, cells + 0.0)
+        return packed
+
+    def _current_of(
+        self, series_id: np.ndarray, keys: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray, tuple[list[int], list[bytes], list[int]]]:
+        """For each row (series id, -1 for a new series; period key): the position of its
+        key's current actual and of its open plan in the rows read (-1: none), and those rows'
+        ids, values and revisions. One range read per kind through its partial index."""
+        none = np.full(series_id.size, -1, dtype=np.int64)
+        found: tuple[list[int], list[bytes], list[int]] = ([], [], [])
+        old = series_id >= 0
+        if not old.any():
+            return none, none.copy(), found
+        ids = json.dumps(np.unique(series_id[old]).tolist())
+        lo, hi = int(keys[old].min()), int(keys[old].max())
+        slots: list[dict[tuple[int, int], int]] = [{}, {}]
+        for plan in (0, 1):
+            cursor = self._conn.execute(
+                "SELECT series_id, period_key, id, vals, revision FROM observations "
+                "WHERE series_id IN (SELECT value FROM json_each(?)) AND period_key BETWEEN ? "
+                f"AND ? AND is_plan = {plan} AND current = 1",
+                (ids, lo, hi),
+            )
+            for sid, key, row_id, vals, revision in cursor:
+                slots[plan][(sid, key)] = len(found[0])
+                found[0].append(row_id)
+                found[1].append(vals)
+                found[2].append(revision)
+        pairs = list(zip(series_id.tolist(), keys.tolist(), strict=True))
+        actual = np.array([slots[0].get(pair, -1) for pair in pairs], dtype=np.int64)
+        plan_row = np.array([slots[1].get(pair, -1) for pair in pairs], dtype=np.int64)
+        return actual, plan_row, found
 
     def _current_rows(
         self,
@@ -654,6 +750,19 @@ class FilesMixin(StoreBase):
     def last_observation_id(self) -> int:
         """The highest observation id so far (0 when none): a mark for "changed since"."""
         return int(self._conn.execute("SELECT ifnull(max(id), 0) FROM observations").fetchone()[0])
+
+    def latest_actual_period(self, feed: str) -> tuple[int, str | None] | None:
+        """The latest period key among a feed's current actuals and its label (None: no
+        actual yet): :meth:`feed_summary`'s ``latest_period_key`` and ``latest_period``, found
+        by one descent of the partial index per series instead of reading every row."""
+        latest = self._conn.execute(
+            "SELECT max((SELECT max(period_key) FROM observations WHERE series_id = s.id "
+            "AND is_plan = 0 AND current = 1)) FROM series AS s WHERE s.feed = ?",
+            (feed,),
+        ).fetchone()[0]
+        if latest is None:
+            return None
+        return int(latest), self.period_labels(feed, [latest]).get(latest)
 
     def feed_summary(self, feed: str) -> FeedSummary:
         """Counts and the latest period of a feed's current rows, and when it last sent a file."""

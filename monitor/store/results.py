@@ -307,9 +307,10 @@ class ResultsMixin(StoreBase):
             "ORDER BY f.pass_id, f.model, f.series_key, f.target_period_key, f.id",
             tuple(params),
         )
+        stamps: dict[str, datetime] = {}
         return [
             IssuedForecast(
-                _forecast_record(row), row["o_actual"],
+                _forecast_record(row, stamps), row["o_actual"],
                 None if row["o_outcome"] is None else OutcomeKind(row["o_outcome"]),
             )
             for row in rows
@@ -664,7 +665,16 @@ def _fit_record(row: Mapping[str, Any]) -> FitRecord:
     )
 
 
-def _forecast_record(row: Mapping[str, Any]) -> ForecastRecord:
+def _forecast_record(
+    row: Mapping[str, Any], stamps: dict[str, datetime] | None = None
+) -> ForecastRecord:
+    """A forecast row as its record; ``stamps``, kept across many rows, parses each issue time
+    once (a pass issues its forecasts at one moment)."""
+    issued_at = None if stamps is None else stamps.get(row["issued_at"])
+    if issued_at is None:
+        issued_at = parse_utc(row["issued_at"])
+        if stamps is not None:
+            stamps[row["issued_at"]] = issued_at
     return ForecastRecord(
         id=row["id"],
         pass_id=row["pass_id"],
@@ -676,7 +686,7 @@ def _forecast_record(row: Mapping[str, Any]) -> ForecastRecord:
         target_period=row["target_period"],
         target_period_key=row["target_period_key"],
         observation_id=row["observation_id"],
-        issued_at=parse_utc(row["issued_at"]),
+        issued_at=issued_at,
         lead=row["lead"],
         inputs=json.loads(row["inputs"]),
         point=row["point"],
