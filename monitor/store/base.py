@@ -75,9 +75,9 @@ class StoreBase:
         self.path = path
         self._depth = 0
         self.readonly = False  # opened with readonly=True: a write is the program's error
-        # ``scored_forecasts(model, last=…)``'s rows per (model, last, with_df), with the highest
-        # outcomes id they cover (``ResultsMixin._latest_scored_rows``).
-        self._scored_cache: dict[tuple[str, int, bool], tuple[int, list[tuple[Any, ...]]]] = {}
+        # ``scored_forecasts(model, last=…)``'s columns per (model, last, with_df), with the
+        # highest outcomes id they cover (``ResultsMixin._latest_scored_columns``).
+        self._scored_cache: dict[tuple[str, int, bool], tuple[int, list[Any]]] = {}
 
     @classmethod
     def open(cls, path: str | Path, *, readonly: bool = False) -> Self:

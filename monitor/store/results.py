@@ -6,7 +6,6 @@ import json
 import struct
 from collections.abc import Iterable, Mapping, Sequence
 from datetime import datetime
-from itertools import compress
 from operator import itemgetter
 from typing import TYPE_CHECKING, Any
 
@@ -441,51 +440,40 @@ class ResultsMixin(StoreBase):
                 select + "FROM forecasts AS f JOIN outcomes AS o ON o.forecast_id = f.id "
                 "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3)" + order
             )
-            rows = self._conn.execute(sql, params).fetchall()
+            columns = _scored_columns(self._conn.execute(sql, params).fetchall())
         elif model is not None and all_series:
-            rows = self._latest_scored_rows(model, last, select, with_df)
+            columns = self._latest_scored_columns(model, last, select, with_df)
         else:
-            rows = self._conn.execute(_latest_scored_sql(select, model), (
-                *params, last - 1, _NO_BOUND)).fetchall()
-        keep = _scored_rows_to_keep(
-            [row[1] for row in rows], [row[2] for row in rows], [row[4] for row in rows],
-            latest_only, last,
-        )
+            columns = _scored_columns(self._conn.execute(_latest_scored_sql(select, model), (
+                *params, last - 1, _NO_BOUND)).fetchall())
+        keep = _scored_rows_to_keep(columns[1], columns[2], columns[4], latest_only, last)
         if not keep.all():
-            rows = list(compress(rows, keep))
-        count = len(rows)
-        columns = [list(map(itemgetter(i), rows)) for i in range(16)]
-        del rows
-
-        def numbers(index: int, dtype: type) -> NDArray[Any]:
-            return np.array(columns[index], dtype=dtype).reshape(count)
-
+            columns = [column[keep] for column in columns]
         kinds = {kind.value: kind for kind in OutcomeKind}
         return ScoredForecasts(
-            forecast_id=numbers(0, np.int64),
-            model=tuple(columns[1]),
-            series=tuple(None if key == "" else key for key in columns[2]),
-            target_period=tuple(columns[3]),
-            target_period_key=numbers(4, np.int64),
-            lead=numbers(5, np.int64),
-            issued_at=tuple(columns[6]),
-            actual=numbers(7, np.float64),
-            point=numbers(8, np.float64),
-            lower=numbers(9, np.float64),
-            upper=numbers(10, np.float64),
-            level=numbers(11, np.float64),
-            outcome=tuple(kinds[kind] for kind in columns[12]),
-            calibrated_lower=np.array(columns[13], dtype=np.float64).reshape(count),
-            calibrated_upper=np.array(columns[14], dtype=np.float64).reshape(count),
-            residual_df=np.array(columns[15], dtype=np.float64).reshape(count) if with_df
-            else None,
+            forecast_id=columns[0],
+            model=tuple(columns[1].tolist()),
+            series=tuple(None if key == "" else key for key in columns[2].tolist()),
+            target_period=tuple(columns[3].tolist()),
+            target_period_key=columns[4],
+            lead=columns[5],
+            issued_at=tuple(columns[6].tolist()),
+            actual=columns[7],
+            point=columns[8],
+            lower=columns[9],
+            upper=columns[10],
+            level=columns[11],
+            outcome=tuple(kinds[kind] for kind in columns[12].tolist()),
+            calibrated_lower=columns[13],
+            calibrated_upper=columns[14],
+            residual_df=columns[15] if with_df else None,
         )
 
-    def _latest_scored_rows(
+    def _latest_scored_columns(
         self, model: str, last: int, select: str, with_df: bool
-    ) -> list[tuple[Any, ...]]:
-        """The rows of ``scored_forecasts(model, last=…)`` before the choice of issues, read once
-        per connection and then only what was scored since (the pass reads a model's latest
+    ) -> list[NDArray[Any]]:
+        """The columns of ``scored_forecasts(model, last=…)`` before the choice of issues, read
+        once per connection and then only what was scored since (the pass reads a model's latest
         horizon of scored forecasts every week; the demo's replay does so 875 times on one
         connection).
 
@@ -493,7 +481,8 @@ class ResultsMixin(StoreBase):
         outcomes with a higher id. Each series' ``last``-th latest scored target can only move
         forward as outcomes arrive, so a row cut off before stays cut off: the kept rows plus the
         new ones, sorted as the query sorts them and cut again, equal a fresh read (every read
-        stops at the outcomes id it started from, so both sides see the same rows).
+        stops at the outcomes id it started from, so both sides see the same rows). The columns
+        are kept as arrays, so a read converts only the new rows.
         """
         bound = int(self._conn.execute("SELECT ifnull(max(id), 0) FROM outcomes").fetchone()[0])
         key = (model, last, with_df)
@@ -501,25 +490,26 @@ class ResultsMixin(StoreBase):
         settled = not self._conn.in_transaction
         held = self._scored_cache.get(key) if settled else None
         if held is None:
-            rows = self._conn.execute(_latest_scored_sql(select, model), (
-                model, 1, "", last - 1, bound)).fetchall()
+            columns = _scored_columns(self._conn.execute(_latest_scored_sql(select, model), (
+                model, 1, "", last - 1, bound)).fetchall())
         elif held[0] == bound:
-            rows = held[1]
+            columns = held[1]
         else:
-            fresh = self._conn.execute(
+            fresh = _scored_columns(self._conn.execute(
                 select + "FROM outcomes AS o JOIN forecasts AS f ON f.id = o.forecast_id "
                 "WHERE o.id > ?2 AND o.id <= ?3 AND f.model = ?1", (model, held[0], bound),
-            ).fetchall()
-            rows = sorted([*held[1], *fresh], key=itemgetter(2, 4, 0))
-            within = _scored_rows_to_keep(
-                [row[1] for row in rows], [row[2] for row in rows], [row[4] for row in rows],
-                False, last,
-            )
-            if not within.all():
-                rows = list(compress(rows, within))
+            ).fetchall())
+            columns = [np.concatenate((a, b)) for a, b in zip(held[1], fresh, strict=True)]
+            # The query's order: series key (SQLite's binary order of UTF-8 is Python's order
+            # of the text), target period, forecast id.
+            series_code = np.unique(columns[2], return_inverse=True)[1].reshape(-1)
+            order = np.lexsort((columns[0], columns[4], series_code))
+            within = _scored_rows_to_keep(columns[1][order], columns[2][order],
+                                          columns[4][order], False, last)
+            columns = [column[order][within] for column in columns]
         if settled:
-            self._scored_cache[key] = (bound, rows)
-        return rows
+            self._scored_cache[key] = (bound, columns)
+        return columns
 
     # ----------------------------------------------------------------- baselines
 
@@ -595,10 +585,23 @@ def _latest_scored_sql(select: str, model: str | None) -> str:
     )
 
 
+_SCORED_TYPES = (np.int64, object, object, object, np.int64, np.int64, object, np.float64,
+                 np.float64, np.float64, np.float64, np.float64, object, np.float64, np.float64,
+                 np.float64)
+
+
+def _scored_columns(rows: Sequence[tuple[Any, ...]]) -> list[NDArray[Any]]:
+    """The rows of a scored-forecasts query as one array per column (text as objects; NULL
+    numbers as NaN)."""
+    count = len(rows)
+    return [np.array(list(map(itemgetter(i), rows)), dtype=kind).reshape(count)
+            for i, kind in enumerate(_SCORED_TYPES)]
+
+
 def _scored_rows_to_keep(
-    models: Sequence[str],
-    series_keys: Sequence[str],
-    target_keys: Sequence[int],
+    models: Sequence[str] | NDArray[Any],
+    series_keys: Sequence[str] | NDArray[Any],
+    target_keys: Sequence[int] | NDArray[Any],
     latest_only: bool,
     last: int | None,
 ) -> NDArray[np.bool_]:
