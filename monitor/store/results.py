@@ -585,9 +585,11 @@ def _latest_scored_sql(select: str, model: str | None) -> str:
     )
 
 
-_SCORED_TYPES = (np.int64, object, object, object, np.int64, np.int64, object, np.float64,
-                 np.float64, np.float64, np.float64, np.float64, object, np.float64, np.float64,
-                 np.float64)
+# dtype names, not numpy's types: the store must not import numpy before a read needs it (the
+# light commands never do; tests/test_cli_startup.py).
+_SCORED_TYPES = ("int64", object, object, object, "int64", "int64", object, "float64",
+                 "float64", "float64", "float64", "float64", object, "float64", "float64",
+                 "float64")
 
 
 def _scored_columns(rows: Sequence[tuple[Any, ...]]) -> list[NDArray[Any]]:
