@@ -587,9 +587,8 @@ def _latest_scored_sql(select: str, model: str | None) -> str:
 
 # dtype names, not numpy's types: the store must not import numpy before a read needs it (the
 # light commands never do; tests/test_cli_startup.py).
-_SCORED_TYPES = ("int64", object, object, object, "int64", "int64", object, "float64",
-                 "float64", "float64", "float64", "float64", object, "float64", "float64",
-                 "float64")
+_SCORED_TYPES = ("int64", "O", "O", "O", "int64", "int64", "O", "float64", "float64", "float64",
+                 "float64", "float64", "O", "float64", "float64", "float64")
 
 
 def _scored_columns(rows: Sequence[tuple[Any, ...]]) -> list[NDArray[Any]]:
