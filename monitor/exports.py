@@ -139,35 +139,12 @@ def _cell(value: Any) -> str:
     return str(value)
 
 
-def _none_cell(value: None) -> str:
-    return ""
-
-
-def _bool_cell(value: bool) -> str:
-    return "true" if value else "false"
-
-
-def _datetime_cell(value: datetime) -> str:
-    return value.isoformat()
-
-
-# _cell by the exact type of the value (the cells of a forecast are of these types); anything
-# else, a subclass included, goes through _cell itself.
-_CELL_BY_TYPE: dict[type, Callable[[Any], str]] = {
-    float: float.__repr__, type(None): _none_cell, str: str, int: int.__repr__,
-    bool: _bool_cell, datetime: _datetime_cell,
-}
-
-
 def csv_bytes(rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> bytes:
     buffer = io.StringIO(newline="")
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(columns)
-    by_type = _CELL_BY_TYPE.get
-    writer.writerows(
-        [by_type(type(value), _cell)(value) for value in map(row.__getitem__, columns)]
-        for row in rows
-    )
+    for row in rows:
+        writer.writerow([_cell(row[c]) for c in columns])
     return buffer.getvalue().encode("utf-8")
 
 
