@@ -143,7 +143,7 @@ def _fits(batch: BatchInput, names: list[str], *masks: BoolArray) -> list[BatchF
 
     A small model's pass pays each ``fit_batch`` call's fixed cost (a few hundred numpy calls)
     several times over; stacked along the series axis the fits cost one call. Each series is
-    fitted on its own either way, so the figures are the same bits (``tests/test_analysis.py``).
+    fitted on its own either way, so the figures are the same bits (``tests/test_compute.py``).
     """
     series = batch.y.shape[0]
     if len(masks) == 1 or series * len(masks) > STACKED_SERIES:

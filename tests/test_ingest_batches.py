@@ -104,7 +104,7 @@ def test_a_quote_part_way_switches_to_the_csv_module_at_a_line_boundary() -> Non
 
 def test_a_few_rows_split_here_read_as_pyarrow_reads_them(monkeypatch: pytest.MonkeyPatch) -> None:
     # Blocks of up to _SPLIT_ROWS rows are split at the commas in Python (pyarrow's reader costs
-    # about 2 ms a call whatever the size); larger ones go to pyarrow. Every block size, either
+    # about 0.8 ms a call whatever the size); larger ones go to pyarrow. Every block size, either
     # way, gives what the csv module's way gives (bytes that are not UTF-8 refuse the whole file
     # before any block is read: ``test_ingest.py``).
     body = "".join(messy_rows(300)).encode() + "2024-01-07,dépôt-ü,1,2,\n".encode()

@@ -678,7 +678,7 @@ class _FastCsv:
         """``_read``'s table for a few rows, split at the commas here: the block has no quote
         and each of these lines has the header's number of fields, so each field is the text
         between two commas, as pyarrow reads it (no null values, white space kept). pyarrow's
-        reader costs about 2 ms a call whatever the size, which a weekly file of a few dozen
+        reader costs about 0.8 ms a call whatever the size, which a weekly file of a few dozen
         rows pays in full. None, like ``_read``, where a needed field is not UTF-8."""
         pa, _ = _arrow_csv()
         columns: list[list[str]] = [[] for _ in self.needed]

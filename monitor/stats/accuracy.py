@@ -86,7 +86,8 @@ def accuracy_batch(group: ArrayLike, actual: ArrayLike, point: ArrayLike) -> Acc
     for index in range(size):
         within = slice(bounds[index], bounds[index + 1])
         rows = usable[within]
-        errors = a[within][rows] - f[within][rows]
+        actuals = a[within][rows]
+        errors = actuals - f[within][rows]
         n = errors.size
         scored[index] = n
         if n == 0:
@@ -96,7 +97,7 @@ def accuracy_batch(group: ArrayLike, actual: ArrayLike, point: ArrayLike) -> Acc
         out["mean_absolute_error"][index] = mae
         if mae > 0:
             out["tracking_signal"][index] = float(errors.sum()) / mae
-        steps = np.abs(np.diff(a[within][rows]))
+        steps = np.abs(np.diff(actuals))
         if steps.size and steps.mean() > 0:
             out["mase"][index] = mae / float(steps.mean())
         if n >= 3:

@@ -504,9 +504,9 @@ class ResultsMixin(StoreBase):
             # of the text), target period, forecast id.
             series_code = np.unique(columns[2], return_inverse=True)[1].reshape(-1)
             order = np.lexsort((columns[0], columns[4], series_code))
-            within = _scored_rows_to_keep(columns[1][order], columns[2][order],
-                                          columns[4][order], False, last)
-            columns = [column[order][within] for column in columns]
+            columns = [column[order] for column in columns]
+            within = _scored_rows_to_keep(columns[1], columns[2], columns[4], False, last)
+            columns = [column[within] for column in columns]
         if settled:
             self._scored_cache[key] = (bound, columns)
         return columns
