@@ -54,6 +54,24 @@ def _refuse(row: ObservationRow, value: float) -> float:
     raise ValueError(f"line {row.line}: {value!r} is not a finite number")
 
 
+
+def _positions_of(
+    slot: Mapping[tuple[int, int], int], old: np.ndarray, series_id: np.ndarray, keys: np.ndarray
+) -> np.ndarray:
+    """Each row's position in ``slot`` by its (series id, period key), -1 where absent. Only
+    rows of a known series whose key is among the keys read are looked up: a batch of new
+    periods (a backlog's later files, most weekly files) reads none and looks up nothing."""
+    out = np.full(series_id.size, -1, dtype=np.int64)
+    if not slot:
+        return out
+    read_keys = np.fromiter((key for _, key in slot), np.int64, len(slot))
+    rows = np.flatnonzero(old & np.isin(keys, read_keys))
+    if rows.size:
+        pairs = zip(series_id[rows].tolist(), keys[rows].tolist(), strict=True)
+        out[rows] = [slot.get(pair, -1) for pair in pairs]
+    return out
+
+
 class FilesMixin(StoreBase):
     # ------------------------------------------------------------------ files
 
@@ -534,10 +552,8 @@ class FilesMixin(StoreBase):
                 found[0].append(row_id)
                 found[1].append(vals)
                 found[2].append(revision)
-        pairs = list(zip(series_id.tolist(), keys.tolist(), strict=True))
-        actual = np.array([slots[0].get(pair, -1) for pair in pairs], dtype=np.int64)
-        plan_row = np.array([slots[1].get(pair, -1) for pair in pairs], dtype=np.int64)
-        return actual, plan_row, found
+        return _positions_of(slots[0], old, series_id, keys), _positions_of(
+            slots[1], old, series_id, keys), found
 
     def _current_rows(
         self,
