@@ -18,11 +18,13 @@ import pytest
 
 from monitor.config import parse_config
 from monitor.notify.series import load_model
-from monitor.store import FitRow, ForecastRow, ScoredForecasts, Store, date_period_key
+from monitor.store import FitRow, ForecastRow, ScoredForecasts, Store, date_period_key, results
 from monitor.store.results import (
     SCORED_CHUNK,
     _every_scored_sql,
+    _in_scored_order,
     _read_scored_columns,
+    _scan_scored_sql,
     _scored_columns,
     _scored_select,
 )
@@ -134,6 +136,24 @@ def test_a_chunked_read_equals_every_row_converted_at_once(store: Store, with_df
     _same_columns(_read_scored_columns(store._conn.execute(sql, one), 3), _scored_columns(rows))
 
 
+@pytest.mark.parametrize("with_df", [False, True])
+@pytest.mark.parametrize("params", [(None, 1, ""), ("pick", 1, ""), ("pack", 1, ""),
+                                    ("pack", 0, "Zürich"), ("pick", 0, "")])
+def test_the_outcomes_scanned_and_sorted_equal_the_read_in_index_order(
+    store: Store, with_df: bool, params: tuple[str | None, int, str]
+) -> None:
+    select = _scored_select(with_df)
+    want = _scored_columns(store._conn.execute(_every_scored_sql(select), params).fetchall())
+    scanned = store._conn.execute(_scan_scored_sql(select), params).fetchall()
+    assert len(scanned) == len(want[0]) > 1
+    # The scan does give the rows in another order (else the sort would not be tested).
+    assert [r[0] for r in scanned] != want[0].tolist()
+    for chunk in (1, 4, None):
+        got = _in_scored_order(_read_scored_columns(
+            store._conn.execute(_scan_scored_sql(select), params), chunk))
+        _same_columns(got, want)
+
+
 def test_an_empty_read_has_empty_columns_of_the_right_types(store: Store) -> None:
     sql = _every_scored_sql(_scored_select(False))
     nothing = ("no such model", 1, "")
@@ -155,15 +175,20 @@ def test_repeated_texts_are_one_object_each(store: Store) -> None:
 @pytest.mark.parametrize("latest_only", [True, False])
 @pytest.mark.parametrize("last", [None, 1, 4])
 @pytest.mark.parametrize("with_df", [False, True])
-def test_the_audit_views_do_not_depend_on_the_chunk_size(
-    store: Store, latest_only: bool, last: int | None, with_df: bool
+def test_the_audit_views_do_not_depend_on_the_chunk_size_or_the_way_read(
+    store: Store, latest_only: bool, last: int | None, with_df: bool,
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     fresh = Store.open(store.path)  # no per-connection columns kept from an earlier read
     try:
         for model in (*MODELS, None):
+            # A model's rows through the index (no model is a large enough share) in one fetch.
+            monkeypatch.setattr(results, "SCAN_SHARE", 0)
             whole = fresh.scored_forecasts(model, latest_only=latest_only, last=last,
                                            with_df=with_df, chunk=10**9)
             assert len(whole) > 0
+            # Each model is half the forecasts: read by the scan of the outcomes, sorted.
+            monkeypatch.setattr(results, "SCAN_SHARE", 10)
             for chunk in (1, 3, len(whole) - 1):
                 again = Store.open(store.path)
                 try:

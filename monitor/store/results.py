@@ -433,8 +433,7 @@ class ResultsMixin(StoreBase):
         select = _scored_select(with_df)
         params: tuple[Any, ...] = (model, int(all_series), _skey(series))
         if last is None:
-            sql = _every_scored_sql(select)
-            columns = _read_scored_columns(self._conn.execute(sql, params), chunk)
+            columns = self._every_scored_columns(params, select, chunk)
         elif model is not None and all_series:
             columns = self._latest_scored_columns(model, last, select, with_df, chunk)
         else:
@@ -442,7 +441,9 @@ class ResultsMixin(StoreBase):
                 _latest_scored_sql(select, model), (*params, last - 1, _NO_BOUND)), chunk)
         keep = _scored_rows_to_keep(columns[1], columns[2], columns[4], latest_only, last)
         if not keep.all():
-            columns = [column[keep] for column in columns]
+            columns = list(columns)  # the kept columns (``last=``) stay as they are
+            for i, column in enumerate(columns):  # one column's copy at a time
+                columns[i] = column[keep]
         kinds = {kind.value: kind for kind in OutcomeKind}
         return ScoredForecasts(
             forecast_id=columns[0],
@@ -462,6 +463,40 @@ class ResultsMixin(StoreBase):
             calibrated_upper=columns[14],
             residual_df=columns[15] if with_df else None,
         )
+
+    def _every_scored_columns(
+        self, params: tuple[Any, ...], select: str, chunk: int | None
+    ) -> list[NDArray[Any]]:
+        """The columns of ``scored_forecasts`` without ``last``, before the choice of issues.
+
+        In the order of the (model, series, target) index, SQLite fetches each forecast's row
+        from wherever the pass that issued it put it: a page read per row, since a pass writes
+        every series' forecast side by side (1.9 M rows: 24 s of a 34 s read on the shared
+        machine, ``tests/benchmarks/bench_history.py``). Reading the outcomes in the order they
+        were written, each with its forecast, takes the pages in order instead (10 s); the rows
+        are then put in the index's order by sorting on (model, series key, target key,
+        forecast id), which orders them totally (the id is unique) and as SQLite's ORDER BY does
+        (its binary order of UTF-8 text is Python's order of the text), so the columns are the
+        same. That scan passes over every model's outcomes, so it is taken only when the
+        model's forecasts are at least ``1 / SCAN_SHARE`` of all (each row passed over costs
+        about a tenth of a row fetched out of order); a model with few rows, or one series,
+        is read through the index."""
+        model, all_series = params[0], params[1]
+        if model is not None and not all_series:
+            scan = False
+        elif model is None:
+            scan = True
+        else:
+            total = int(self._conn.execute(
+                "SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
+            mine = int(self._conn.execute(
+                "SELECT count(*) FROM forecasts WHERE model = ?", (model,)).fetchone()[0])
+            scan = mine * SCAN_SHARE >= total
+        if not scan:
+            return _read_scored_columns(
+                self._conn.execute(_every_scored_sql(select), params), chunk)
+        return _in_scored_order(_read_scored_columns(
+            self._conn.execute(_scan_scored_sql(select), params), chunk))
 
     def _latest_scored_columns(
         self, model: str, last: int, select: str, with_df: bool, chunk: int | None = None
@@ -580,6 +615,15 @@ def _every_scored_sql(select: str) -> str:
     )
 
 
+def _scan_scored_sql(select: str) -> str:
+    """``_every_scored_sql``'s rows in the order the outcomes were written (no ORDER BY): the
+    outcomes scanned, each forecast fetched by its id."""
+    return (
+        select + "FROM outcomes AS o CROSS JOIN forecasts AS f ON f.id = o.forecast_id "
+        "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3)"
+    )
+
+
 def _latest_scored_sql(select: str, model: str | None) -> str:
     """Each series' rows from its ``?4 + 1``-th latest scored target period on (every issue),
     among the outcomes with ids up to ``?5``."""
@@ -610,6 +654,30 @@ _SCORED_TYPES = ("int64", "O", "O", "O", "int64", "int64", "O", "float64", "floa
 #: whole history read at once (three years of weekly passes at 10,000 series: 1.5 M rows) held
 #: more than a gigabyte before it became arrays; a chunk holds some 40 MB.
 SCORED_CHUNK = 50_000
+
+
+#: A model's scored forecasts are read by a scan of every outcome (``_every_scored_columns``)
+#: when its forecasts are at least this fraction of all forecasts, inverted (measured by
+#: tests/benchmarks/bench_history.py: a row fetched in index order costs about ten times a row
+#: passed over in a scan).
+SCAN_SHARE = 10
+
+
+def _in_scored_order(columns: list[NDArray[Any]]) -> list[NDArray[Any]]:
+    """The columns sorted by model, series key, target period key and forecast id: the order of
+    the scored-forecasts queries' ORDER BY."""
+    if len(columns[0]) < 2:
+        return columns
+    keys = [columns[0], columns[4]]
+    for i in (2, 1):  # series key, then model: each text's rank among the column's texts
+        rank = {text: r for r, text in enumerate(sorted(set(columns[i].tolist())))}
+        keys.append(np.fromiter(map(rank.__getitem__, columns[i].tolist()), np.int64,
+                                len(columns[i])))
+    order = np.lexsort(keys)
+    del keys
+    for i, column in enumerate(columns):  # one column's copy at a time
+        columns[i] = column[order]
+    return columns
 
 
 def _read_scored_columns(
