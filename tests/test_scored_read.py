@@ -129,6 +129,10 @@ def test_a_chunked_read_equals_every_row_converted_at_once(store: Store, with_df
     for chunk in (1, 2, 7, count - 1, count, count + 1, None):
         got = _read_scored_columns(store._conn.execute(sql, params), chunk)
         _same_columns(got, want)
+        # Arrays made ``capacity`` long at once: too short (the rest joined after), exact, long.
+        for capacity in (1, 5, count // 2, count - 1, count, 3 * count):
+            got = _read_scored_columns(store._conn.execute(sql, params), chunk, capacity)
+            _same_columns(got, want)
     # Filtered to one model and one series: fewer rows, same agreement.
     one = ("pack", 0, "Zürich")
     rows = store._conn.execute(sql, one).fetchall()

@@ -482,21 +482,21 @@ class ResultsMixin(StoreBase):
         about a tenth of a row fetched out of order); a model with few rows, or one series,
         is read through the index."""
         model, all_series = params[0], params[1]
+        # Forecasts (scored or not) bound the rows read: the arrays are made that long at once.
+        total = int(self._conn.execute("SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
         if model is not None and not all_series:
-            scan = False
+            scan, capacity = False, 0
         elif model is None:
-            scan = True
+            scan, capacity = True, total
         else:
-            total = int(self._conn.execute(
-                "SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
-            mine = int(self._conn.execute(
+            capacity = int(self._conn.execute(
                 "SELECT count(*) FROM forecasts WHERE model = ?", (model,)).fetchone()[0])
-            scan = mine * SCAN_SHARE >= total
+            scan = capacity * SCAN_SHARE >= total
         if not scan:
             return _read_scored_columns(
-                self._conn.execute(_every_scored_sql(select), params), chunk)
+                self._conn.execute(_every_scored_sql(select), params), chunk, capacity)
         return _in_scored_order(_read_scored_columns(
-            self._conn.execute(_scan_scored_sql(select), params), chunk))
+            self._conn.execute(_scan_scored_sql(select), params), chunk, capacity))
 
     def _latest_scored_columns(
         self, model: str, last: int, select: str, with_df: bool, chunk: int | None = None
@@ -681,20 +681,39 @@ def _in_scored_order(columns: list[NDArray[Any]]) -> list[NDArray[Any]]:
 
 
 def _read_scored_columns(
-    cursor: sqlite3.Cursor, chunk: int | None = None
+    cursor: sqlite3.Cursor, chunk: int | None = None, capacity: int = 0
 ) -> list[NDArray[Any]]:
     """The rows of a scored-forecasts query (an executed cursor) as one array per column, read
     ``chunk`` rows at a time (default ``SCORED_CHUNK``), each chunk made columns before the next
     is fetched. The arrays equal ``_scored_columns`` of all rows at once, value for value; a text
     that repeats (model, series key, target period, issue time, outcome) is one object
-    throughout, so the columns of a long history hold a few thousand strings, not millions."""
+    throughout, so the columns of a long history hold a few thousand strings, not millions.
+
+    ``capacity``: the rows expected (at most), when the caller knows: the chunks are copied into
+    arrays of that length, cut to the rows read at the end, instead of being joined once all are
+    read (which holds every chunk and the joined columns at once). Rows beyond it are joined."""
     size = SCORED_CHUNK if chunk is None else chunk
     if size < 1:
         raise ValueError("chunk must be at least 1")
     texts: dict[str, str] = {}
+    block = [np.empty(capacity, dtype=kind) for kind in _SCORED_TYPES] if capacity > 0 else []
+    filled = 0
     parts: list[list[NDArray[Any]]] = []
     while rows := cursor.fetchmany(size):
-        parts.append(_scored_columns(rows, texts))
+        part = _scored_columns(rows, texts)
+        count = len(rows)
+        del rows
+        if not parts and filled + count <= capacity:  # rows past the block never go back in
+            for column, values in zip(block, part, strict=True):
+                column[filled:filled + count] = values
+            filled += count
+        else:
+            parts.append(part)
+    if filled:
+        for i, column in enumerate(block):  # cut to the rows read, one column's copy at a time
+            block[i] = column if filled == capacity else column[:filled].copy()
+        parts.insert(0, block)
+    del block
     if len(parts) < 2:
         return parts[0] if parts else _scored_columns(())
     columns: list[NDArray[Any]] = []
