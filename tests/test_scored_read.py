@@ -26,9 +26,10 @@ from monitor.store.results import (
     _read_scored_columns,
     _scan_scored_sql,
     _scored_columns,
+    _scored_rows_to_keep,
     _scored_select,
 )
-from monitor.vocabulary import Outcome, classify_outcome
+from monitor.vocabulary import Outcome, OutcomeKind, classify_outcome
 
 T0 = datetime(2024, 3, 4, 8, 0, tzinfo=UTC)
 MODELS = ("pick", "pack")
@@ -174,6 +175,45 @@ def test_repeated_texts_are_one_object_each(store: Store) -> None:
     for i in (1, 2, 3, 6, 12):  # model, series key, target period, issue time, outcome
         values = columns[i].tolist()
         assert len({id(v) for v in values}) == len(set(values)) < len(values)
+
+
+def _read_at_once(store: Store, model: str | None, latest_only: bool,
+                  with_df: bool) -> ScoredForecasts:
+    """``scored_forecasts(model)`` as it was read before chunks: one ordered query through the
+    index, every row fetched at once, then converted."""
+    columns = _scored_columns(store._conn.execute(
+        _every_scored_sql(_scored_select(with_df)), (model, 1, "")).fetchall())
+    keep = _scored_rows_to_keep(columns[1], columns[2], columns[4], latest_only, None)
+    columns = [column[keep] for column in columns]
+    kinds = {kind.value: kind for kind in OutcomeKind}
+    return ScoredForecasts(
+        forecast_id=columns[0], model=tuple(columns[1].tolist()),
+        series=tuple(None if key == "" else key for key in columns[2].tolist()),
+        target_period=tuple(columns[3].tolist()), target_period_key=columns[4],
+        lead=columns[5], issued_at=tuple(columns[6].tolist()), actual=columns[7],
+        point=columns[8], lower=columns[9], upper=columns[10], level=columns[11],
+        outcome=tuple(kinds[kind] for kind in columns[12].tolist()),
+        calibrated_lower=columns[13], calibrated_upper=columns[14],
+        residual_df=columns[15] if with_df else None,
+    )
+
+
+@pytest.mark.parametrize("latest_only", [True, False])
+@pytest.mark.parametrize("with_df", [False, True])
+@pytest.mark.parametrize("share", [0, 10])
+def test_a_model_s_whole_history_equals_it_read_at_once(
+    store: Store, latest_only: bool, with_df: bool, share: int,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # share 0: through the index; 10: each model is half the forecasts, so the outcomes are
+    # scanned and the columns sorted.
+    monkeypatch.setattr(results, "SCAN_SHARE", share)
+    for model in (*MODELS, None):
+        want = _read_at_once(store, model, latest_only, with_df)
+        assert len(want) > 0
+        for chunk in (1, 3, None):
+            _same_scored(store.scored_forecasts(model, latest_only=latest_only, with_df=with_df,
+                                                chunk=chunk), want)
 
 
 @pytest.mark.parametrize("latest_only", [True, False])

@@ -433,7 +433,7 @@ class ResultsMixin(StoreBase):
         select = _scored_select(with_df)
         params: tuple[Any, ...] = (model, int(all_series), _skey(series))
         if last is None:
-            columns = self._every_scored_columns(params, select, chunk)
+            columns = self._every_scored_columns(params, with_df, chunk)
         elif model is not None and all_series:
             columns = self._latest_scored_columns(model, last, select, with_df, chunk)
         else:
@@ -465,7 +465,7 @@ class ResultsMixin(StoreBase):
         )
 
     def _every_scored_columns(
-        self, params: tuple[Any, ...], select: str, chunk: int | None
+        self, params: tuple[Any, ...], with_df: bool, chunk: int | None
     ) -> list[NDArray[Any]]:
         """The columns of ``scored_forecasts`` without ``last``, before the choice of issues.
 
@@ -492,11 +492,14 @@ class ResultsMixin(StoreBase):
             capacity = int(self._conn.execute(
                 "SELECT count(*) FROM forecasts WHERE model = ?", (model,)).fetchone()[0])
             scan = capacity * SCAN_SHARE >= total
-        if not scan:
-            return _read_scored_columns(
-                self._conn.execute(_every_scored_sql(select), params), chunk, capacity)
-        return _in_scored_order(_read_scored_columns(
-            self._conn.execute(_scan_scored_sql(select), params), chunk, capacity))
+        # Of one model, every row's model is that name (``f.model = ?1`` compares the stored
+        # text byte for byte): it is not fetched row by row (a string each) but filled in.
+        select = _scored_select(with_df, "f.model" if model is None else "NULL")
+        sql = _every_scored_sql(select) if not scan else _scan_scored_sql(select)
+        columns = _read_scored_columns(self._conn.execute(sql, params), chunk, capacity)
+        if model is not None:
+            columns[1] = np.full(len(columns[0]), model, dtype="O")
+        return _in_scored_order(columns) if scan else columns
 
     def _latest_scored_columns(
         self, model: str, last: int, select: str, with_df: bool, chunk: int | None = None
@@ -594,10 +597,11 @@ class ResultsMixin(StoreBase):
 _NO_BOUND = 9223372036854775807  # no outcomes id is above it
 
 
-def _scored_select(with_df: bool) -> str:
-    """The columns of a scored-forecasts read, in ``_SCORED_TYPES``'s order."""
+def _scored_select(with_df: bool, model: str = "f.model") -> str:
+    """The columns of a scored-forecasts read, in ``_SCORED_TYPES``'s order (``model``: what is
+    read as the model's name)."""
     return (
-        "SELECT f.id, f.model, f.series_key, f.target_period, f.target_period_key, f.lead, "
+        f"SELECT f.id, {model}, f.series_key, f.target_period, f.target_period_key, f.lead, "
         "f.issued_at, o.actual, f.point, f.lower, f.upper, f.level, o.outcome, "
         "f.calibrated_lower, f.calibrated_upper"
         + (", (SELECT json_extract(fi.inference, '$.residual_df') FROM fits AS fi "
