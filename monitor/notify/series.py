@@ -141,12 +141,15 @@ def load_model(
     # The forecasts of the passes read, each with whether it is scored: what ``open_forecasts``
     # needs (it asks only of these forecasts whether they are scored, so their own outcomes
     # answer it as the model's whole scored history did, without reading that history twice).
-    # In the order ``list_forecasts`` gives pass by pass: by pass, then as issued.
-    issued = sorted(
-        store.issued_forecasts(model=name,
-                               pass_ids=[p.id for p in store.list_passes(limit=lookback)]),
-        key=lambda f: (f.forecast.pass_id, f.forecast.id))
-    forecasts = [f.forecast for f in issued]
+    # Pass by pass (one pass's rows in hand at a time), each in the order issued, as
+    # ``list_forecasts`` gives them.
+    forecasts: list[ForecastRecord] = []
+    scored_ids: set[int] = set()
+    for record in reversed(store.list_passes(limit=lookback)):
+        issued = sorted(store.issued_forecasts(model=name, pass_ids=[record.id]),
+                        key=lambda f: f.forecast.id)
+        forecasts += [f.forecast for f in issued]
+        scored_ids.update(f.forecast.id for f in issued if f.outcome is not None)
     history = ModelHistory(
         name=name,
         model=model,
@@ -160,7 +163,7 @@ def load_model(
     for i, series in enumerate(scored.series):
         grouped[series].append(i)
     history._rows = {s: np.asarray(rows, dtype=np.int64) for s, rows in grouped.items()}
-    history._scored_ids = {f.forecast.id for f in issued if f.outcome is not None}
+    history._scored_ids = scored_ids
     return history
 
 
