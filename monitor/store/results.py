@@ -471,10 +471,10 @@ class ResultsMixin(StoreBase):
 
         In the order of the (model, series, target) index, SQLite fetches each forecast's row
         from wherever the pass that issued it put it: a page read per row, since a pass writes
-        every series' forecast side by side (1.9 M rows: 24 s of a 34 s read on the shared
-        machine, ``tests/benchmarks/bench_history.py``). Reading the outcomes in the order they
-        were written, each with its forecast, takes the pages in order instead (10 s); the rows
-        are then put in the index's order by sorting on (model, series key, target key,
+        every series' forecast side by side (1.9 M rows fetched in 33 s on the shared machine,
+        ``tests/benchmarks/bench_history.py``'s database). Reading the outcomes in the order
+        they were written, each with its forecast, takes the pages in order instead (11 s); the
+        rows are then put in the index's order by sorting on (model, series key, target key,
         forecast id), which orders them totally (the id is unique) and as SQLite's ORDER BY does
         (its binary order of UTF-8 text is Python's order of the text), so the columns are the
         same. That scan passes over every model's outcomes, so it is taken only when the
