@@ -427,9 +427,11 @@ class ResultsMixin(StoreBase):
         """
         if last is not None and last < 1:
             raise ValueError("last must be at least 1")
-        # One ordered read through the (model, series, target) index; the choice of rows is
-        # made below on arrays (window functions in SQL were five times slower). With ``last``,
-        # each series' earliest wanted target comes first from a short walk back its index.
+        # One ordered read (through the (model, series, target) index, or for most of the
+        # history a scan put in that order: ``_every_scored_columns``) in chunks; the choice of
+        # rows is made below on arrays (window functions in SQL were five times slower). With
+        # ``last``, each series' earliest wanted target comes first from a short walk back its
+        # index.
         select = _scored_select(with_df)
         params: tuple[Any, ...] = (model, int(all_series), _skey(series))
         if last is None:
