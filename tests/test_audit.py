@@ -222,6 +222,10 @@ def test_cli_table_opens_with_a_sentence_and_plain_columns(
                    "indep. p", "misses", "width", "score"):
         assert column in header
     assert "(whole model)" in out and "North" in out
+    # The legend says the coverage finding's p-value comes from another test than Kupiec's.
+    legend = " ".join(out.split())
+    assert "the coverage finding is decided by another test, a cumulative sum of the errors' " \
+           "size over the monitoring horizon, and quotes that test's p-value" in legend
     with history.open() as store:
         records = audit_models(store, history.config, last=13)
     for record in records:

@@ -176,7 +176,10 @@ def render_table(
     parts.append(_wrap(
         "Columns: interval is the hit rate's exact Clopper–Pearson interval at "
         f"{level_text(HIT_RATE_CONFIDENCE)}; above and below count the actuals beyond the upper "
-        "or lower bound; Kupiec p tests whether the miss rate matches the nominal one, indep. p "
+        "or lower bound; Kupiec p tests whether the miss rate matches the nominal one (over the "
+        "forecasts shown only: the coverage finding is decided by another test, a cumulative sum "
+        "of the errors' size over the monitoring horizon, and quotes that test's p-value, so the "
+        "two can differ), indep. p "
         "whether misses come in runs (Christoffersen; the JSON also has the joint test); misses "
         "says whether the count of misses is about as expected for the nominal level, more than "
         "expected or far more than expected, by its cumulative binomial probability (below "

@@ -66,6 +66,7 @@ from monitor.notify.views import (
 )
 from monitor.notify.words import (
     CAUTION,
+    KUPIEC_VERSUS_FINDING,
     hit_rate_sentence,
     join_words,
     level_text,
@@ -140,6 +141,7 @@ def environment() -> jinja2.Environment:
     )
     env.globals["model_page"] = model_page_name
     env.globals["version"] = __version__
+    env.globals["kupiec_versus_finding"] = KUPIEC_VERSUS_FINDING
     return env
 
 

@@ -41,6 +41,14 @@ CAUTION = (
 )
 
 
+# Why a coverage table's Kupiec p and a coverage finding's p-value can differ for one series.
+KUPIEC_VERSUS_FINDING = (
+    "Kupiec p tests only the count of misses over the periods shown; the coverage finding is "
+    "decided by another test, a cumulative sum of the errors' size over the monitoring horizon, "
+    "and quotes that test's p-value, so the two can differ."
+)
+
+
 def p_text(p_value: float | None) -> str:
     """"p 0.0123" or "p < 0.0001" (DESIGN.md section 2)."""
     return f"p {format_p_value(p_value)}"

@@ -28,7 +28,7 @@ from report_history import (
 
 from monitor.notify import html, render_pass_report, write_index, write_model_pages
 from monitor.notify.html import attention_sentence, environment, render, template_cache
-from monitor.notify.words import MISS_WORDS
+from monitor.notify.words import KUPIEC_VERSUS_FINDING, MISS_WORDS
 from monitor.store import Store
 from monitor.vocabulary import Finding, FindingKind, Severity
 
@@ -296,6 +296,10 @@ def test_model_page_content(history: History) -> None:
     assert "Coefficients with 95 % confidence intervals (lower, upper); t and p-values on 50 " \
            "degrees of freedom." in page.text
     assert "Durbin–Watson" in page.text and "Breusch–Pagan" in page.text
+    # The coverage table's Kupiec p and the coverage finding's p-value (the lede's) are
+    # different tests; the table's caption says so, so a reader does not take them for one.
+    assert "Kupiec p" in headers
+    assert " ".join(KUPIEC_VERSUS_FINDING.split()) in " ".join(page.text.split())
     # The miss count in words; its colour (a rule under the words) never stands alone, and no
     # colour word or coloured square stands in for it.
     labels = page.find("span", "misses")
