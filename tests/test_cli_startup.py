@@ -16,6 +16,7 @@ import argparse
 import importlib
 import json
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -111,6 +112,42 @@ def test_a_heavy_command_still_imports_what_it_needs(workspace: Path) -> None:
     modules, done = _imported(["audit"], workspace)
     assert done.returncode == 0, done.stderr[-2000:]
     assert "numpy" in modules
+
+
+# What a pass does not need: scipy.stats and the rest of scipy beyond scipy.special (about a
+# second of imports; the exact Durbin–Watson distribution and the reference values import them
+# when called), pandas (pyarrow imports it on any conversion of a Python value or to numpy;
+# about 0.3 s) and matplotlib (only for an e-mail's PNG charts).
+PASS_NEEDS_NOT = ("scipy.stats", "scipy.integrate", "scipy.optimize", "scipy.linalg", "pandas",
+                  "matplotlib")
+
+
+def test_a_weekly_pass_imports_no_more_than_it_uses(workspace: Path, tmp_path: Path) -> None:
+    """A pass that ingests, scores, refits, forecasts and writes pages, in a subprocess with
+    ``-X importtime`` (its time is measured by ``tests/benchmarks/bench_pass.py``)."""
+    root = tmp_path / "copy"
+    shutil.copytree(workspace, root, ignore=shutil.ignore_patterns("*.lock"))
+    config = root / "plumbline.yaml"
+    with config.open("a", encoding="utf-8") as out:
+        out.write("notify:\n  html_dir: reports\n")
+    inbox = root / "feeds" / "warehouse" / "inbox"
+    header = "week_ending,order_lines,pallets,pick_hours\n"
+    (inbox / "w1.csv").write_text(header + "2025-08-03,3900,118,515.2\n2025-08-10,6165,177,\n",
+                                  encoding="utf-8")
+    (inbox / "w1.csv.ready").touch()
+    assert main(["pass", "-c", str(config), "--as-of", "2025-08-04T07:00"]) == 0
+    (inbox / "w2.csv").write_text(header + "2025-08-10,6165,177,741.9\n2025-08-17,6037,150,\n",
+                                  encoding="utf-8")
+    (inbox / "w2.csv.ready").touch()
+    modules, done = _imported(["pass", "-c", str(config), "--as-of", "2025-08-11T07:00"], root)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert "1 actual(s) scored" in done.stdout and "1 forecast(s) issued" in done.stdout, \
+        done.stdout
+    assert (root / "reports" / "model-pick_hours.html").is_file()
+    assert {"numpy", "scipy.special._ufuncs", "pyarrow", "monitor.passes"} <= modules  # it bites
+    needless = sorted(m for m in modules if any(
+        m == name or m.startswith(name + ".") for name in PASS_NEEDS_NOT))
+    assert needless == [], f"plumbline pass imported {needless[:8]}"
 
 
 def test_status_shows_next_runs_only_while_a_daemon_holds_the_database(

@@ -196,3 +196,24 @@ def test_a_parquet_file_larger_than_a_batch_is_ingested_as_if_whole(tmp_path: Pa
     assert small[1:] == whole[1:]
     in_blocks = parse_parquet(data, PLAN, block_bytes=2048)
     assert in_blocks.rejected == parse_parquet(data, PLAN).rejected
+
+
+def test_arrays_are_read_from_their_buffers_as_numpy_would() -> None:
+    # parse._numpy_of reads pyarrow arrays without Array.to_numpy (which imports pandas); the
+    # reference is to_numpy itself, on slices that start inside a byte of a boolean bitmap.
+    import numpy as np
+
+    from monitor.ingest.parse import _numpy_of
+
+    flags = pa.array([True, False, True, True, False, False, True, False, True, True, False])
+    numbers = pa.array([1.5, -2.0, 3.25, 1e300, -0.0, 7.0, 8.5])
+    counts = pa.array([3, 1, 4, 1, 5, 9, 2, 6], pa.int32())
+    for array in (flags, numbers, counts):
+        for start in range(4):
+            part = array.slice(start, len(array) - start - 1)
+            ours = _numpy_of(part)
+            reference = part.to_numpy(zero_copy_only=False)
+            assert ours.tolist() == reference.tolist(), (array.type, start)
+    assert _numpy_of(counts).dtype == np.int64 and _numpy_of(numbers).dtype == np.float64
+    with pytest.raises(TypeError):
+        _numpy_of(pa.array(["a"]))

@@ -681,16 +681,26 @@ class _FastCsv:
         reader costs about 0.8 ms a call whatever the size, which a weekly file of a few dozen
         rows pays in full. None, like ``_read``, where a needed field is not UTF-8."""
         pa, _ = _arrow_csv()
-        columns: list[list[str]] = [[] for _ in self.needed]
-        try:
-            for i in rows.tolist():
-                cells = buf[starts[i] : ends[i]].split(b",")
-                for out, at in zip(columns, self.needed, strict=True):
-                    out.append(cells[at].decode("utf-8"))
-        except UnicodeDecodeError:
-            return None
-        return pa.Table.from_arrays([pa.array(values, pa.string()) for values in columns],
-                                    names=[self.names[at] for at in self.needed])
+        columns: list[list[bytes]] = [[] for _ in self.needed]
+        for i in rows.tolist():
+            cells = buf[starts[i] : ends[i]].split(b",")
+            for out, at in zip(columns, self.needed, strict=True):
+                out.append(cells[at])
+        arrays = []
+        for values in columns:
+            data = b"".join(values)
+            try:
+                # Valid as a whole exactly when every cell is: a comma is never inside a
+                # character's bytes.
+                data.decode("utf-8")
+            except UnicodeDecodeError:
+                return None
+            offsets = np.zeros(len(values) + 1, np.int32)
+            np.cumsum([len(v) for v in values], out=offsets[1:])
+            # From the bytes as they are (``pa.array`` of Python strings would import pandas).
+            arrays.append(pa.StringArray.from_buffers(
+                len(values), pa.py_buffer(offsets.tobytes()), pa.py_buffer(data)))
+        return pa.Table.from_arrays(arrays, names=[self.names[at] for at in self.needed])
 
     def _read(self, text: bytes) -> Any:
         pa, pacsv = _arrow_csv()
@@ -731,7 +741,7 @@ class _FastCsv:
             return table.column(self.names[at]).combine_chunks()
 
         encoded = column(checker.period_at).dictionary_encode()
-        period_index = np.asarray(encoded.indices, dtype=np.int64)
+        period_index = _numpy_of(encoded.indices)
         texts: list[str] = []
         keys: list[int] = []
         for raw in encoded.dictionary.to_pylist():
@@ -752,7 +762,7 @@ class _FastCsv:
             series_index = np.zeros(count, np.int64)
         else:
             encoded = column(checker.per_at).dictionary_encode()
-            series_index = np.asarray(encoded.indices, dtype=np.int64)
+            series_index = _numpy_of(encoded.indices)
             names: list[str | None] = []
             for raw in encoded.dictionary.to_pylist():
                 name = self.series_cache.get(raw, "")
@@ -767,13 +777,13 @@ class _FastCsv:
         values = np.empty((count, len(checker.columns)))
         for j, at in enumerate(checker.value_at):
             cells = column(at)
-            empty = pc.equal(cells, "").to_numpy(zero_copy_only=False)
-            number = pc.match_substring_regex(cells, _NUMBER).to_numpy(zero_copy_only=False)
+            empty = _numpy_of(pc.binary_length(cells)) == 0
+            matched = pc.match_substring_regex(cells, _NUMBER)
+            number = _numpy_of(matched)
             plain = cells
             if not number.all():
-                plain = pc.if_else(number, cells, pa.scalar(None, pa.string()))
-            converted = pc.cast(plain, pa.float64()).to_numpy(zero_copy_only=False)
-            converted = np.where(number, converted, math.nan)
+                plain = pc.if_else(matched, cells, pa.nulls(len(cells), pa.string()))
+            converted = np.where(number, _numpy_of(pc.cast(plain, pa.float64())), math.nan)
             doubt |= ~number & ~empty
             doubt |= number & ~(np.abs(converted) <= LARGEST_VALUE)  # NaN, infinite, too large
             values[:, j] = converted
@@ -803,6 +813,25 @@ class _FastCsv:
             values=values[keep],
             line=lines[keep],
         )
+
+
+def _numpy_of(array: Any) -> NDArray[Any]:
+    """A pyarrow array's values as numpy, read from its buffers: booleans as bool, float64 as
+    float64 (a null's slot holds whatever is there: callers mask nulls themselves), integers as
+    int64. ``Array.to_numpy``, ``np.asarray`` and any conversion of a Python value import pandas
+    (about 0.3 s, once per process), which a pass of a few files does not otherwise need."""
+    length, offset = len(array), array.offset
+    data = array.buffers()[1]
+    kind = str(array.type)
+    if kind == "bool":
+        bits = np.unpackbits(np.frombuffer(data, np.uint8), bitorder="little")
+        return bits[offset : offset + length].astype(bool)
+    dtypes = {"double": np.float64, "int32": np.int32, "int64": np.int64, "int8": np.int8,
+              "int16": np.int16}
+    if kind not in dtypes:
+        raise TypeError(f"no buffer reading for a pyarrow array of {kind}")
+    values = np.frombuffer(data, dtypes[kind])[offset : offset + length]
+    return values.astype(np.float64 if kind == "double" else np.int64)
 
 
 def _arrow_csv() -> tuple[Any, Any]:

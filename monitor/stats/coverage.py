@@ -61,7 +61,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import special, stats
+from scipy import special
 
 from monitor.stats._dist import chi2_sf
 
@@ -281,8 +281,11 @@ def clopper_pearson_interval(
     upper[has_trials & (x == n)] = 1.0
     inner_low = has_trials & (x > 0)
     inner_high = has_trials & (x < n)
-    lower[inner_low] = stats.beta.ppf(tail, x[inner_low], n[inner_low] - x[inner_low] + 1)
-    upper[inner_high] = stats.beta.ppf(1 - tail, x[inner_high] + 1, n[inner_high] - x[inner_high])
+    # The beta quantile is scipy.special.betaincinv, the function scipy.stats.beta.ppf calls
+    # (equal to it bit for bit, tests/stats/test_coverage.py), without importing scipy.stats.
+    lower[inner_low] = special.betaincinv(x[inner_low], n[inner_low] - x[inner_low] + 1, tail)
+    upper[inner_high] = special.betaincinv(x[inner_high] + 1, n[inner_high] - x[inner_high],
+                                           1 - tail)
     return lower, upper
 
 
@@ -356,7 +359,14 @@ def miss_probability(misses: ArrayLike, scored: ArrayLike, level: float) -> Floa
     _check_probability("level", level)
     n_miss, total = np.broadcast_arrays(np.asarray(misses, dtype=np.float64),
                                         np.asarray(scored, dtype=np.float64))
-    cumulative = stats.binom.cdf(n_miss, total, 1.0 - level)
+    # P(X <= k) = 1 − I_p(k + 1, n − k) for k < n (the binomial tail as a regularized incomplete
+    # beta function, Abramowitz & Stegun 26.5.24; from memory), 1 for k >= n: scipy.special's
+    # betaincc, so a pass need not import scipy.stats. It agrees with scipy.stats.binom.cdf to
+    # about 1e-14 (tests/stats/test_coverage.py), far inside the zones' 95 % and 99.99 % lines.
+    inner = (total > 0) & (n_miss < total)
+    cumulative = np.where(n_miss >= total, 1.0, np.nan)
+    cumulative[inner] = special.betaincc(n_miss[inner] + 1.0, total[inner] - n_miss[inner],
+                                         1.0 - level)
     return np.where(total > 0, cumulative, np.nan)
 
 

@@ -51,7 +51,6 @@ from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import integrate, linalg
 
 from monitor.stats._dist import chi2_sf, f_sf
 
@@ -283,6 +282,10 @@ def durbin_watson_cdf(d: float, eigenvalues: ArrayLike) -> float:
     1/2 − (1/π) ∫₀^∞ sin θ(u) / (u ρ(u)) du with θ(u) = ½ Σ arctan(c_i u), ρ(u) = Π (1 + c_i²u²)^¼,
     c_i = λ_i − d. ``eigenvalues`` (m,), m ≥ 1.
     """
+    # scipy.integrate here, not at the top: a pass never needs the exact Durbin–Watson
+    # distribution, and the import costs about a second (``tests/test_cli_startup.py``).
+    from scipy import integrate
+
     weights = np.asarray(eigenvalues, dtype=np.float64).ravel() - float(d)
     if weights.size == 0:
         raise ValueError("durbin_watson_cdf needs at least one eigenvalue")
@@ -326,6 +329,8 @@ def _durbin_watson_eigenvalues(basis: FloatArray) -> FloatArray:
     (The earlier route, the singular values of the row differences of a full n × n orthonormal
     basis, needed a dense SVD several times slower at a few thousand rows.)
     """
+    from scipy import linalg  # only here, for the same reason as scipy.integrate above
+
     n, r = basis.shape
 
     def apply_a(v: FloatArray) -> FloatArray:  # A v = Dᵀ(D v) for v (n, c)

@@ -72,7 +72,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import special, stats
+from scipy import special
 
 IntArray = NDArray[np.int64]
 FloatArray = NDArray[np.float64]
@@ -152,7 +152,8 @@ def crossing_probability(peak: float, horizon: int) -> float:
 def _step_cdf(w: FloatArray) -> FloatArray:
     """P(step <= w) for a standard normal score."""
     x = (w + _FALL) / _RISE
-    below_cap = stats.chi2.cdf(np.clip(x, 0.0, CAP), 1)
+    # χ²₁'s CDF, the function scipy.stats.chi2.cdf calls (without importing scipy.stats).
+    below_cap = special.chdtr(1.0, np.clip(x, 0.0, CAP))
     return np.where(x < 0, 0.0, np.where(x >= CAP, 1.0, below_cap))
 
 

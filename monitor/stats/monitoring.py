@@ -81,7 +81,6 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import stats
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -138,6 +137,8 @@ def history_form_crossing_probability(a_squared: float) -> float:
     Brownian motion (Chu, Stinchcombe & White 1996, via Robbins & Siegmund 1970; derived in
     CHECK_VALUES item 5, CONF-exact). A reference value; Plumbline's statistic does not use it.
     """
+    from scipy import stats  # a reference value only: a pass never imports scipy.stats
+
     a = math.sqrt(a_squared)
     return float(2.0 * (stats.norm.sf(a) + a * stats.norm.pdf(a)))
 
