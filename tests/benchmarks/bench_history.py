@@ -27,10 +27,10 @@ resident memory just before the call (imports, store opened) is printed beside i
 - ``load_model``: the pages' ``monitor.notify.series.load_model`` (which also reads the forecast
   records of the latest 26 passes, the latest fits and the open findings).
 
-``--before TREE``: also run every reader with the package imported from TREE (a checkout of an
-earlier commit, e.g. ``git worktree add /tmp/before main``) on the same database, and print the two
-side by side with the ratio. Time is wall-clock, best of ``--repeat`` subprocesses; memory the
-largest peak among them.
+``--before TREE``: also run every reader with the package imported from TREE (the package of an
+earlier commit, e.g. ``mkdir /tmp/before && git archive COMMIT monitor | tar -x -C /tmp/before``)
+on the same database, and print the two side by side with the ratios. Time is wall-clock, best
+of ``--repeat`` subprocesses; memory the largest peak among them.
 """
 
 from __future__ import annotations
