@@ -22,6 +22,7 @@ Choices beyond the paper, each documented in the README and DEVELOPERS.md:
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -68,8 +69,13 @@ def calibrations(
     """
     names = list(series)
     position = {name: i for i, name in enumerate(names)}
-    rows = [i for i, name in enumerate(scored.series) if name in position]
-    which = np.array([position[scored.series[i]] for i in rows], dtype=np.int64)
+    # Each row's series as its place in ``names`` (−1: not wanted), as arrays: the rows of a
+    # long history are not each made a Python int.
+    code = np.fromiter(map(position.get, scored.series, itertools.repeat(-1)), np.int64,
+                       len(scored.series))
+    rows = np.flatnonzero(code >= 0)
+    which = code[rows]
+    del code
     actual = scored.actual[rows]
     point = scored.point[rows]
     half = (scored.upper[rows] - scored.lower[rows]) / 2.0
@@ -78,7 +84,7 @@ def calibrations(
     count = np.bincount(which, minlength=len(names))
     width = int(count.max(initial=0))
     scores = np.full((len(names), width), np.nan)
-    if rows:
+    if rows.size:
         starts = np.concatenate(([0], np.cumsum(count)[:-1]))
         # Rows of one series are contiguous and in target order (the store's ORDER BY).
         order = np.argsort(which, kind="stable")

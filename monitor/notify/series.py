@@ -3,10 +3,11 @@ findings, and the chart data of its series.
 
 ``load_model`` reads a model's history in a few queries (not one per series), so a page or a
 digest for a model with a thousand series costs a handful of reads plus the charts it draws for
-the flagged series only. Scored forecasts are read in full (as arrays); the forecast records
-themselves (for the forecasts still open and the refits behind a coefficient chart) only from the
-latest ``FORECAST_LOOKBACK`` passes, so that the cost of a page stays bounded as years of weekly
-forecasts pile up.
+the flagged series only. Scored forecasts are read in full once (as arrays, the latest issue of
+each target period; the store reads them in chunks, ``Store.scored_forecasts``); the forecast
+records themselves (for the forecasts still open and the refits behind a coefficient chart) only
+from the latest ``FORECAST_LOOKBACK`` passes, so that the cost of a page stays bounded as years of
+weekly forecasts pile up.
 """
 
 from __future__ import annotations
@@ -137,10 +138,18 @@ def load_model(
     fits and open findings."""
     model = config.models[name]
     scored = store.scored_forecasts(name)
-    every_scored = store.scored_forecasts(name, latest_only=False)
-    forecasts = []
+    # The forecasts of the passes read, each with whether it is scored: what ``open_forecasts``
+    # needs (it asks only of these forecasts whether they are scored, so their own outcomes
+    # answer it as the model's whole scored history did, without reading that history twice).
+    # Pass by pass (one pass's rows in hand at a time), each in the order issued, as
+    # ``list_forecasts`` gives them.
+    forecasts: list[ForecastRecord] = []
+    scored_ids: set[int] = set()
     for record in reversed(store.list_passes(limit=lookback)):
-        forecasts += store.list_forecasts(model=name, pass_id=record.id)
+        issued = sorted(store.issued_forecasts(model=name, pass_ids=[record.id]),
+                        key=lambda f: f.forecast.id)
+        forecasts += [f.forecast for f in issued]
+        scored_ids.update(f.forecast.id for f in issued if f.outcome is not None)
     history = ModelHistory(
         name=name,
         model=model,
@@ -154,7 +163,7 @@ def load_model(
     for i, series in enumerate(scored.series):
         grouped[series].append(i)
     history._rows = {s: np.asarray(rows, dtype=np.int64) for s, rows in grouped.items()}
-    history._scored_ids = {int(i) for i in every_scored.forecast_id}
+    history._scored_ids = scored_ids
     return history
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import sqlite3
 import struct
 from collections.abc import Iterable, Mapping, Sequence
 from datetime import datetime
@@ -413,6 +414,7 @@ class ResultsMixin(StoreBase):
         latest_only: bool = True,
         last: int | None = None,
         with_df: bool = False,
+        chunk: int | None = None,
     ) -> ScoredForecasts:
         """Scored forecasts for the coverage audit, as columns.
 
@@ -420,35 +422,30 @@ class ResultsMixin(StoreBase):
         default audit); False keeps every issue (``--by-lead``). ``last``: only each series'
         latest ``last`` scored target periods. ``all_series=False`` restricts to ``series``.
         ``with_df``: also each forecast's fit's residual degrees of freedom (``residual_df``).
+        ``chunk``: rows fetched and made columns at a time (default ``SCORED_CHUNK``); the result
+        is the same whatever it is, only the memory a read holds at once changes.
         """
         if last is not None and last < 1:
             raise ValueError("last must be at least 1")
-        # One ordered read through the (model, series, target) index; the choice of rows is
-        # made below on arrays (window functions in SQL were five times slower). With ``last``,
-        # each series' earliest wanted target comes first from a short walk back its index.
-        select = (
-            "SELECT f.id, f.model, f.series_key, f.target_period, f.target_period_key, f.lead, "
-            "f.issued_at, o.actual, f.point, f.lower, f.upper, f.level, o.outcome, "
-            "f.calibrated_lower, f.calibrated_upper"
-            + (", (SELECT json_extract(fi.inference, '$.residual_df') FROM fits AS fi "
-               "WHERE fi.id = f.fit_id) " if with_df else ", NULL ")
-        )
-        order = " ORDER BY f.model, f.series_key, f.target_period_key, f.id"
+        # One ordered read (through the (model, series, target) index, or for most of the
+        # history a scan put in that order: ``_every_scored_columns``) in chunks; the choice of
+        # rows is made below on arrays (window functions in SQL were five times slower). With
+        # ``last``, each series' earliest wanted target comes first from a short walk back its
+        # index.
+        select = _scored_select(with_df)
         params: tuple[Any, ...] = (model, int(all_series), _skey(series))
         if last is None:
-            sql = (
-                select + "FROM forecasts AS f JOIN outcomes AS o ON o.forecast_id = f.id "
-                "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3)" + order
-            )
-            columns = _scored_columns(self._conn.execute(sql, params).fetchall())
+            columns = self._every_scored_columns(params, with_df, chunk)
         elif model is not None and all_series:
-            columns = self._latest_scored_columns(model, last, select, with_df)
+            columns = self._latest_scored_columns(model, last, select, with_df, chunk)
         else:
-            columns = _scored_columns(self._conn.execute(_latest_scored_sql(select, model), (
-                *params, last - 1, _NO_BOUND)).fetchall())
+            columns = _read_scored_columns(self._conn.execute(
+                _latest_scored_sql(select, model), (*params, last - 1, _NO_BOUND)), chunk)
         keep = _scored_rows_to_keep(columns[1], columns[2], columns[4], latest_only, last)
         if not keep.all():
-            columns = [column[keep] for column in columns]
+            columns = list(columns)  # the kept columns (``last=``) stay as they are
+            for i, column in enumerate(columns):  # one column's copy at a time
+                columns[i] = column[keep]
         kinds = {kind.value: kind for kind in OutcomeKind}
         return ScoredForecasts(
             forecast_id=columns[0],
@@ -469,8 +466,45 @@ class ResultsMixin(StoreBase):
             residual_df=columns[15] if with_df else None,
         )
 
+    def _every_scored_columns(
+        self, params: tuple[Any, ...], with_df: bool, chunk: int | None
+    ) -> list[NDArray[Any]]:
+        """The columns of ``scored_forecasts`` without ``last``, before the choice of issues.
+
+        In the order of the (model, series, target) index, SQLite fetches each forecast's row
+        from wherever the pass that issued it put it: a page read per row, since a pass writes
+        every series' forecast side by side (1.9 M rows fetched in 33 s on the shared machine,
+        ``tests/benchmarks/bench_history.py``'s database). Reading the outcomes in the order
+        they were written, each with its forecast, takes the pages in order instead (11 s); the
+        rows are then put in the index's order by sorting on (model, series key, target key,
+        forecast id), which orders them totally (the id is unique) and as SQLite's ORDER BY does
+        (its binary order of UTF-8 text is Python's order of the text), so the columns are the
+        same. That scan passes over every model's outcomes, so it is taken only when the
+        model's forecasts are at least ``1 / SCAN_SHARE`` of all (each row passed over costs
+        about a tenth of a row fetched out of order); a model with few rows, or one series,
+        is read through the index."""
+        model, all_series = params[0], params[1]
+        # Forecasts (scored or not) bound the rows read: the arrays are made that long at once.
+        total = int(self._conn.execute("SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
+        if model is not None and not all_series:
+            scan, capacity = False, 0
+        elif model is None:
+            scan, capacity = True, total
+        else:
+            capacity = int(self._conn.execute(
+                "SELECT count(*) FROM forecasts WHERE model = ?", (model,)).fetchone()[0])
+            scan = capacity * SCAN_SHARE >= total
+        # Of one model, every row's model is that name (``f.model = ?1`` compares the stored
+        # text byte for byte): it is not fetched row by row (a string each) but filled in.
+        select = _scored_select(with_df, "f.model" if model is None else "NULL")
+        sql = _every_scored_sql(select) if not scan else _scan_scored_sql(select)
+        columns = _read_scored_columns(self._conn.execute(sql, params), chunk, capacity)
+        if model is not None:
+            columns[1] = np.full(len(columns[0]), model, dtype="O")
+        return _in_scored_order(columns) if scan else columns
+
     def _latest_scored_columns(
-        self, model: str, last: int, select: str, with_df: bool
+        self, model: str, last: int, select: str, with_df: bool, chunk: int | None = None
     ) -> list[NDArray[Any]]:
         """The columns of ``scored_forecasts(model, last=…)`` before the choice of issues, read
         once per connection and then only what was scored since (the pass reads a model's latest
@@ -490,15 +524,15 @@ class ResultsMixin(StoreBase):
         settled = not self._conn.in_transaction
         held = self._scored_cache.get(key) if settled else None
         if held is None:
-            columns = _scored_columns(self._conn.execute(_latest_scored_sql(select, model), (
-                model, 1, "", last - 1, bound)).fetchall())
+            columns = _read_scored_columns(self._conn.execute(
+                _latest_scored_sql(select, model), (model, 1, "", last - 1, bound)), chunk)
         elif held[0] == bound:
             columns = held[1]
         else:
-            fresh = _scored_columns(self._conn.execute(
+            fresh = _read_scored_columns(self._conn.execute(
                 select + "FROM outcomes AS o JOIN forecasts AS f ON f.id = o.forecast_id "
                 "WHERE o.id > ?2 AND o.id <= ?3 AND f.model = ?1", (model, held[0], bound),
-            ).fetchall())
+            ), chunk)
             columns = [np.concatenate((a, b)) for a, b in zip(held[1], fresh, strict=True)]
             # The query's order: series key (SQLite's binary order of UTF-8 is Python's order
             # of the text), target period, forecast id.
@@ -565,6 +599,37 @@ class ResultsMixin(StoreBase):
 _NO_BOUND = 9223372036854775807  # no outcomes id is above it
 
 
+def _scored_select(with_df: bool, model: str = "f.model") -> str:
+    """The columns of a scored-forecasts read, in ``_SCORED_TYPES``'s order (``model``: what is
+    read as the model's name)."""
+    return (
+        f"SELECT f.id, {model}, f.series_key, f.target_period, f.target_period_key, f.lead, "
+        "f.issued_at, o.actual, f.point, f.lower, f.upper, f.level, o.outcome, "
+        "f.calibrated_lower, f.calibrated_upper"
+        + (", (SELECT json_extract(fi.inference, '$.residual_df') FROM fits AS fi "
+           "WHERE fi.id = f.fit_id) " if with_df else ", NULL ")
+    )
+
+
+def _every_scored_sql(select: str) -> str:
+    """Every scored forecast of model ``?1`` (every model when NULL), of series ``?3`` unless
+    ``?2``, in order of model, series, target period and issue."""
+    return (
+        select + "FROM forecasts AS f JOIN outcomes AS o ON o.forecast_id = f.id "
+        "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3) "
+        "ORDER BY f.model, f.series_key, f.target_period_key, f.id"
+    )
+
+
+def _scan_scored_sql(select: str) -> str:
+    """``_every_scored_sql``'s rows in the order the outcomes were written (no ORDER BY): the
+    outcomes scanned, each forecast fetched by its id."""
+    return (
+        select + "FROM outcomes AS o CROSS JOIN forecasts AS f ON f.id = o.forecast_id "
+        "WHERE (?1 IS NULL OR f.model = ?1) AND (?2 OR f.series_key = ?3)"
+    )
+
+
 def _latest_scored_sql(select: str, model: str | None) -> str:
     """Each series' rows from its ``?4 + 1``-th latest scored target period on (every issue),
     among the outcomes with ids up to ``?5``."""
@@ -590,13 +655,99 @@ def _latest_scored_sql(select: str, model: str | None) -> str:
 _SCORED_TYPES = ("int64", "O", "O", "O", "int64", "int64", "O", "float64", "float64", "float64",
                  "float64", "float64", "O", "float64", "float64", "float64")
 
+#: Rows a scored-forecasts read fetches and converts to columns at a time. SQLite's rows as
+#: Python tuples cost about 800 bytes each (sixteen objects, five of them strings), so a model's
+#: whole history read at once (three years of weekly passes at 10,000 series: 1.5 M rows) held
+#: more than a gigabyte before it became arrays; a chunk holds some 40 MB.
+SCORED_CHUNK = 50_000
 
-def _scored_columns(rows: Sequence[tuple[Any, ...]]) -> list[NDArray[Any]]:
+
+#: A model's scored forecasts are read by a scan of every outcome (``_every_scored_columns``)
+#: when its forecasts are at least this fraction of all forecasts, inverted (measured by
+#: tests/benchmarks/bench_history.py: a row fetched in index order costs about ten times a row
+#: passed over in a scan).
+SCAN_SHARE = 10
+
+
+def _in_scored_order(columns: list[NDArray[Any]]) -> list[NDArray[Any]]:
+    """The columns sorted by model, series key, target period key and forecast id: the order of
+    the scored-forecasts queries' ORDER BY."""
+    if len(columns[0]) < 2:
+        return columns
+    keys = [columns[0], columns[4]]
+    for i in (2, 1):  # series key, then model: each text's rank among the column's texts
+        rank = {text: r for r, text in enumerate(sorted(set(columns[i].tolist())))}
+        keys.append(np.fromiter(map(rank.__getitem__, columns[i].tolist()), np.int64,
+                                len(columns[i])))
+    order = np.lexsort(keys)
+    del keys
+    for i, column in enumerate(columns):  # one column's copy at a time
+        columns[i] = column[order]
+    return columns
+
+
+def _read_scored_columns(
+    cursor: sqlite3.Cursor, chunk: int | None = None, capacity: int = 0
+) -> list[NDArray[Any]]:
+    """The rows of a scored-forecasts query (an executed cursor) as one array per column, read
+    ``chunk`` rows at a time (default ``SCORED_CHUNK``), each chunk made columns before the next
+    is fetched. The arrays equal ``_scored_columns`` of all rows at once, value for value; a text
+    that repeats (model, series key, target period, issue time, outcome) is one object
+    throughout, so the columns of a long history hold a few thousand strings, not millions.
+
+    ``capacity``: the rows expected (at most), when the caller knows: the chunks are copied into
+    arrays of that length, cut to the rows read at the end, instead of being joined once all are
+    read (which holds every chunk and the joined columns at once). Rows beyond it are joined."""
+    size = SCORED_CHUNK if chunk is None else chunk
+    if size < 1:
+        raise ValueError("chunk must be at least 1")
+    texts: dict[str, str] = {}
+    block = [np.empty(capacity, dtype=kind) for kind in _SCORED_TYPES] if capacity > 0 else []
+    filled = 0
+    parts: list[list[NDArray[Any]]] = []
+    while rows := cursor.fetchmany(size):
+        part = _scored_columns(rows, texts)
+        count = len(rows)
+        del rows
+        if not parts and filled + count <= capacity:  # rows past the block never go back in
+            for column, values in zip(block, part, strict=True):
+                column[filled:filled + count] = values
+            filled += count
+        else:
+            parts.append(part)
+    if filled:
+        for i, column in enumerate(block):  # cut to the rows read, one column's copy at a time
+            block[i] = column if filled == capacity else column[:filled].copy()
+        parts.insert(0, block)
+    del block
+    if len(parts) < 2:
+        return parts[0] if parts else _scored_columns(())
+    columns: list[NDArray[Any]] = []
+    for i in range(len(_SCORED_TYPES)):
+        columns.append(np.concatenate([part[i] for part in parts]))
+        for part in parts:  # each chunk's column is let go once joined: one copy at a time
+            part[i] = columns[i][:0]
+    return columns
+
+
+def _scored_columns(
+    rows: Sequence[tuple[Any, ...]], texts: dict[str, str] | None = None
+) -> list[NDArray[Any]]:
     """The rows of a scored-forecasts query as one array per column (text as objects; NULL
-    numbers as NaN)."""
+    numbers as NaN). With ``texts``, each text is replaced by the first equal one seen (kept
+    there across calls)."""
     count = len(rows)
-    return [np.array(list(map(itemgetter(i), rows)), dtype=kind).reshape(count)
-            for i, kind in enumerate(_SCORED_TYPES)]
+    if texts is None:
+        return [np.array(list(map(itemgetter(i), rows)), dtype=kind).reshape(count)
+                for i, kind in enumerate(_SCORED_TYPES)]
+    same = texts.setdefault
+    columns = []
+    for i, kind in enumerate(_SCORED_TYPES):
+        values = list(map(itemgetter(i), rows))
+        if kind == "O":
+            values = list(map(same, values, values))
+        columns.append(np.array(values, dtype=kind).reshape(count))
+    return columns
 
 
 def _scored_rows_to_keep(
