@@ -39,7 +39,7 @@ import numpy as np
 from monitor.config import PlumblineConfig, lookup_model
 from monitor.stats.accuracy import accuracy_batch
 from monitor.stats.coverage import audit_batch, clopper_pearson_interval, traffic_light_zone
-from monitor.store import Store
+from monitor.store import ScoredForecasts, Store
 
 # The keys of each record, in the order of DESIGN.md section 9 (``window``/``lead`` may follow).
 AUDIT_COLUMNS: tuple[str, ...] = (
@@ -102,19 +102,26 @@ def audit_models(
     model: str | None = None,
     last: int | None = None,
     by_lead: bool = False,
+    scored: ScoredForecasts | None = None,
 ) -> list[dict[str, Any]]:
     """The coverage audit records of every model in the config (or of ``model``).
 
     An unknown ``model`` raises ``UsageError`` with the nearest name. ``last`` must be a positive
-    whole number. See the module docstring for what is scored and in which order.
+    whole number. See the module docstring for what is scored and in which order. ``scored``:
+    ``model``'s scored forecasts as ``store.scored_forecasts(model)`` gave them, already read
+    (the pages hold them; a long history costs seconds to read again); not with ``by_lead``.
     """
     if last is not None and (isinstance(last, bool) or last < 1):
         raise ValueError(f"last must be a positive whole number of periods, not {last!r}")
+    if scored is not None and (model is None or by_lead):
+        raise ValueError("scored forecasts read already need one model and no by_lead")
     names = [model] if model is not None else list(config.models)
     records: list[dict[str, Any]] = []
+    given = scored
     for name in names:
         declared = lookup_model(config, name)
-        scored = store.scored_forecasts(name, latest_only=not by_lead)
+        scored = given if given is not None else store.scored_forecasts(
+            name, latest_only=not by_lead)
         if len(scored) == 0:
             continue
         series_names = sorted(set(scored.series), key=_series_order)
@@ -135,9 +142,14 @@ def audit_models(
             # point accuracy over the same forecasts: each series' latest ``last`` (time order)
             keep = np.ones(len(scored), dtype=bool)
             if last is not None:
-                for g in np.unique(group):
-                    rows = np.flatnonzero(group == g)
-                    keep[rows[:-last]] = False
+                # Each row's place within its series (rows of a series in order), counted
+                # over arrays: a search of every row per series grew with series × rows.
+                order = np.argsort(group, kind="stable")
+                counts = np.bincount(group)
+                position = np.empty(len(group), dtype=np.int64)
+                position[order] = np.arange(len(group)) - np.repeat(
+                    np.cumsum(counts) - counts, counts)
+                keep = position >= counts[group] - last
             accuracy = accuracy_batch(group[keep], scored.actual[keep], scored.point[keep])
             at = {int(g): j for j, g in enumerate(accuracy.group)}
         calibrated = None

@@ -147,6 +147,22 @@ def test_unknown_model_and_bad_last(history: History) -> None:
             audit_models(store, history.config, last=0)
 
 
+def test_scored_forecasts_read_once_give_the_same_records(history: History) -> None:
+    # The pages hand audit_models the history they read once; every window's records must be
+    # those of a fresh read.
+    with history.open() as store:
+        for name in history.config.models:
+            scored = store.scored_forecasts(name)
+            for last in (None, 1, 3, 13, 52):
+                assert audit_models(store, history.config, model=name, last=last,
+                                    scored=scored) == audit_models(
+                    store, history.config, model=name, last=last), (name, last)
+        with pytest.raises(ValueError, match="one model"):
+            audit_models(store, history.config, scored=scored)
+        with pytest.raises(ValueError, match="by_lead"):
+            audit_models(store, history.config, model=name, by_lead=True, scored=scored)
+
+
 def test_summary_pools_the_records(history: History) -> None:
     with history.open() as store:
         records = audit_models(store, history.config, model="delivery_hours", last=13)

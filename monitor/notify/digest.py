@@ -306,8 +306,8 @@ def _model_coverage(
     store: Store, config: PlumblineConfig, history: ModelHistory
 ) -> ModelCoverage:
     name = history.name
-    last13 = audit_models(store, config, model=name, last=13)
-    last52 = audit_models(store, config, model=name, last=52)
+    last13 = audit_models(store, config, model=name, last=13, scored=history.scored)
+    last52 = audit_models(store, config, model=name, last=52, scored=history.scored)
     flagged = history.flagged
     listed = flagged[:FINDINGS_CAP]
     by13 = {r["series"]: r for r in last13}

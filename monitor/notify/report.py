@@ -130,7 +130,7 @@ def _model_sections(
                 budget.add(data)
         if name not in history.summaries:
             history.summaries[name] = summarise_coverage(
-                audit_models(store, config, model=name, last=13))
+                audit_models(store, config, model=name, last=13, scored=history.scored))
         summary = history.summaries[name]
         sections.append(ModelSection(
             name, coverage_sentence(summary, "over the latest 13 scored periods"),

@@ -25,7 +25,9 @@ resident memory just before the call (imports, store opened) is printed beside i
 - ``calibrations``: ``calibrations(store.scored_forecasts(model), series, level)`` for every
   series, as the pass's ``_calibrated`` calls it each week for a calibrated model;
 - ``load_model``: the pages' ``monitor.notify.series.load_model`` (which also reads the forecast
-  records of the latest 26 passes, the latest fits and the open findings).
+  records of the latest 26 passes, the latest fits and the open findings);
+- ``audit``: ``monitor.audit.audit_models(model, last=13)``, what ``plumbline audit --last 13``
+  computes per model (the read, then each series' latest 13).
 
 ``--before TREE``: also run every reader with the package imported from TREE (the package of an
 earlier commit, e.g. ``mkdir /tmp/before && git archive COMMIT monitor | tar -x -C /tmp/before``)
@@ -53,7 +55,7 @@ MODEL = "depot_hours"
 LEVEL = 0.95
 T_95 = 2.0  # roughly the t quantile of a window of 52 rows; the data need not be exact
 FIRST_WEEK = date(2023, 1, 1)
-READERS = ("scored", "every", "calibrations", "load_model")
+READERS = ("scored", "every", "calibrations", "load_model", "audit")
 
 CONFIG = """\
 database: {database}
@@ -174,6 +176,8 @@ def measure(what: str, database: Path, config_path: Path, series: int) -> dict[s
             from monitor.calibration import calibrations
         if what == "load_model":
             from monitor.notify.series import load_model
+        if what == "audit":
+            from monitor.audit import audit_models
         before = _rss_kib()
         started = time.perf_counter()
         if what == "scored":
@@ -184,6 +188,8 @@ def measure(what: str, database: Path, config_path: Path, series: int) -> dict[s
             wanted = [f"D{i:05d}" for i in range(series)]
             factors = calibrations(store.scored_forecasts(MODEL), wanted, LEVEL)
             rows = sum(1 for c in factors.values() if c.factor is not None)
+        elif what == "audit":
+            rows = len(audit_models(store, config, model=MODEL, last=13))
         else:
             history = load_model(store, config, MODEL)
             rows = len(history.scored)
