@@ -533,12 +533,9 @@ class ResultsMixin(StoreBase):
                 select + "FROM outcomes AS o JOIN forecasts AS f ON f.id = o.forecast_id "
                 "WHERE o.id > ?2 AND o.id <= ?3 AND f.model = ?1", (model, held[0], bound),
             ), chunk)
-            columns = [np.concatenate((a, b)) for a, b in zip(held[1], fresh, strict=True)]
-            # The query's order: series key (SQLite's binary order of UTF-8 is Python's order
-            # of the text), target period, forecast id.
-            series_code = np.unique(columns[2], return_inverse=True)[1].reshape(-1)
-            order = np.lexsort((columns[0], columns[4], series_code))
-            columns = [column[order] for column in columns]
+            # Back in the query's order (one model: series key, target period, forecast id).
+            columns = _in_scored_order(
+                [np.concatenate((a, b)) for a, b in zip(held[1], fresh, strict=True)])
             within = _scored_rows_to_keep(columns[1], columns[2], columns[4], False, last)
             columns = [column[within] for column in columns]
         if settled:
