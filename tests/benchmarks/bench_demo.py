@@ -23,6 +23,8 @@ import tempfile
 import time
 from pathlib import Path
 
+from _installed import child_environment, compile_tree
+
 HERE = Path(__file__).resolve().parents[2]
 TARGET_SECONDS = 10.0
 
@@ -30,7 +32,7 @@ TARGET_SECONDS = 10.0
 def run_demo(tree: Path) -> tuple[float, float, float]:
     """One demo in a fresh process from ``tree``: (wall, user CPU, system CPU) seconds."""
     with tempfile.TemporaryDirectory(prefix="bench-demo-") as scratch:
-        env = {**os.environ, "PYTHONPATH": str(tree)}
+        env = child_environment(tree)
         errors = Path(scratch) / "stderr.txt"
         with errors.open("wb") as stderr:
             started = time.perf_counter()
@@ -56,6 +58,8 @@ def main() -> None:
     if args.against is not None:
         trees.append(("against", args.against.resolve()))
     results: dict[str, list[tuple[float, float, float]]] = {label: [] for label, _ in trees}
+    for _, tree in trees:
+        compile_tree(tree)
     print(f"plumbline demo, {args.repeat} run(s) each, fresh process and folder per run; "
           f"{os.cpu_count()} CPUs")
     print(f"{'run':>3}  {'tree':<10} {'load':>5}  {'wall':>7}  {'user':>7}  {'system':>7}")

@@ -17,13 +17,14 @@ numpy and scipy.
 from __future__ import annotations
 
 import argparse
-import os
 import statistics
 import subprocess
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+from _installed import child_environment, compile_tree
 
 REPO = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(REPO))
@@ -51,7 +52,8 @@ def main() -> None:
     else:
         demo = args.demo
     config = str(demo / "plumbline.yaml")
-    environment = {**os.environ, "PYTHONPATH": str(REPO)}
+    compile_tree(REPO)
+    environment = child_environment(REPO)
     python = [sys.executable]
     cases = {
         "python -c pass": [*python, "-c", "pass"],
@@ -63,7 +65,7 @@ def main() -> None:
         "plumbline schema": [*python, "-m", "monitor", "schema"],
         "plumbline audit (contrast)": [*python, "-m", "monitor", "audit", "-c", config],
     }
-    for argv in cases.values():  # warm the file cache and the bytecode once
+    for argv in cases.values():  # warm the file cache once
         subprocess.run(argv, env=environment, check=False, stdout=subprocess.DEVNULL,
                        stderr=subprocess.DEVNULL)
     times: dict[str, list[float]] = {name: [] for name in cases}
