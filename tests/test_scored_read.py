@@ -285,10 +285,11 @@ def test_the_pages_know_which_of_their_forecasts_are_scored(store: Store) -> Non
         "    per: site\n")
     history = load_model(store, config, "pick", lookback=4)
     passes = [p.id for p in store.list_passes(limit=4)]
-    # The forecasts of the latest four passes, pass by pass and as issued.
+    # Every forecast of the latest four passes, pass by pass and as issued: what the pages
+    # read in full before they kept records of the open ones only.
     want = [f for p in sorted(passes) for f in store.list_forecasts(model="pick", pass_id=p)]
-    assert history.forecasts == want
     scored = set(store.scored_forecasts("pick", latest_only=False).forecast_id.tolist())
+    assert sorted(history.unscored, key=lambda f: f.id) == [f for f in want if f.id not in scored]
     expected: dict[tuple[str | None, int], int] = {}
     for record in want:
         if record.id not in scored:
@@ -297,3 +298,15 @@ def test_the_pages_know_which_of_their_forecasts_are_scored(store: Store) -> Non
     got = history.open_forecasts()
     assert sorted(r.id for r in got) == sorted(expected.values())
     assert 0 < len(got) < len(want)
+    # Of the scored ones the pages keep each series and the fits behind its forecasts (the
+    # coefficient chart's refits), the same as from the records.
+    fits: dict[str | None, set[int]] = {}
+    for record in want:
+        fits.setdefault(record.series, set()).update(
+            () if record.fit_id is None else (record.fit_id,))
+    assert history.forecast_fits == fits
+    only_open: dict[str | None, set[int]] = {}
+    for record in history.unscored:
+        only_open.setdefault(record.series, set()).update(
+            () if record.fit_id is None else (record.fit_id,))
+    assert fits != only_open  # the scored forecasts' fits count too

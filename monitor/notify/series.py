@@ -5,9 +5,10 @@ findings, and the chart data of its series.
 digest for a model with a thousand series costs a handful of reads plus the charts it draws for
 the flagged series only. Scored forecasts are read in full once (as arrays, the latest issue of
 each target period; the store reads them in chunks, ``Store.scored_forecasts``); the forecast
-records themselves (for the forecasts still open and the refits behind a coefficient chart) only
-from the latest ``FORECAST_LOOKBACK`` passes, so that the cost of a page stays bounded as years of
-weekly forecasts pile up.
+records themselves only for the forecasts still open, and of the others only their series and
+the refits behind them (a coefficient chart's), all from the latest ``FORECAST_LOOKBACK`` passes,
+so that the cost of a page stays bounded as years of weekly forecasts pile up and does not grow
+with the forecasts already scored.
 """
 
 from __future__ import annotations
@@ -54,14 +55,15 @@ class ModelHistory:
     model: Model
     feed_period_type: str
     scored: ScoredForecasts  # the default audit's rows: the last issue per target period
-    forecasts: list[ForecastRecord]
+    # Of the passes read: the forecasts not scored yet, and each series' fits behind its
+    # forecasts (``Store.forecast_fits``).
+    unscored: list[ForecastRecord]
+    forecast_fits: dict[str | None, set[int]]
     latest_fits: dict[str | None, FitRecord]
     open_findings: list[FindingRecord]
     _rows: dict[str | None, NDArray[np.int64]] = field(default_factory=dict)
-    _scored_ids: set[int] = field(default_factory=set)
     _open: dict[datetime | None, list[ForecastRecord]] = field(default_factory=dict)
     _open_by_series: dict[str | None, list[ForecastRecord]] | None = None
-    _forecasts_by_series: dict[str | None, list[ForecastRecord]] | None = None
     summaries: dict[str, dict[str, Any] | None] = field(default_factory=dict)  # memo for pages
 
     def scored_rows(self, series: str | None) -> NDArray[np.int64]:
@@ -72,7 +74,7 @@ class ModelHistory:
     def series(self) -> list[str | None]:
         """Every series with a fit, a forecast or a finding, sorted (None first)."""
         names: set[str | None] = set(self.latest_fits)
-        names.update(f.series for f in self.forecasts)
+        names.update(self.forecast_fits)
         names.update(f.series for f in self.open_findings)
         return sorted(names, key=lambda s: (0, "") if s is None else (1, s))
 
@@ -84,15 +86,6 @@ class ModelHistory:
             rank = finding.severity.rank
             worst[finding.series] = max(worst.get(finding.series, -1), rank)
         return sorted(worst, key=lambda s: (-worst[s], (0, "") if s is None else (1, s)))
-
-    def forecasts_of(self, series: str | None) -> list[ForecastRecord]:
-        """Every forecast of one series, in the order issued."""
-        if self._forecasts_by_series is None:
-            grouped: dict[str | None, list[ForecastRecord]] = defaultdict(list)
-            for record in self.forecasts:
-                grouped[record.series].append(record)
-            self._forecasts_by_series = dict(grouped)
-        return self._forecasts_by_series.get(series, [])
 
     def findings_of(self, series: str | None) -> list[FindingRecord]:
         return [f for f in self.open_findings if f.series == series]
@@ -106,9 +99,7 @@ class ModelHistory:
         if period_end in self._open:
             return list(self._open[period_end])
         latest: dict[tuple[str | None, int], ForecastRecord] = {}
-        for record in self.forecasts:
-            if record.id in self._scored_ids:
-                continue
+        for record in self.unscored:
             key = (record.series, record.target_period_key)
             if key not in latest or record.id > latest[key].id:
                 latest[key] = record
@@ -134,28 +125,24 @@ class ModelHistory:
 def load_model(
     store: Store, config: PlumblineConfig, name: str, *, lookback: int = FORECAST_LOOKBACK
 ) -> ModelHistory:
-    """Read one model's scored forecasts, its forecasts of the latest ``lookback`` passes, latest
-    fits and open findings."""
+    """Read one model's scored forecasts, its forecasts of the latest ``lookback`` passes (records
+    of those not scored yet; of the others their series and fits), latest fits and open
+    findings."""
     model = config.models[name]
     scored = store.scored_forecasts(name)
-    # The forecasts of the passes read, each with whether it is scored: what ``open_forecasts``
-    # needs (it asks only of these forecasts whether they are scored, so their own outcomes
-    # answer it as the model's whole scored history did, without reading that history twice).
-    # Pass by pass (one pass's rows in hand at a time), each in the order issued, as
-    # ``list_forecasts`` gives them.
-    forecasts: list[ForecastRecord] = []
-    scored_ids: set[int] = set()
-    for record in reversed(store.list_passes(limit=lookback)):
-        issued = sorted(store.issued_forecasts(model=name, pass_ids=[record.id]),
-                        key=lambda f: f.forecast.id)
-        forecasts += [f.forecast for f in issued]
-        scored_ids.update(f.forecast.id for f in issued if f.outcome is not None)
+    # Only the open forecasts become records: in a weekly pass of 10,000 series the passes read
+    # issued some 260,000 forecasts, nearly all scored since, and building their records took
+    # most of a page's time and a third of its memory (DEVELOPERS.md, "The database").
+    passes = [record.id for record in store.list_passes(limit=lookback)]
+    unscored = ([f.forecast for f in store.issued_forecasts(
+        model=name, pass_ids=passes, open_only=True)] if passes else [])
     history = ModelHistory(
         name=name,
         model=model,
         feed_period_type=config.feeds[model.feed].period_type,
         scored=scored,
-        forecasts=forecasts,
+        unscored=unscored,
+        forecast_fits=store.forecast_fits(name, passes),
         latest_fits=store.latest_fits(name),
         open_findings=store.open_findings(model=name),
     )
@@ -163,7 +150,6 @@ def load_model(
     for i, series in enumerate(scored.series):
         grouped[series].append(i)
     history._rows = {s: np.asarray(rows, dtype=np.int64) for s, rows in grouped.items()}
-    history._scored_ids = scored_ids
     return history
 
 
@@ -242,7 +228,7 @@ def hit_rate_data(
 def fit_history(store: Store, history: ModelHistory, series: str | None) -> list[FitRecord]:
     """The series' refits that issued forecasts in the passes read, and its latest fit, oldest
     first."""
-    ids = {f.fit_id for f in history.forecasts_of(series) if f.fit_id is not None}
+    ids = set(history.forecast_fits.get(series, ()))
     latest = history.latest_fits.get(series)
     if latest is not None:
         ids.add(latest.id)

@@ -316,6 +316,26 @@ class ResultsMixin(StoreBase):
             for row in rows
         ]
 
+    def forecast_fits(
+        self, model: str, pass_ids: Sequence[int]
+    ) -> dict[str | None, set[int]]:
+        """Each series of ``model`` with a forecast issued by the passes given, and the fits
+        those forecasts came from (an empty set for forecasts without a fit, e.g. of an
+        ``interval:`` model); one query on the unique index's (pass, model) prefix."""
+        if not pass_ids:
+            return {}
+        cursor = self._conn.execute(
+            "SELECT DISTINCT series_key, fit_id FROM forecasts WHERE model = ? "
+            f"AND pass_id IN ({', '.join('?' for _ in pass_ids)})",
+            (model, *pass_ids),
+        )
+        fits: dict[str | None, set[int]] = {}
+        for key, fit_id in cursor:
+            ids = fits.setdefault(_series(key), set())
+            if fit_id is not None:
+                ids.add(int(fit_id))
+        return fits
+
     def actual_row_counts(self, feed: str) -> dict[str | None, int]:
         """Rows with an actual (not plan rows), current revisions only, per series of a feed:
         what a series warming up has so far."""
