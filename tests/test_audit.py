@@ -29,6 +29,7 @@ from report_history import CONFIG_TEXT, History, build_history, copy_history
 from monitor.audit import AUDIT_COLUMNS, audit_models, summarise_coverage
 from monitor.cli import main
 from monitor.errors import UsageError
+from monitor.notify.series import ModelHistories
 from monitor.stats.coverage import audit_coverage
 from monitor.store import Store
 
@@ -161,6 +162,26 @@ def test_scored_forecasts_read_once_give_the_same_records(history: History) -> N
             audit_models(store, history.config, scored=scored)
         with pytest.raises(ValueError, match="by_lead"):
             audit_models(store, history.config, model=name, by_lead=True, scored=scored)
+
+
+def test_a_model_history_audits_each_window_once_for_every_page(history: History) -> None:
+    # The pass page, the model pages and the digest ask the shared ModelHistory for their
+    # windows: the records are a fresh audit's, the same however often asked, and a page that
+    # changes its records does not change another page's.
+    with history.open() as store:
+        histories = ModelHistories(store, history.config)
+        for name in history.config.models:
+            model = histories[name]
+            for last in (13, 52, None, 13):
+                assert model.audit(store, history.config, last) == audit_models(
+                    store, history.config, model=name, last=last), (name, last)
+            first = model.audit(store, history.config, 13)
+            assert first, name
+            first[0]["hits"] = -1
+            first.pop()
+            again = model.audit(store, history.config, 13)
+            assert again == audit_models(store, history.config, model=name, last=13)
+            assert sorted(model._audits, key=str) == sorted([13, 52, None], key=str)
 
 
 def test_summary_pools_the_records(history: History) -> None:

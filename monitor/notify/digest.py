@@ -29,7 +29,6 @@ from typing import Any
 
 from monitor.audit import (
     CALIBRATED_LINE,
-    audit_models,
     calibrated_sentence,
     has_calibrated,
     summarise_coverage,
@@ -306,8 +305,8 @@ def _model_coverage(
     store: Store, config: PlumblineConfig, history: ModelHistory
 ) -> ModelCoverage:
     name = history.name
-    last13 = audit_models(store, config, model=name, last=13, scored=history.scored)
-    last52 = audit_models(store, config, model=name, last=52, scored=history.scored)
+    last13 = history.audit(store, config, 13)
+    last52 = history.audit(store, config, 52)
     flagged = history.flagged
     listed = flagged[:FINDINGS_CAP]
     by13 = {r["series"]: r for r in last13}

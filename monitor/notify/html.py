@@ -33,7 +33,6 @@ import jinja2
 from monitor import __version__
 from monitor.audit import (
     CALIBRATED_LINE,
-    audit_models,
     calibrated_sentence,
     calibrated_view,
     has_calibrated,
@@ -351,12 +350,8 @@ def build_model_page(
     # whose feed is silent is never shown as having "no open findings".
     feed_findings = [f for f in store.open_findings(feed=model.feed) if f.model is None]
     findings = ordered_findings([*history.open_findings, *feed_findings])
-    scored = history.scored  # read once by load_model; each window audits it
-    windows = {
-        13: audit_models(store, config, model=name, last=13, scored=scored),
-        52: audit_models(store, config, model=name, last=52, scored=scored),
-        None: audit_models(store, config, model=name, scored=scored),
-    }
+    # Each window audits the scored forecasts load_model read, once for all pages.
+    windows = {last: history.audit(store, config, last) for last in (13, 52, None)}
     # The coverage finding audits each series' latest ``recent`` scored forecasts: that window
     # is shown beside 13 and 52, so the page's figures and the finding's can be compared.
     finding_window = model.recent
@@ -366,8 +361,7 @@ def build_model_page(
         spans = tuple((k, f"{w} (the coverage finding's window)" if k == finding_window else w)
                       for k, w in spans)
     else:
-        windows[finding_window] = audit_models(store, config, model=name, last=finding_window,
-                                               scored=scored)
+        windows[finding_window] = history.audit(store, config, finding_window)
         spans = (*spans, (finding_window, f"over the latest {finding_window} scored periods "
                                           "(the coverage finding's window)"))
     spans = (*spans, (None, "over every scored period"))

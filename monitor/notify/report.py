@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
-from monitor.audit import audit_models, summarise_coverage
+from monitor.audit import summarise_coverage
 from monitor.config import PlumblineConfig
 from monitor.notify.charts import Chart
 from monitor.notify.html import (
@@ -129,8 +129,7 @@ def _model_sections(
                     break
                 budget.add(data)
         if name not in history.summaries:
-            history.summaries[name] = summarise_coverage(
-                audit_models(store, config, model=name, last=13, scored=history.scored))
+            history.summaries[name] = summarise_coverage(history.audit(store, config, 13))
         summary = history.summaries[name]
         sections.append(ModelSection(
             name, coverage_sentence(summary, "over the latest 13 scored periods"),

@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from monitor.audit import audit_models
 from monitor.config import Model, PlumblineConfig
 from monitor.notify.charts import (
     ActualsData,
@@ -65,6 +66,19 @@ class ModelHistory:
     _open: dict[datetime | None, list[ForecastRecord]] = field(default_factory=dict)
     _open_by_series: dict[str | None, list[ForecastRecord]] | None = None
     summaries: dict[str, dict[str, Any] | None] = field(default_factory=dict)  # memo for pages
+    _audits: dict[int | None, list[dict[str, Any]]] = field(default_factory=dict)
+
+    def audit(self, store: Store, config: PlumblineConfig,
+              last: int | None) -> list[dict[str, Any]]:
+        """``audit_models`` of this model over each series' latest ``last`` scored forecasts
+        (every one: None), from the scored forecasts read. Worked out once per window for all
+        the pages that show it (the pass page's 13 is the model page's, the digest's 13 and 52
+        are too): at 10,000 series each window costs seconds. Each caller gets its own copies
+        of the records."""
+        if last not in self._audits:
+            self._audits[last] = audit_models(store, config, model=self.name, last=last,
+                                              scored=self.scored)
+        return [dict(record) for record in self._audits[last]]
 
     def scored_rows(self, series: str | None) -> NDArray[np.int64]:
         """Indexes into ``scored`` of one series' rows, in target-period order."""
