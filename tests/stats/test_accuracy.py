@@ -81,3 +81,64 @@ def test_groups_interleaved_give_each_group_alone_bit_for_bit() -> None:
                      "bias_t", "bias_p_value"):
             got, want = getattr(shuffled, name)[index], getattr(alone, name)[0]
             assert np.asarray(got).tobytes() == np.asarray(want).tobytes(), (value, name)
+
+
+def _one_group(actuals: np.ndarray, points: np.ndarray) -> dict[str, float]:
+    """The figures of one group's rows alone, computed as the module docstring states them, one
+    step at a time (numpy's mean, ``long_run_variance``, scipy's t): the oracle for the batch."""
+    keep = np.isfinite(actuals) & np.isfinite(points)
+    a, e = actuals[keep], actuals[keep] - points[keep]
+    n = e.size
+    out = dict.fromkeys(("mean_error", "mean_absolute_error", "mase", "tracking_signal",
+                         "bias_t", "bias_p_value"), math.nan)
+    out["scored"] = n
+    if n == 0:
+        return out
+    mae = float(np.abs(e).mean())
+    out["mean_error"], out["mean_absolute_error"] = float(e.mean()), mae
+    if mae > 0:
+        out["tracking_signal"] = float(e.sum()) / mae
+    if n >= 2 and np.abs(np.diff(a)).mean() > 0:
+        out["mase"] = mae / float(np.abs(np.diff(a)).mean())
+    if n >= 3 and long_run_variance(e) > 0:
+        t = float(e.mean()) / math.sqrt(long_run_variance(e) / n)
+        out["bias_t"], out["bias_p_value"] = t, float(2 * stats.t.sf(abs(t), n - 1))
+    return out
+
+
+def test_every_group_at_once_equals_each_group_worked_out_alone() -> None:
+    # Our own seeded data: groups of 0 to 300 rows (Newey–West lags 0 to 5), NaN and infinite
+    # rows, constant actuals (no naive-forecast error: MASE undefined), perfect forecasts (MAE 0),
+    # and autocorrelated errors; each figure against the one-group oracle above.
+    rng = np.random.default_rng(2026)
+    sizes = np.concatenate([[0, 1, 2, 3, 4, 5], rng.integers(0, 300, 60)])
+    labels = np.repeat(np.arange(sizes.size) * 2 + 7, sizes)
+    actual = rng.normal(50.0, 8.0, labels.size)
+    point = actual - rng.normal(0.3, 2.0, labels.size)
+    for k in range(1, labels.size):  # mildly autocorrelated errors
+        if labels[k] == labels[k - 1]:
+            point[k] = actual[k] - (0.4 * (actual[k - 1] - point[k - 1]) + rng.normal())
+    actual[rng.random(labels.size) < 0.03] = np.nan
+    point[rng.random(labels.size) < 0.03] = -np.inf
+    constant = labels == 7 + 2 * 6
+    actual[constant] = 40.0
+    exact = labels == 7 + 2 * 7
+    point[exact] = actual[exact]
+    batch = accuracy_batch(labels, actual, point)
+    assert batch.group.tolist() == sorted(set(labels.tolist()))
+    checked = 0
+    for index, value in enumerate(batch.group):
+        rows = labels == value
+        want = _one_group(actual[rows], point[rows])
+        assert batch.scored[index] == want["scored"], value
+        for name in ("mean_error", "mean_absolute_error", "mase", "tracking_signal", "bias_t",
+                     "bias_p_value"):
+            got = float(getattr(batch, name)[index])
+            if math.isnan(want[name]):
+                assert math.isnan(got), (value, name)
+            else:
+                assert math.isclose(got, want[name], rel_tol=1e-11, abs_tol=1e-13), (value, name)
+                checked += 1
+    assert checked > 300
+    assert math.isnan(batch.mase[list(batch.group).index(7 + 2 * 6)])
+    assert math.isnan(batch.tracking_signal[list(batch.group).index(7 + 2 * 7)])
