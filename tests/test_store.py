@@ -182,6 +182,9 @@ def test_migration_from_version_1_keeps_the_data(tmp_path: Path) -> None:
         assert store.file_by_sha256("abc", "depot") is not None
         assert store.file_by_sha256("abc", "other") is None
         assert re.fullmatch(r"[0-9a-f]{32}", store.identity)
+        # migration 7: outcomes found by the pass that scored them
+        assert ("outcomes_by_pass",) in store._conn.execute(
+            "SELECT name FROM sqlite_master WHERE type = 'index' AND tbl_name = 'outcomes'")
         windows = store.windows("depot", ["pick_hours"])
         assert windows.series == ("north",)
         assert windows.values.tolist() == [[41.5]]

@@ -364,10 +364,12 @@ class ResultsMixin(StoreBase):
 
     def series_scored_after(self, model: str, pass_id: int) -> set[str | None]:
         """Series of ``model`` with an outcome scored by a pass with an id above ``pass_id``."""
+        # The outcomes first, by the pass that scored them (``outcomes_by_pass``): a pass reads
+        # the few it and a crashed one since scored, not every forecast of the model.
         cursor = self._conn.execute(
-            "SELECT DISTINCT f.series_key FROM outcomes AS o JOIN forecasts AS f "
-            "ON f.id = o.forecast_id WHERE f.model = ? AND o.pass_id > ?",
-            (model, pass_id),
+            "SELECT DISTINCT f.series_key FROM outcomes AS o CROSS JOIN forecasts AS f "
+            "ON f.id = o.forecast_id WHERE o.pass_id > ? AND f.model = ?",
+            (pass_id, model),
         )
         return {_series(row[0]) for row in cursor}
 
