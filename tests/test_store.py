@@ -531,6 +531,99 @@ def test_forecasts_are_append_only_and_a_rerun_cannot_duplicate_them(store: Stor
     )
 
 
+# What forecasts_awaiting_outcome answered before the unscored_forecasts table (migration 8):
+# every forecast of the model without an outcome whose target has a current actual. The oracle.
+AWAITING_BEFORE_MIGRATION_8 = (
+    "SELECT f.id FROM forecasts AS f "
+    "JOIN series AS s ON s.feed = f.feed AND s.key = f.series_key "
+    "JOIN observations AS a ON a.series_id = s.id AND a.period_key = f.target_period_key "
+    "AND a.is_plan = 0 AND a.current = 1 WHERE f.model = ? AND NOT EXISTS "
+    "(SELECT 1 FROM outcomes AS o WHERE o.forecast_id = f.id) "
+    "ORDER BY f.series_key, f.target_period_key, f.id")
+
+
+def test_forecasts_awaiting_outcome_come_from_the_unscored_ones_only(store: Store) -> None:
+    # Our own seeded history: two models, passes issuing forecasts (some twice, some again
+    # after a crash, i.e. the same rows recorded twice), actuals arriving late, revised or
+    # never, scoring part of what is due each pass. After every write the unscored table holds
+    # exactly the forecasts without an outcome, and the awaiting ones equal the old query's.
+    rng = np.random.default_rng(20261203)
+    store.record_model_version("pick", signature="s", config={}, created_at=T0)
+    store.record_model_version("pack", signature="s", config={}, created_at=T0)
+    conn = store._conn
+
+    def check() -> None:
+        unscored = {row[0] for row in conn.execute("SELECT forecast_id FROM unscored_forecasts")}
+        assert unscored == {row[0] for row in conn.execute(
+            "SELECT id FROM forecasts AS f WHERE NOT EXISTS "
+            "(SELECT 1 FROM outcomes AS o WHERE o.forecast_id = f.id)")}
+        for model in ("pick", "pack"):
+            got = [a.forecast_id for a in store.forecasts_awaiting_outcome(model, "pick_hours")]
+            assert got == [row[0] for row in conn.execute(AWAITING_BEFORE_MIGRATION_8, (model,))]
+
+    line = 2
+    for n in range(12):
+        pass_id = store.record_pass(as_of=T0 + timedelta(days=7 * n), started_at=T0).id
+        rows = [replace(_forecast(s, n + lead, 40.0 + lead, lead=lead), model=model)
+                for model in ("pick", "pack") for s in ("a", "b", None)
+                for lead in (1, 2) if rng.random() < 0.8]
+        store.record_forecasts(pass_id, rows)
+        if rng.random() < 0.3:  # a crashed pass's forecasts recorded again: nothing new
+            assert store.record_forecasts(pass_id, rows).inserted == 0
+        check()
+        actuals = [actual(s, n, float(rng.normal(42, 3)), 400.0, line=(line := line + 1))
+                   for s in ("a", "b", None) if rng.random() < 0.85]
+        store.insert_observations("depot", a_file(store, f"w{n}.csv"), COLUMNS, actuals)
+        late = int(rng.integers(0, n + 1))  # a late actual, or a revision of one
+        store.insert_observations("depot", a_file(store, f"late{n}.csv"), COLUMNS,
+                                  [actual("a", late, float(rng.normal(42, 3)), 400.0)])
+        check()
+        due = store.forecasts_awaiting_outcome("pick", "pick_hours") + (
+            store.forecasts_awaiting_outcome("pack", "pick_hours"))
+        chosen = [a for a in due if rng.random() < 0.7]
+        scored = store.record_outcomes(pass_id, [
+            Outcome(a.forecast_id, a.actual, classify_outcome(a.actual, a.lower, a.upper))
+            for a in chosen])
+        assert scored == len(chosen)
+        assert store.record_outcomes(pass_id, [
+            Outcome(a.forecast_id, a.actual, OutcomeKind.HIT) for a in chosen]) == 0
+        check()
+    assert conn.execute("SELECT count(*) FROM outcomes").fetchone()[0] > 20
+    assert conn.execute("SELECT count(*) FROM unscored_forecasts").fetchone()[0] > 5
+    executed: list[str] = []
+    conn.set_trace_callback(executed.append)
+    store.forecasts_awaiting_outcome("pick", "pick_hours")
+    conn.set_trace_callback(None)
+    plan = " | ".join(str(row[3]) for row in conn.execute(f"EXPLAIN QUERY PLAN {executed[0]}"))
+    assert plan.startswith("SEARCH u USING") and "unscored_forecasts_by_model" in plan, plan
+
+
+def test_migration_8_finds_the_forecasts_not_scored_yet(tmp_path: Path) -> None:
+    # A database written before migration 8 (here: one made now, with the table and its
+    # triggers taken away and the version set back) gets the table filled from its forecasts
+    # and outcomes when it is opened.
+    path = tmp_path / "v7.sqlite"
+    with Store.open(path) as store:
+        pass_id = _pass_with_model(store)
+        ids = store.record_forecasts(pass_id, [_forecast(s, n, 40.0) for s in ("a", "b")
+                                                for n in (1, 2, 3)]).ids
+        store.record_outcomes(pass_id, [Outcome(i, 41.0, OutcomeKind.HIT) for i in ids[::2]])
+    conn = sqlite3.connect(path, isolation_level=None)
+    for statement in ("DROP TRIGGER forecasts_await_outcome", "DROP TRIGGER outcomes_scored",
+                      "DROP TABLE unscored_forecasts", "PRAGMA user_version = 7"):
+        conn.execute(statement)
+    conn.close()
+    with Store.open(path) as store:
+        assert store.schema_version == SCHEMA_VERSION
+        assert sorted(row[0] for row in store._conn.execute(
+            "SELECT forecast_id FROM unscored_forecasts")) == sorted(ids[1::2])
+        later = store.record_pass(as_of=T0, started_at=T0).id
+        [new] = store.record_forecasts(later, [_forecast("a", 4, 40.0)]).ids
+        store.record_outcomes(later, [Outcome(ids[1], 41.0, OutcomeKind.HIT)])
+        assert sorted(row[0] for row in store._conn.execute(
+            "SELECT forecast_id FROM unscored_forecasts")) == sorted([*ids[3::2], new])
+
+
 def test_scoring_and_the_audit_views(store: Store) -> None:
     first_pass = _pass_with_model(store)
     # issued twice for week 2 (leads 2 and 1), once for week 1

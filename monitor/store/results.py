@@ -234,8 +234,9 @@ class ResultsMixin(StoreBase):
                 )
             )
         with self.transaction():
-            before = self._conn.total_changes
-            self._conn.executemany(
+            # The statement's own rows: total_changes would count the rows its trigger adds to
+            # unscored_forecasts too.
+            written = self._conn.executemany(
                 "INSERT INTO forecasts (pass_id, fit_id, model, version, feed, series_key, "
                 "target_period, target_period_key, observation_id, issued_at, lead, inputs, "
                 "point, mean_lower, mean_upper, lower, upper, level, leverage, extrapolation, "
@@ -244,7 +245,7 @@ class ResultsMixin(StoreBase):
                 "ON CONFLICT (pass_id, model, series_key, target_period_key) DO NOTHING",
                 params,
             )
-            inserted = self._conn.total_changes - before
+            inserted = written.rowcount
             ids = {
                 (model, skey, key): forecast_id
                 for forecast_id, model, skey, key in self._conn.execute(
@@ -380,13 +381,15 @@ class ResultsMixin(StoreBase):
         """
         registries: dict[str, list[str]] = {}
         awaiting: list[AwaitingOutcome] = []
+        # From the forecasts not scored yet (``unscored_forecasts``, kept by triggers), not from
+        # every forecast of the model.
         cursor = self._conn.execute(
             "SELECT f.id, f.feed, f.series_key, f.target_period, f.target_period_key, f.lead, "
-            "f.point, f.lower, f.upper, a.vals FROM forecasts AS f "
+            "f.point, f.lower, f.upper, a.vals FROM unscored_forecasts AS u "
+            "CROSS JOIN forecasts AS f ON f.id = u.forecast_id "
             "JOIN series AS s ON s.feed = f.feed AND s.key = f.series_key "
             "JOIN observations AS a ON a.series_id = s.id AND a.period_key = f.target_period_key "
-            "AND a.is_plan = 0 AND a.current = 1 WHERE f.model = ? AND NOT EXISTS "
-            "(SELECT 1 FROM outcomes AS o WHERE o.forecast_id = f.id) "
+            "AND a.is_plan = 0 AND a.current = 1 WHERE u.model = ? "
             "ORDER BY f.series_key, f.target_period_key, f.id",
             (model,),
         )
@@ -419,13 +422,12 @@ class ResultsMixin(StoreBase):
             for o in outcomes
         ]
         with self.transaction():
-            before = self._conn.total_changes
-            self._conn.executemany(
+            written = self._conn.executemany(  # its trigger leaves unscored_forecasts
                 "INSERT INTO outcomes (forecast_id, actual, outcome, pass_id) VALUES (?, ?, ?, ?) "
                 "ON CONFLICT (forecast_id) DO NOTHING",
                 params,
             )
-            return self._conn.total_changes - before
+            return written.rowcount
 
     def scored_forecasts(
         self,

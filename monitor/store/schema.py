@@ -310,6 +310,25 @@ _OUTCOMES_BY_PASS = (
     "CREATE INDEX outcomes_by_pass ON outcomes(pass_id)",
 )
 
+_UNSCORED_FORECASTS = (
+    # The forecasts not scored yet, kept by triggers as forecasts and outcomes are written (both
+    # append-only), so that every pass finds what to score among these few instead of walking
+    # every forecast a model ever issued for the ones without an outcome (1.4 s at 10,000
+    # series × 156 weeks, growing each week). The triggers fire only for rows really inserted
+    # (``ON CONFLICT DO NOTHING`` inserts none), in the writing transaction.
+    """CREATE TABLE unscored_forecasts (
+        forecast_id INTEGER PRIMARY KEY REFERENCES forecasts(id),
+        model TEXT NOT NULL
+    )""",
+    "CREATE INDEX unscored_forecasts_by_model ON unscored_forecasts(model)",
+    "INSERT INTO unscored_forecasts (forecast_id, model) SELECT f.id, f.model FROM forecasts AS f "
+    "WHERE NOT EXISTS (SELECT 1 FROM outcomes AS o WHERE o.forecast_id = f.id)",
+    "CREATE TRIGGER forecasts_await_outcome AFTER INSERT ON forecasts BEGIN "
+    "INSERT INTO unscored_forecasts (forecast_id, model) VALUES (NEW.id, NEW.model); END",
+    "CREATE TRIGGER outcomes_scored AFTER INSERT ON outcomes BEGIN "
+    "DELETE FROM unscored_forecasts WHERE forecast_id = NEW.forecast_id; END",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "passes, files, rejected rows, series, observations", _FILES_AND_OBSERVATIONS),
     Migration(2, "model versions, fits, forecasts, outcomes, baselines", _MODELS_FITS_FORECASTS),
@@ -319,6 +338,7 @@ MIGRATIONS: tuple[Migration, ...] = (
     Migration(6, "duplicate files per feed; the database's random identity",
               _PER_FEED_DUPLICATES_AND_IDENTITY),
     Migration(7, "outcomes found by the pass that scored them", _OUTCOMES_BY_PASS),
+    Migration(8, "the forecasts not scored yet", _UNSCORED_FORECASTS),
 )
 SCHEMA_VERSION = MIGRATIONS[-1].version
 
