@@ -24,6 +24,7 @@ from monitor.store.results import (
     SCORED_CHUNK,
     _every_scored_sql,
     _in_scored_order,
+    _latest_scored_sql,
     _read_scored_columns,
     _scan_scored_sql,
     _scored_columns,
@@ -347,3 +348,31 @@ def test_what_passes_scored_is_found_by_the_pass_that_scored_it(store: Store) ->
         changed, plan = _plan_of_statement(store, lambda p=pass_id: store.models_changed_in_pass(p))
         assert {m for p, m, _ in scored if p == pass_id} <= changed
         assert "SCAN o" not in plan and "outcomes_by_pass" in plan, plan
+
+
+@pytest.mark.parametrize("with_df", [False, True])
+@pytest.mark.parametrize("last", [1, 2, 3, 5, 50])
+def test_the_latest_read_by_scan_equals_the_read_through_the_index(
+    store: Store, monkeypatch: pytest.MonkeyPatch, with_df: bool, last: int
+) -> None:
+    # A fresh ``last=`` read of a model that is most of the forecasts, with a history not much
+    # longer than ``last``, scans the outcomes and cuts each series afterwards; through the
+    # index otherwise. The columns must be the same either way, and equal to the query.
+    path = store.path
+
+    def read(share: int) -> ScoredForecasts:
+        monkeypatch.setattr(results, "SCAN_SHARE", share)
+        fresh = Store.open(path)  # no rows kept from an earlier read on the connection
+        try:
+            return fresh.scored_forecasts("pick", last=last, with_df=with_df, chunk=3)
+        finally:
+            fresh.close()
+
+    scanned, indexed = read(10**6), read(0)
+    _same_scored(scanned, indexed)
+    want = _scored_columns(store._conn.execute(
+        _latest_scored_sql(_scored_select(with_df), "pick"),
+        ("pick", 1, "", last - 1, 10**12)).fetchall())
+    keep = _scored_rows_to_keep(want[1], want[2], want[4], True, last)
+    assert scanned.forecast_id.tolist() == want[0][keep].tolist()
+    assert len(scanned) > 0
