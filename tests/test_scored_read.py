@@ -376,3 +376,18 @@ def test_the_latest_read_by_scan_equals_the_read_through_the_index(
     keep = _scored_rows_to_keep(want[1], want[2], want[4], True, last)
     assert scanned.forecast_id.tolist() == want[0][keep].tolist()
     assert len(scanned) > 0
+
+
+def test_each_scored_forecast_s_residual_df_is_its_fit_s(store: Store) -> None:
+    # Stored beside each forecast when it is written (migration 9); the reads used to take it
+    # from the fit's inference row by row. The same values, and some differ between fits.
+    oracle = dict(store._conn.execute(
+        "SELECT f.id, (SELECT json_extract(fi.inference, '$.residual_df') FROM fits AS fi "
+        "WHERE fi.id = f.fit_id) FROM forecasts AS f"))
+    for last in (None, 3):
+        got = store.scored_forecasts(latest_only=False, last=last, with_df=True)
+        assert got.residual_df is not None and len(got) > 0
+        want = [np.nan if oracle[i] is None else float(oracle[i])
+                for i in got.forecast_id.tolist()]
+        assert np.array_equal(got.residual_df, np.array(want), equal_nan=True)
+        assert len(set(want)) > 3

@@ -610,7 +610,9 @@ def test_migration_8_finds_the_forecasts_not_scored_yet(tmp_path: Path) -> None:
         store.record_outcomes(pass_id, [Outcome(i, 41.0, OutcomeKind.HIT) for i in ids[::2]])
     conn = sqlite3.connect(path, isolation_level=None)
     for statement in ("DROP TRIGGER forecasts_await_outcome", "DROP TRIGGER outcomes_scored",
-                      "DROP TABLE unscored_forecasts", "PRAGMA user_version = 7"):
+                      "DROP TABLE unscored_forecasts",
+                      "ALTER TABLE forecasts DROP COLUMN residual_df",  # migration 9's
+                      "PRAGMA user_version = 7"):
         conn.execute(statement)
     conn.close()
     with Store.open(path) as store:
@@ -622,6 +624,41 @@ def test_migration_8_finds_the_forecasts_not_scored_yet(tmp_path: Path) -> None:
         store.record_outcomes(later, [Outcome(ids[1], 41.0, OutcomeKind.HIT)])
         assert sorted(row[0] for row in store._conn.execute(
             "SELECT forecast_id FROM unscored_forecasts")) == sorted([*ids[3::2], new])
+
+
+def test_migration_9_gives_each_forecast_its_fit_s_residual_df(tmp_path: Path) -> None:
+    # Forecasts written before migration 9 get the residual degrees of freedom of their fit as
+    # the reads used to find it (json_extract of the fit's inference), those written after get
+    # it when written; a forecast without a fit has none.
+    path = tmp_path / "v8.sqlite"
+    with Store.open(path) as store:
+        pass_id = _pass_with_model(store)
+        fit_ids = store.record_fits(pass_id, [
+            FitRow("pick", 1, s, 20, True, inference={"residual_df": df})
+            for s, df in (("a", 18), ("b", 17.0), (None, None))])
+        rows = [replace(_forecast(s, 1, 40.0), fit_id=f)
+                for s, f in zip(("a", "b", None), fit_ids, strict=True)]
+        rows.append(_forecast("c", 1, 40.0))  # no fit
+        ids = store.record_forecasts(pass_id, rows).ids
+    conn = sqlite3.connect(path, isolation_level=None)
+    for statement in ("DROP TRIGGER forecasts_no_update",
+                      "ALTER TABLE forecasts DROP COLUMN residual_df",
+                      "CREATE TRIGGER forecasts_no_update BEFORE UPDATE ON forecasts "
+                      "BEGIN SELECT RAISE(ABORT, 'forecasts are append-only'); END",
+                      "PRAGMA user_version = 8"):
+        conn.execute(statement)
+    conn.close()
+    with Store.open(path) as store:
+        assert store.schema_version == SCHEMA_VERSION
+        got = dict(store._conn.execute("SELECT id, residual_df FROM forecasts"))
+        assert [got[i] for i in ids] == [18.0, 17.0, None, None]
+        later = store.record_pass(as_of=T0, started_at=T0).id
+        [new] = store.record_forecasts(later, [replace(_forecast("a", 2, 40.0),
+                                                       fit_id=fit_ids[0])]).ids
+        assert store._conn.execute(
+            "SELECT residual_df FROM forecasts WHERE id = ?", (new,)).fetchone() == (18.0,)
+        with pytest.raises(sqlite3.IntegrityError, match="append-only"):
+            store._conn.execute("UPDATE forecasts SET residual_df = 1")
 
 
 def test_scoring_and_the_audit_views(store: Store) -> None:

@@ -230,7 +230,7 @@ class ResultsMixin(StoreBase):
                     row.lead, to_json(dict(row.inputs)) if row.inputs else "{}", row.point,
                     row.mean_lower, row.mean_upper, row.lower, row.upper, row.level,
                     row.leverage, int(row.extrapolation), row.calibrated_lower,
-                    row.calibrated_upper, row.calibrated_factor,
+                    row.calibrated_upper, row.calibrated_factor, row.fit_id,
                 )
             )
         with self.transaction():
@@ -240,8 +240,12 @@ class ResultsMixin(StoreBase):
                 "INSERT INTO forecasts (pass_id, fit_id, model, version, feed, series_key, "
                 "target_period, target_period_key, observation_id, issued_at, lead, inputs, "
                 "point, mean_lower, mean_upper, lower, upper, level, leverage, extrapolation, "
-                "calibrated_lower, calibrated_upper, calibrated_factor) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+                "calibrated_lower, calibrated_upper, calibrated_factor, residual_df) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, "
+                # The fit's residual degrees of freedom as its inference records them, found
+                # once here rather than at every read of the scored forecasts (migration 9).
+                "(SELECT json_extract(fi.inference, '$.residual_df') FROM fits AS fi "
+                "WHERE fi.id = ?)) "
                 "ON CONFLICT (pass_id, model, series_key, target_period_key) DO NOTHING",
                 params,
             )
@@ -656,8 +660,7 @@ def _scored_select(with_df: bool, model: str = "f.model") -> str:
         f"SELECT f.id, {model}, f.series_key, f.target_period, f.target_period_key, f.lead, "
         "f.issued_at, o.actual, f.point, f.lower, f.upper, f.level, o.outcome, "
         "f.calibrated_lower, f.calibrated_upper"
-        + (", (SELECT json_extract(fi.inference, '$.residual_df') FROM fits AS fi "
-           "WHERE fi.id = f.fit_id) " if with_df else ", NULL ")
+        + (", f.residual_df " if with_df else ", NULL ")
     )
 
 
