@@ -12,10 +12,10 @@ from __future__ import annotations
 
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pytest
+from _sqlplan import plan_of_statement
 
 from monitor.config import parse_config
 from monitor.notify.series import load_model
@@ -314,19 +314,6 @@ def test_the_pages_know_which_of_their_forecasts_are_scored(store: Store) -> Non
     assert fits != only_open  # the scored forecasts' fits count too
 
 
-def _plan_of_statement(store: Store, run: Any) -> tuple[Any, str]:
-    """What ``run()`` returns, and SQLite's query plan of the one statement it executed."""
-    executed: list[str] = []
-    store._conn.set_trace_callback(executed.append)
-    try:
-        result = run()
-    finally:
-        store._conn.set_trace_callback(None)
-    [statement] = executed
-    plan = " | ".join(str(row[3]) for row in store._conn.execute(f"EXPLAIN QUERY PLAN {statement}"))
-    return result, plan
-
-
 def test_what_passes_scored_is_found_by_the_pass_that_scored_it(store: Store) -> None:
     # Every pass asks, for every model, which series were scored since the last finished pass,
     # and the pages which models a pass changed. Both look the outcomes up by the pass that
@@ -340,12 +327,12 @@ def test_what_passes_scored_is_found_by_the_pass_that_scored_it(store: Store) ->
     for model in MODELS:
         for after in range(last + 1):
             want = {key for p, m, key in scored if m == model and p > after}
-            got, plan = _plan_of_statement(store, lambda m=model, a=after: (
+            got, plan = plan_of_statement(store, lambda m=model, a=after: (
                 store.series_scored_after(m, a)))
             assert {"" if s is None else s for s in got} == want, (model, after)
             assert "USING INDEX outcomes_by_pass" in plan, plan
     for pass_id in range(1, last + 1):
-        changed, plan = _plan_of_statement(store, lambda p=pass_id: store.models_changed_in_pass(p))
+        changed, plan = plan_of_statement(store, lambda p=pass_id: store.models_changed_in_pass(p))
         assert {m for p, m, _ in scored if p == pass_id} <= changed
         assert "SCAN o" not in plan and "outcomes_by_pass" in plan, plan
 

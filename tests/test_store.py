@@ -13,6 +13,7 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 import pytest
+from _sqlplan import plan_of_statement
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
@@ -590,11 +591,8 @@ def test_forecasts_awaiting_outcome_come_from_the_unscored_ones_only(store: Stor
         check()
     assert conn.execute("SELECT count(*) FROM outcomes").fetchone()[0] > 20
     assert conn.execute("SELECT count(*) FROM unscored_forecasts").fetchone()[0] > 5
-    executed: list[str] = []
-    conn.set_trace_callback(executed.append)
-    store.forecasts_awaiting_outcome("pick", "pick_hours")
-    conn.set_trace_callback(None)
-    plan = " | ".join(str(row[3]) for row in conn.execute(f"EXPLAIN QUERY PLAN {executed[0]}"))
+    _, plan = plan_of_statement(store, lambda: store.forecasts_awaiting_outcome(
+        "pick", "pick_hours"))
     assert plan.startswith("SEARCH u USING") and "unscored_forecasts_by_model" in plan, plan
 
 

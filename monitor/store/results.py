@@ -512,24 +512,47 @@ class ResultsMixin(StoreBase):
         about a tenth of a row fetched out of order); a model with few rows, or one series,
         is read through the index."""
         model, all_series = params[0], params[1]
-        # Forecasts (scored or not) bound the rows read: the arrays are made that long at once.
-        total = int(self._conn.execute("SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
-        if model is not None and not all_series:
-            scan, capacity = False, 0
-        elif model is None:
-            scan, capacity = True, total
-        else:
+        capacity = 0  # one series: not counted, the arrays grow as read
+        if model is not None and all_series:
+            scan, capacity = self._scan_pays(model)
+            if scan:
+                return self._one_model_scanned(model, with_df, chunk, capacity)
+        if model is None:
+            # Forecasts (scored or not) bound the rows read: the arrays are made that long.
             capacity = int(self._conn.execute(
-                "SELECT count(*) FROM forecasts WHERE model = ?", (model,)).fetchone()[0])
-            scan = capacity * SCAN_SHARE >= total
-        # Of one model, every row's model is that name (``f.model = ?1`` compares the stored
-        # text byte for byte): it is not fetched row by row (a string each) but filled in.
-        select = _scored_select(with_df, "f.model" if model is None else "NULL")
-        sql = _every_scored_sql(select) if not scan else _scan_scored_sql(select)
+                "SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
+            select = _scored_select(with_df)
+            return _in_scored_order(_read_scored_columns(
+                self._conn.execute(_scan_scored_sql(select), params), chunk, capacity))
+        columns = _read_scored_columns(self._conn.execute(
+            _every_scored_sql(_scored_select(with_df, "NULL")), params), chunk, capacity)
+        columns[1] = np.full(len(columns[0]), model, dtype="O")
+        return columns
+
+    def _scan_pays(self, model: str) -> tuple[bool, int]:
+        """Whether ``model``'s forecasts are at least ``1 / SCAN_SHARE`` of all, so that a scan
+        of every outcome costs less than reading its rows through the index; and how many it
+        has (the arrays of a read are made that long at once)."""
+        total = int(self._conn.execute("SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
+        capacity = int(self._conn.execute(
+            "SELECT count(*) FROM forecasts WHERE model = ?", (model,)).fetchone()[0])
+        return capacity * SCAN_SHARE >= total, capacity
+
+    def _one_model_scanned(
+        self, model: str, with_df: bool, chunk: int | None, capacity: int,
+        bound: int | None = None,
+    ) -> list[NDArray[Any]]:
+        """Every scored forecast of ``model`` (with outcome ids up to ``bound``, when given) by
+        a scan of the outcomes, put in the index's order. Every row's model is that name
+        (``f.model = ?1`` compares the stored text byte for byte): it is not fetched row by row
+        (a string each) but filled in."""
+        sql = _scan_scored_sql(_scored_select(with_df, "NULL"))
+        params: tuple[Any, ...] = (model, 1, "")
+        if bound is not None:
+            sql, params = sql + " AND o.id <= ?4", (*params, bound)
         columns = _read_scored_columns(self._conn.execute(sql, params), chunk, capacity)
-        if model is not None:
-            columns[1] = np.full(len(columns[0]), model, dtype="O")
-        return _in_scored_order(columns) if scan else columns
+        columns[1] = np.full(len(columns[0]), model, dtype="O")
+        return _in_scored_order(columns)
 
     def _latest_scored_columns(
         self, model: str, last: int, select: str, with_df: bool, chunk: int | None = None
@@ -584,18 +607,12 @@ class ResultsMixin(StoreBase):
         horizon of 208 keeps the whole of its first four years anyway. Both give the same
         columns (``tests/test_scored_read.py``).
         """
-        total = int(self._conn.execute("SELECT ifnull(max(id), 0) FROM forecasts").fetchone()[0])
-        capacity = int(self._conn.execute(
-            "SELECT count(*) FROM forecasts WHERE model = ?", (model,)).fetchone()[0])
+        scan, capacity = self._scan_pays(model)
         passes = int(self._conn.execute("SELECT count(*) FROM passes").fetchone()[0])
-        if capacity * SCAN_SHARE < total or passes > SCAN_SHARE * last:
+        if not scan or passes > SCAN_SHARE * last:
             return _read_scored_columns(self._conn.execute(
                 _latest_scored_sql(select, model), (model, 1, "", last - 1, bound)), chunk)
-        sql = _scan_scored_sql(_scored_select(with_df, "NULL")) + " AND o.id <= ?4"
-        columns = _read_scored_columns(self._conn.execute(sql, (model, 1, "", bound)), chunk,
-                                       capacity)
-        columns[1] = np.full(len(columns[0]), model, dtype="O")
-        columns = _in_scored_order(columns)
+        columns = self._one_model_scanned(model, with_df, chunk, capacity, bound)
         within = _scored_rows_to_keep(columns[1], columns[2], columns[4], False, last)
         return [column[within] for column in columns]
 
